@@ -1,0 +1,14 @@
+"""firnline: distributed surface mass balance of glacierised catchments.
+
+From a DEM, glacier outlines and a daily station record, firnline maps the
+annual, winter and summer balance of every cell and derives each glacier's
+specific balance, ELA and AAR. Results are model estimates: see the caution in
+the README.
+"""
+
+__version__ = "0.1.0"
+
+from .config import Config, load_config  # noqa: E402
+from .model import RunResult, run  # noqa: E402
+
+__all__ = ["Config", "RunResult", "load_config", "run", "__version__"]

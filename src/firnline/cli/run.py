@@ -1,0 +1,36 @@
+"""``firnline run CONFIG``: model every complete balance year and write the products."""
+
+from __future__ import annotations
+
+from ..model import CAUTION, run
+from ..products import summary_table
+from .common import add_common, config_and_out, progress_factory, say
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("run", help="model the balance of every complete balance year",
+                       description="Model the daily surface mass balance of every cell over every "
+                                   "complete balance year and write maps, tables and run.json.")
+    add_common(p)
+    p.add_argument("--warming", type=float, default=0.0, metavar="K",
+                   help="uniform warming added to the station temperature, K (default 0)")
+    p.add_argument("--precip-change", type=float, default=0.0, metavar="PCT",
+                   help="precipitation change, %% (default 0)")
+    p.set_defaults(func=main)
+
+
+def main(args) -> int:
+    cfg, out = config_and_out(args)
+    if args.precip_change <= -100:
+        from ..errors import InputError
+        raise InputError(f"--precip-change {args.precip_change:g} would remove all precipitation; "
+                         "give a value above -100.")
+    result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
+                 progress=progress_factory(args.quiet))
+    for note in result.setup.notes:
+        say(args, note)
+    files = result.write(out)
+    print(summary_table(result.summary))
+    say(args, f"wrote {len(files)} files to {out}")
+    say(args, CAUTION)
+    return 0

@@ -1,0 +1,481 @@
+"""Run configuration: TOML in, typed and validated objects out.
+
+Every default lives in :data:`SCHEMA` below and nowhere else; ``configs/demo.toml``
+shows each of them, commented. Relative paths resolve against the folder of the
+config file. Any problem (unknown key, wrong type, impossible value) raises
+:class:`firnline.errors.InputError` with one sentence that names the key.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import difflib
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+from .errors import InputError
+
+REQUIRED = object()  # marker: the key has no default and must be given
+OPTIONAL = None
+
+# Lapse rates above this (K per m) are beyond any plausible mean inversion.
+MAX_INVERSION_K_PER_M = 0.01
+MIN_LAPSE_K_PER_M = -0.0125  # steeper than dry-adiabatic (-0.0098) plus margin
+
+# Hock (1999) radiation-index factors, converted to daily units (x 24 h),
+# values from memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 and a_ice 0.0008
+# mm m2 W-1 h-1 K-1 (for Storglaciaren); see DEVELOPERS.md.
+_HOCK_MF = 1.8
+_HOCK_A_SNOW_DAILY = 0.0006 * 24.0
+_HOCK_A_ICE_DAILY = 0.0008 * 24.0
+
+
+# ----------------------------------------------------------------------------
+# value checkers: each takes (value, where) and returns the converted value
+# ----------------------------------------------------------------------------
+
+def _fail(where: str, allowed: str, value: Any) -> InputError:
+    return InputError(f"{where} must be {allowed}; got {value!r}.")
+
+
+def _number(lo: float | None = None, hi: float | None = None, lo_open=False) -> Callable:
+    def check(v, where):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise _fail(where, "a number", v)
+        v = float(v)
+        if lo is not None and (v < lo or (lo_open and v == lo)):
+            raise _fail(where, f"a number {'>' if lo_open else '>='} {lo:g}", v)
+        if hi is not None and v > hi:
+            raise _fail(where, f"a number <= {hi:g}", v)
+        return v
+    check.numeric = True
+    return check
+
+
+def _integer(lo: int, hi: int) -> Callable:
+    def check(v, where):
+        if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
+            raise _fail(where, f"a whole number from {lo} to {hi}", v)
+        return int(v)
+    return check
+
+
+def _string(choices: tuple[str, ...] | None = None) -> Callable:
+    def check(v, where):
+        if not isinstance(v, str) or not v.strip():
+            raise _fail(where, "a non-empty text in quotes", v)
+        if choices and v not in choices:
+            raise _fail(where, "one of " + ", ".join(f'"{c}"' for c in choices), v)
+        return v
+    return check
+
+
+def _path(v, where):
+    if not isinstance(v, str) or not v.strip():
+        raise _fail(where, "a file path in quotes", v)
+    return v  # resolved against the config folder in load_config
+
+
+def _date(v, where):
+    if isinstance(v, _dt.datetime):
+        return v.date()
+    if isinstance(v, _dt.date):
+        return v
+    if isinstance(v, str):
+        try:
+            return _dt.date.fromisoformat(v.strip())
+        except ValueError:
+            pass
+    raise _fail(where, 'a date written "YYYY-MM-DD"', v)
+
+
+def _month_day(v, where):
+    try:
+        m, d = (int(p) for p in str(v).split("-"))
+        _dt.date(2001, m, d)  # a non-leap year: 02-29 is refused
+        return f"{m:02d}-{d:02d}"
+    except (ValueError, TypeError):
+        raise _fail(where, 'a month and day written "MM-DD" (not 02-29)', v) from None
+
+
+def _lapse(v, where):
+    values = v if isinstance(v, list) else [v]
+    if len(values) not in (1, 12):
+        raise _fail(where, "one number or a list of twelve monthly numbers (January first)", v)
+    check = _number(MIN_LAPSE_K_PER_M, MAX_INVERSION_K_PER_M)
+    out = []
+    for i, x in enumerate(values):
+        label = where if len(values) == 1 else f"{where} (month {i + 1})"
+        try:
+            out.append(check(x, label))
+        except InputError:
+            raise InputError(
+                f"{label} must be a lapse rate in K per m between {MIN_LAPSE_K_PER_M:g} and "
+                f"{MAX_INVERSION_K_PER_M:g} (for example -0.0065; a positive value is an "
+                f"inversion); got {x!r}.") from None
+    return tuple(out)
+
+
+def _pair(v, where):
+    if (not isinstance(v, list) or len(v) != 2
+            or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in v)):
+        raise _fail(where, "a list of two numbers [all snow at or below, all rain at or above] in deg C", v)
+    lo, hi = float(v[0]), float(v[1])
+    if lo > hi:
+        raise InputError(f"{where}: the snow threshold {lo:g} C lies above the rain threshold "
+                         f"{hi:g} C; give them as [snow, rain] with snow <= rain.")
+    if lo < -10 or hi > 10:
+        raise _fail(where, "two temperatures between -10 and 10 deg C", v)
+    return (lo, hi)
+
+
+def _string_list(v, where):
+    if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
+        raise _fail(where, 'a list of key names in quotes, e.g. ["ddf_snow_mm_per_day_k"]', v)
+    return tuple(v)
+
+
+def _table(v, where):
+    if not isinstance(v, dict):
+        raise _fail(where, "a table { key = value, ... }", v)
+    return dict(v)
+
+
+def _boolean(v, where):
+    if not isinstance(v, bool):
+        raise _fail(where, "true or false", v)
+    return v
+
+
+# ----------------------------------------------------------------------------
+# the schema: section -> key -> (checker, default). The only home of defaults.
+# ----------------------------------------------------------------------------
+
+SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
+    "site": {
+        "name": (_string(), "unnamed site"),
+    },
+    "dem": {
+        "path": (_path, REQUIRED),
+    },
+    "glaciers": {
+        "outlines": (_path, REQUIRED),
+        "id_field": (_string(), "name"),
+        "layer": (_string(), OPTIONAL),
+    },
+    "climate": {
+        "station_file": (_path, REQUIRED),
+        "station_elevation_m": (_number(-500.0, 9000.0), REQUIRED),
+        "date_column": (_string(), "date"),
+        "temperature_column": (_string(), "temperature_c"),
+        "precipitation_column": (_string(), "precipitation_mm"),
+        "start": (_date, OPTIONAL),
+        "end": (_date, OPTIONAL),
+    },
+    "downscaling": {
+        "lapse_rate_k_per_m": (_lapse, (-0.0065,)),
+        "precip_gradient_per_m": (_number(-0.002, 0.01), 0.0003),
+        "precip_factor": (_number(0.0, 10.0), 1.0),
+        "snow_rain_range_c": (_pair, (0.5, 2.5)),
+    },
+    "melt": {
+        "method": (_string(("degree-day", "radiation")), "degree-day"),
+        "threshold_c": (_number(-10.0, 10.0), 0.0),
+        "ddf_snow_mm_per_day_k": (_number(0.0, 50.0), 3.0),
+        "ddf_ice_mm_per_day_k": (_number(0.0, 50.0), 6.0),
+        "melt_factor_mm_per_day_k": (_number(0.0, 50.0), _HOCK_MF),
+        "radiation_factor_snow": (_number(0.0, 1.0), _HOCK_A_SNOW_DAILY),
+        "radiation_factor_ice": (_number(0.0, 1.0), _HOCK_A_ICE_DAILY),
+        "transmissivity": (_number(0.0, 1.0, lo_open=True), 0.75),
+    },
+    "balance": {
+        "year_start": (_month_day, "10-01"),
+        "winter_end": (_month_day, "04-30"),
+        "band_width_m": (_number(0.0, 2000.0, lo_open=True), 50.0),
+    },
+    "output": {
+        "dir": (_path, "out"),
+    },
+    "radiation": {
+        "time_step_minutes": (_integer(1, 180), 15),
+        "horizon_sectors": (_integer(4, 720), 72),
+        "horizon_distance_m": (_number(0.0, 200000.0), 20000.0),
+        "cache_dir": (_path, ".firnline_cache"),
+        "write_horizons": (_boolean, False),
+    },
+    "observations": {
+        "glacier_balances": (_path, OPTIONAL),
+        "point_balances": (_path, OPTIONAL),
+        "points_crs": (_string(), OPTIONAL),
+    },
+    "calibration": {
+        "parameters": (_string_list, REQUIRED),
+        "bounds": (_table, {}),
+        "ratios": (_table, {}),
+    },
+}
+
+# sections without which a run cannot start
+REQUIRED_SECTIONS = ("dem", "climate")
+PATH_KEYS = {("dem", "path"), ("glaciers", "outlines"), ("climate", "station_file"),
+             ("output", "dir"), ("radiation", "cache_dir"),
+             ("observations", "glacier_balances"), ("observations", "point_balances")}
+
+
+def default(section: str, key: str) -> Any:
+    """The default value of ``[section] key`` (the one place defaults live)."""
+    return SCHEMA[section][key][1]
+
+
+def numeric_keys(section: str) -> list[str]:
+    """Keys of a section whose value is a single number (candidates for calibration)."""
+    return [k for k, (check, _) in SCHEMA[section].items() if getattr(check, "numeric", False)]
+
+
+# ----------------------------------------------------------------------------
+# typed sections
+# ----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Site:
+    name: str
+
+
+@dataclass(frozen=True)
+class Dem:
+    path: Path
+
+
+@dataclass(frozen=True)
+class GlacierOutlines:
+    outlines: Path
+    id_field: str
+    layer: str | None
+
+
+@dataclass(frozen=True)
+class Climate:
+    station_file: Path
+    station_elevation_m: float
+    date_column: str
+    temperature_column: str
+    precipitation_column: str
+    start: _dt.date | None
+    end: _dt.date | None
+
+
+@dataclass(frozen=True)
+class Downscaling:
+    lapse_rate_k_per_m: tuple[float, ...]  # one value, or twelve (January first)
+    precip_gradient_per_m: float
+    precip_factor: float
+    snow_rain_range_c: tuple[float, float]
+
+    def monthly_lapse_rates(self) -> tuple[float, ...]:
+        """Twelve lapse rates (K per m), January first."""
+        lr = self.lapse_rate_k_per_m
+        return tuple(lr) * 12 if len(lr) == 1 else tuple(lr)
+
+
+@dataclass(frozen=True)
+class Melt:
+    method: str
+    threshold_c: float
+    ddf_snow_mm_per_day_k: float
+    ddf_ice_mm_per_day_k: float
+    melt_factor_mm_per_day_k: float
+    radiation_factor_snow: float
+    radiation_factor_ice: float
+    transmissivity: float
+
+
+@dataclass(frozen=True)
+class Balance:
+    year_start: str
+    winter_end: str
+    band_width_m: float
+
+
+@dataclass(frozen=True)
+class Output:
+    dir: Path
+
+
+@dataclass(frozen=True)
+class Radiation:
+    time_step_minutes: int
+    horizon_sectors: int
+    horizon_distance_m: float
+    cache_dir: Path
+    write_horizons: bool
+
+
+@dataclass(frozen=True)
+class Observations:
+    glacier_balances: Path | None
+    point_balances: Path | None
+    points_crs: str | None
+
+
+@dataclass(frozen=True)
+class Calibration:
+    parameters: tuple[str, ...]
+    bounds: dict
+    ratios: dict
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated run configuration (see ``../shared/DESIGN.md`` for each key)."""
+
+    site: Site
+    dem: Dem
+    climate: Climate
+    downscaling: Downscaling
+    melt: Melt
+    balance: Balance
+    output: Output
+    radiation: Radiation
+    glaciers: GlacierOutlines | None = None
+    observations: Observations | None = None
+    calibration: Calibration | None = None
+    source: Path | None = None          # the TOML file it came from
+    raw: dict = field(default_factory=dict, repr=False)  # as written, for run.json and calibrated.toml
+
+    def with_values(self, **changes: float) -> "Config":
+        """A copy with numeric keys of ``[melt]`` or ``[downscaling]`` replaced.
+
+        ``changes`` maps key names (e.g. ``ddf_snow_mm_per_day_k``) to numbers; each is
+        validated like the value in a file.
+        """
+        melt = dataclasses.asdict(self.melt)
+        down = dataclasses.asdict(self.downscaling)
+        raw = {k: dict(v) if isinstance(v, dict) else v for k, v in self.raw.items()}
+        for key, value in changes.items():
+            section = "melt" if key in melt else "downscaling" if key in down else None
+            if section is None or key not in numeric_keys(section) and key != "lapse_rate_k_per_m":
+                raise InputError(f"{key} is not a numeric key of [melt] or [downscaling].")
+            checked = SCHEMA[section][key][0](value, f"[{section}] {key}")
+            (melt if section == "melt" else down)[key] = checked
+            raw.setdefault(section, {})[key] = list(checked) if isinstance(checked, tuple) else checked
+        new_down = Downscaling(**down)
+        new_melt = Melt(**melt)
+        return dataclasses.replace(self, melt=new_melt, downscaling=new_down, raw=raw)
+
+
+_SECTION_TYPES = {
+    "site": Site, "dem": Dem, "glaciers": GlacierOutlines, "climate": Climate,
+    "downscaling": Downscaling, "melt": Melt, "balance": Balance, "output": Output,
+    "radiation": Radiation, "observations": Observations, "calibration": Calibration,
+}
+
+
+def _suggest(name: str, choices) -> str:
+    close = difflib.get_close_matches(name, list(choices), n=1)
+    return f' (did you mean "{close[0]}"?)' if close else ""
+
+
+def parse_config(data: dict, base_dir: Path, source: Path | None = None) -> Config:
+    """Validate a TOML mapping and build a :class:`Config`; paths resolve against ``base_dir``."""
+    label = source.name if source else "config"
+    unknown = [s for s in data if s not in SCHEMA]
+    if unknown:
+        s = unknown[0]
+        raise InputError(f"{label}: unknown section [{s}]{_suggest(s, SCHEMA)}; allowed sections are "
+                         + ", ".join(f"[{k}]" for k in SCHEMA) + ".")
+    for s in REQUIRED_SECTIONS:
+        if s not in data:
+            raise InputError(f"{label}: the section [{s}] is missing; add it (see configs/demo.toml).")
+    sections = {}
+    for name, spec in SCHEMA.items():
+        given = data.get(name)
+        if given is None:
+            if name in ("glaciers", "observations", "calibration"):
+                continue
+            given = {}
+        if not isinstance(given, dict):
+            raise InputError(f"{label}: [{name}] must be a section (a table of keys), not a value.")
+        for key in given:
+            if key not in spec:
+                raise InputError(f"{label}: unknown key \"{key}\" in [{name}]{_suggest(key, spec)}; "
+                                 f"allowed keys are {', '.join(spec)}.")
+        values = {}
+        for key, (check, dflt) in spec.items():
+            where = f"{label}: [{name}] {key}"
+            if key in given:
+                value = check(given[key], where)
+            elif dflt is REQUIRED:
+                raise InputError(f"{label}: [{name}] needs the key \"{key}\"; add it (see configs/demo.toml).")
+            else:
+                value = dflt
+            if (name, key) in PATH_KEYS and value is not None:
+                value = (base_dir / Path(value).expanduser()).resolve()
+            values[key] = value
+        sections[name] = _SECTION_TYPES[name](**values)
+
+    cl = sections["climate"]
+    if cl.start and cl.end and cl.end <= cl.start:
+        raise InputError(f"{label}: [climate] end ({cl.end}) must come after start ({cl.start}).")
+    _check_calibration(sections.get("calibration"), label)
+    return Config(**sections, source=source, raw=data)
+
+
+def _check_calibration(cal: Calibration | None, label: str) -> None:
+    if cal is None:
+        return
+    allowed = set(numeric_keys("melt")) | set(numeric_keys("downscaling")) | {"lapse_rate_k_per_m"}
+    if not cal.parameters:
+        raise InputError(f"{label}: [calibration] parameters is empty; name at least one numeric key "
+                         "of [melt] or [downscaling].")
+    for p in cal.parameters:
+        if p not in allowed:
+            raise InputError(f"{label}: [calibration] parameters names \"{p}\", which is not a numeric "
+                             f"key of [melt] or [downscaling]{_suggest(p, allowed)}; allowed: "
+                             + ", ".join(sorted(allowed)) + ".")
+    for p, b in cal.bounds.items():
+        if p not in cal.parameters:
+            raise InputError(f"{label}: [calibration] bounds gives \"{p}\", which is not in parameters.")
+        if (not isinstance(b, list) or len(b) != 2
+                or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in b) or b[0] >= b[1]):
+            raise InputError(f"{label}: [calibration] bounds for \"{p}\" must be [low, high] with low < high; got {b!r}.")
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a TOML config file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML file. Relative paths inside it resolve against its folder.
+
+    Returns
+    -------
+    Config
+
+    Raises
+    ------
+    InputError
+        When the file is missing or not TOML, or any key is unknown, of the wrong
+        type or impossible; the message names the key.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{path}: config file not found; check the path.") from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise InputError(f"{path}: cannot read the config file ({e}).") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise InputError(f"{path.name}: not valid TOML ({e}); fix the line it names.") from None
+    return parse_config(data, path.resolve().parent, source=path.resolve())

@@ -1,0 +1,314 @@
+"""The Python API: prepare the inputs once, run the kernel, derive the metrics.
+
+>>> import firnline
+>>> cfg = firnline.load_config("configs/demo.toml")
+>>> result = firnline.run(cfg)                  # doctest: +SKIP
+>>> result.summary.head()                       # doctest: +SKIP
+>>> result.write("out")                         # doctest: +SKIP
+
+:func:`prepare` reads every input once (grid, terrain, outlines, forcing and, for
+the radiation method, the radiation table) into a :class:`Setup`; :func:`simulate`
+runs the kernel on it for any parameters and scenarios; :func:`run` does both and
+derives per-glacier metrics. Scenario sweeps and calibration call :func:`prepare`
+once and :func:`simulate` many times.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from . import __version__
+from .config import Config
+from .forcing import Forcing, read_station
+from .grid import Grid, file_checksum, read_dem
+from .kernel import KernelParams, KernelResult, run_kernel
+from .metrics import YearMetrics, glacier_year
+from .terrain import slope_aspect
+
+SUMMARY_COLUMNS = ["glacier", "balance_year", "area_km2", "annual_balance_mwe", "winter_balance_mwe",
+                   "summer_balance_mwe", "ela_m", "aar", "ela_flag"]
+PROFILE_COLUMNS = ["glacier", "balance_year", "band_bottom_m", "band_top_m", "area_km2",
+                   "annual_balance_mwe"]
+
+CAUTION = ("firnline results are model estimates. Before they inform water-resource, hydropower "
+           "or hazard decisions they must be reviewed by qualified practitioners under the "
+           "regulations that apply locally.")
+
+
+@dataclass
+class Setup:
+    """Everything a kernel run needs, read and derived once.
+
+    ``cells`` are the flat (C-order) indices of the valid DEM cells; every per-cell
+    array below (``z_m``, ``glacier_mask``, the radiation table) follows that order.
+    ``glacier_pos`` gives, per glacier, the positions of its cells in that order.
+    """
+
+    config: Config
+    grid: Grid
+    slope_deg: np.ndarray
+    aspect_deg: np.ndarray
+    glaciers: object
+    forcing: Forcing
+    cells: np.ndarray
+    z_m: np.ndarray
+    glacier_mask: np.ndarray
+    glacier_pos: list
+    radiation: object | None
+    checksums: dict
+    notes: list = field(default_factory=list)
+    timings: dict = field(default_factory=dict)
+
+
+ProgressFactory = Callable[[str, int], Callable[[int], None]] | None
+
+
+def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bool | None = None) -> Setup:
+    """Read and check every input of ``config`` once.
+
+    Parameters
+    ----------
+    config : Config
+    progress : callable(label, total) -> callable(done), optional
+        Makes a progress callback for a long step (the CLI passes tqdm bars).
+    need_radiation : bool, optional
+        Build the radiation table; default: when ``[melt] method = "radiation"``.
+    """
+    from . import glaciers as glaciers_mod
+
+    t0 = time.perf_counter()
+    notes: list[str] = []
+    grid = read_dem(config.dem.path)
+    notes += grid.notes
+    slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
+    checksums = {"dem": grid.checksum}
+    if config.source is not None:
+        checksums["config"] = file_checksum(config.source)
+    if config.glaciers is not None:
+        gl = glaciers_mod.load_glaciers(config.glaciers.outlines, config.glaciers.id_field,
+                                        config.glaciers.layer, grid.crs, grid.transform, grid.shape,
+                                        grid.valid, grid.cell_area_m2)
+        checksums["outlines"] = file_checksum(config.glaciers.outlines)
+    else:
+        gl = glaciers_mod.whole_grid(config.site.name, grid.valid, grid.cell_area_m2)
+    notes += list(gl.warnings)
+    cl = config.climate
+    forcing = read_station(cl.station_file, cl.date_column, cl.temperature_column,
+                           cl.precipitation_column, config.balance.year_start,
+                           config.balance.winter_end, cl.start, cl.end)
+    checksums["station"] = file_checksum(cl.station_file)
+    notes += forcing.notes
+    cells = np.flatnonzero(grid.valid.ravel())
+    z = grid.elevation.ravel()[cells]
+    mask = gl.total_fraction.ravel()[cells] > 0
+    pos = [np.searchsorted(cells, c) for c in gl.cells]
+    t1 = time.perf_counter()
+    setup = Setup(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, glaciers=gl,
+                  forcing=forcing, cells=cells, z_m=z, glacier_mask=mask, glacier_pos=pos,
+                  radiation=None, checksums=checksums, notes=notes,
+                  timings={"read_inputs_s": t1 - t0})
+    if need_radiation is None:
+        need_radiation = config.melt.method == "radiation"
+    if need_radiation:
+        from .radiation_setup import radiation_for
+        setup.radiation = radiation_for(setup, progress)
+        setup.timings["radiation_s"] = time.perf_counter() - t1
+    return setup
+
+
+def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
+             precip_change_pct: Sequence[float] = (0.0,), progress: Callable[[int], None] | None = None,
+             snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None) -> KernelResult:
+    """Run the kernel on a prepared setup.
+
+    Parameters
+    ----------
+    setup : Setup
+    config : Config, optional
+        Parameters to use (default: ``setup.config``); for example a calibration trial.
+    warming_k, precip_change_pct : sequences of equal length
+        One scenario per pair (K, %).
+    progress : callable(days_done), optional
+    snapshot_days : day boundaries at which to keep the cumulative balance (see kernel).
+    cells : ndarray of int, optional
+        Positions (into ``setup.cells`` order) to restrict the run to.
+    """
+    cfg = config or setup.config
+    params = KernelParams.from_config(cfg)
+    f = setup.forcing
+    z, mask, rad = setup.z_m, setup.glacier_mask, setup.radiation
+    if cells is not None:
+        z, mask = z[cells], mask[cells]
+        rad = rad.subset(cells) if rad is not None else None
+    if params.use_radiation and rad is None:
+        raise RuntimeError("the setup was prepared without the radiation table")
+    return run_kernel(z, mask, cfg.climate.station_elevation_m, f.temperature_c, f.precipitation_mm,
+                      f.month, f.day_of_year, f.year_index, f.winter, params, warming_k,
+                      precip_change_pct, radiation=rad, snapshot_days=snapshot_days, progress=progress)
+
+
+# ----------------------------------------------------------------------------
+# results
+# ----------------------------------------------------------------------------
+
+@dataclass
+class RunResult:
+    """Result of :func:`run`.
+
+    fields : xarray.Dataset, dims (balance_year, y, x): annual_balance, winter_balance,
+        summer_balance (glacier surface; NaN off glaciers), accumulation, ablation (every
+        valid cell), all m w.e.; glacier_fraction and elevation (y, x).
+    summary : DataFrame with :data:`SUMMARY_COLUMNS`
+    profiles : DataFrame with :data:`PROFILE_COLUMNS`
+    gradients : DataFrame (glacier, balance_year, gradient_mwe_per_100m)
+    """
+
+    setup: Setup
+    config: Config
+    warming_k: float
+    precip_change_pct: float
+    fields: xr.Dataset
+    summary: pd.DataFrame
+    profiles: pd.DataFrame
+    gradients: pd.DataFrame
+    timings: dict
+
+    def write(self, out_dir: str | Path | None = None) -> list[Path]:
+        """Write every output file into ``out_dir`` (default: ``[output] dir``)."""
+        from .products import write_run
+        return write_run(self, Path(out_dir) if out_dir is not None else self.config.output.dir)
+
+
+def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray]:
+    """Per-year per-cell balances of one scenario, m w.e., each (n_years, n_cells) float32."""
+    s = scenario
+    acc_w, acc_s = kres.acc_winter[s], kres.acc_summer[s]
+    abl_w = kres.snow_melt_winter[s] + kres.ice_melt_winter[s]
+    abl_s = kres.snow_melt_summer[s] + kres.ice_melt_summer[s]
+    k = np.float32(1e-3)  # mm w.e. -> m w.e. (1 kg m-2 = 1 mm w.e.; common practice)
+    winter = (acc_w - abl_w) * k
+    summer = (acc_s - abl_s) * k
+    return {"accumulation": (acc_w + acc_s) * k, "ablation": (abl_w + abl_s) * k,
+            "winter_balance": winter, "summer_balance": summer, "annual_balance": winter + summer}
+
+
+def glacier_metrics(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> dict:
+    """Metrics per glacier and year: {glacier name: [YearMetrics per year]}."""
+    gl = setup.glaciers
+    area = setup.grid.cell_area_m2
+    bw = setup.config.balance.band_width_m
+    out = {}
+    for name, pos, frac in zip(gl.names, setup.glacier_pos, gl.fractions):
+        z = setup.z_m[pos]
+        a = frac * area
+        out[name] = [glacier_year(z, a, fields["annual_balance"][y][pos].astype("float64"),
+                                  fields["winter_balance"][y][pos].astype("float64"),
+                                  fields["summer_balance"][y][pos].astype("float64"), bw)
+                     for y in range(len(years))]
+    return out
+
+
+def tables(metrics: dict, years: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """summary, profiles and gradients tables from :func:`glacier_metrics`."""
+    rows, prow, grow = [], [], []
+    for name, per_year in metrics.items():
+        for year, m in zip(years, per_year):
+            m: YearMetrics
+            rows.append([name, int(year), m.area_m2 / 1e6, m.annual_mwe, m.winter_mwe, m.summer_mwe,
+                         m.ela_m, m.aar, m.ela_flag])
+            grow.append([name, int(year), m.gradient_mwe_per_100m])
+            p = m.profile
+            for b0, b1, a, b in zip(p.band_bottom_m, p.band_top_m, p.area_m2, p.balance_mwe):
+                prow.append([name, int(year), float(b0), float(b1), a / 1e6, float(b)])
+    summary = pd.DataFrame(rows, columns=SUMMARY_COLUMNS)
+    profiles = pd.DataFrame(prow, columns=PROFILE_COLUMNS)
+    gradients = pd.DataFrame(grow, columns=["glacier", "balance_year", "gradient_mwe_per_100m"])
+    return summary, profiles, gradients
+
+
+def to_grid(setup: Setup, values: np.ndarray, where: np.ndarray | None = None) -> np.ndarray:
+    """Scatter per-cell values (..., n_cells) onto (..., ny, nx), NaN elsewhere (or where ~where)."""
+    ny, nx = setup.grid.shape
+    lead = values.shape[:-1]
+    out = np.full(lead + (ny * nx,), np.nan, dtype="float32")
+    v = values if where is None else np.where(where, values, np.nan)
+    out[..., setup.cells] = v
+    return out.reshape(lead + (ny, nx))
+
+
+def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> xr.Dataset:
+    """Per-year maps as an xarray Dataset with dims (balance_year, y, x) and units."""
+    x, y = setup.grid.cell_centres()
+    on_glacier = setup.glacier_mask
+    long_names = {
+        "annual_balance": "annual surface mass balance of the glacier surface",
+        "winter_balance": "winter surface mass balance of the glacier surface (fixed-date system)",
+        "summer_balance": "summer surface mass balance of the glacier surface (fixed-date system)",
+        "accumulation": "accumulation (snowfall) in the balance year",
+        "ablation": "ablation (melt of snow and ice) in the balance year",
+    }
+    data = {}
+    for name, ln in long_names.items():
+        where = on_glacier if name.endswith("balance") else None
+        data[name] = (("balance_year", "y", "x"), to_grid(setup, fields[name], where),
+                      {"units": "m w.e.", "long_name": ln})
+    frac = setup.glaciers.total_fraction.astype("float32")
+    data["glacier_fraction"] = (("y", "x"), np.where(setup.grid.valid, frac, np.nan).astype("float32"),
+                                {"units": "1", "long_name": "glacier share of the cell area"})
+    data["elevation"] = (("y", "x"), setup.grid.elevation.astype("float32"),
+                         {"units": "m", "long_name": "surface elevation of the DEM"})
+    ds = xr.Dataset(data, coords={"balance_year": np.asarray(years, dtype="int32"),
+                                  "y": ("y", y, {"units": "m"}), "x": ("x", x, {"units": "m"})})
+    ds.attrs.update({"crs_wkt": setup.grid.crs.to_wkt(), "source": f"firnline {__version__}",
+                     "caution": CAUTION})
+    return ds
+
+
+def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
+        progress: ProgressFactory = None, setup: Setup | None = None) -> RunResult:
+    """Model every complete balance year of the record.
+
+    Parameters
+    ----------
+    config : Config
+    warming_k : float
+        Uniform warming added to the station temperature, K.
+    precip_change_pct : float
+        Precipitation change, % (precipitation is scaled by 1 + pct/100).
+    progress : callable(label, total) -> callable(done), optional
+    setup : Setup, optional
+        A prepared setup to reuse (default: :func:`prepare` is called).
+
+    Returns
+    -------
+    RunResult
+    """
+    if setup is None:
+        setup = prepare(config, progress)
+    t0 = time.perf_counter()
+    cb = progress("days", setup.forcing.n_days) if progress else None
+    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=cb)
+    t1 = time.perf_counter()
+    years = [int(y) for y in setup.forcing.years]
+    f = cell_fields(setup, kres, 0)
+    met = glacier_metrics(setup, f, years)
+    summary, profiles, gradients = tables(met, years)
+    ds = fields_dataset(setup, f, years)
+    t2 = time.perf_counter()
+    timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1)
+    return RunResult(setup=setup, config=config, warming_k=warming_k,
+                     precip_change_pct=precip_change_pct, fields=ds, summary=summary,
+                     profiles=profiles, gradients=gradients, timings=timings)
+
+
+def parameters_used(config: Config) -> dict:
+    """The model parameters of a config, as plain numbers (for run.json)."""
+    return {"downscaling": dataclasses.asdict(config.downscaling), "melt": dataclasses.asdict(config.melt)}

@@ -1,0 +1,131 @@
+"""Writers: GeoTIFF, CSV and JSON, all-or-nothing.
+
+Every command writes its files into a hidden staging folder inside the output
+folder; only when all of them are complete are they renamed into place (an
+``os.replace`` in the same file system each). A failure on the way removes the
+staging folder, so a failed run leaves no partial output behind.
+
+GeoTIFFs follow GDAL's conventions: float32, tiled 256 x 256, DEFLATE with the
+floating-point predictor, nodata -9999, a band description and unit, and the
+run's provenance in the dataset tags.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Iterator, Sequence
+
+import numpy as np
+import pandas as pd
+import rasterio
+
+NODATA = -9999.0
+
+
+class Staging:
+    """A staging folder; files written with :meth:`path` appear in ``final_dir`` on commit."""
+
+    def __init__(self, final_dir: Path):
+        self.final_dir = Path(final_dir)
+        self.final_dir.mkdir(parents=True, exist_ok=True)
+        self.dir = Path(tempfile.mkdtemp(prefix=".firnline-staging-", dir=self.final_dir))
+        self.names: list[str] = []
+
+    def path(self, name: str) -> Path:
+        """Where to write ``name`` now (inside the staging folder)."""
+        if name not in self.names:
+            self.names.append(name)
+        return self.dir / name
+
+    def commit(self) -> list[Path]:
+        done = []
+        for name in self.names:
+            src = self.dir / name
+            if src.exists():
+                dst = self.final_dir / name
+                os.replace(src, dst)
+                done.append(dst)
+        shutil.rmtree(self.dir, ignore_errors=True)
+        return done
+
+    def discard(self) -> None:
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def staged(final_dir: Path) -> Iterator[Staging]:
+    """Context manager: stage files, move them into ``final_dir`` only on success."""
+    st = Staging(final_dir)
+    try:
+        yield st
+    except BaseException:
+        st.discard()
+        raise
+    st.commit()
+
+
+def write_geotiff(path: Path, bands: np.ndarray | Sequence[np.ndarray], transform, crs,
+                  descriptions: Sequence[str], units: str, tags: dict | None = None,
+                  dtype: str = "float32", nodata: float = NODATA) -> None:
+    """Write one or more 2D bands as a tiled, DEFLATE-compressed GeoTIFF.
+
+    NaN becomes ``nodata``. ``descriptions`` gives one text per band; ``units`` is set
+    on every band; ``tags`` (provenance) go into the dataset metadata.
+    """
+    arr = np.asarray(bands)
+    if arr.ndim == 2:
+        arr = arr[None]
+    count, ny, nx = arr.shape
+    profile = dict(driver="GTiff", width=nx, height=ny, count=count, dtype=dtype, crs=crs,
+                   transform=transform, nodata=nodata, compress="deflate", tiled=True,
+                   blockxsize=256, blockysize=256, BIGTIFF="IF_SAFER")
+    if np.dtype(dtype).kind == "f":
+        profile["predictor"] = 3
+        data = np.where(np.isfinite(arr), arr, nodata).astype(dtype)
+    else:
+        data = arr.astype(dtype)
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(data)
+        for b in range(count):
+            dst.set_band_description(b + 1, descriptions[b])
+            dst.set_band_unit(b + 1, units)
+        if tags:
+            dst.update_tags(**{k: str(v) for k, v in tags.items()})
+
+
+def _clean(obj):
+    """JSON-safe copy: NaN -> null, numpy scalars -> Python, Paths -> text."""
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return None if not math.isfinite(v) else v
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    if hasattr(obj, "isoformat"):
+        return obj.isoformat()
+    return obj
+
+
+def write_json(path: Path, data: dict) -> None:
+    with open(path, "w", encoding="utf-8") as f:
+        json.dump(_clean(data), f, indent=2)
+        f.write("\n")
+
+
+def write_csv(path: Path, df: pd.DataFrame, float_format: str = "%.4f") -> None:
+    df.to_csv(path, index=False, float_format=float_format, na_rep="")

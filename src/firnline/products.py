@@ -1,0 +1,139 @@
+"""The files of a run: which products, named how, with which provenance.
+
+``write_run`` is the single place that knows the run's output layout (see the
+contract in DESIGN.md); the generic writers live in :mod:`firnline.outputs`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .model import CAUTION, RunResult, parameters_used
+from .outputs import staged, write_csv, write_geotiff, write_json
+
+MAPS = [  # (variable in fields, file prefix, description)
+    ("annual_balance", "annual_balance", "annual surface mass balance"),
+    ("winter_balance", "winter_balance", "winter surface mass balance (fixed-date system)"),
+    ("summer_balance", "summer_balance", "summer surface mass balance (fixed-date system)"),
+    ("accumulation", "accumulation", "accumulation (snowfall)"),
+    ("ablation", "ablation", "ablation (melt of snow and ice)"),
+]
+
+
+def provenance(result: RunResult) -> dict:
+    """Tags written into every GeoTIFF of a run."""
+    cfg = result.config
+    return {
+        "firnline_version": __version__,
+        "created_utc": dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "config": str(cfg.source) if cfg.source else "",
+        "config_sha256": result.setup.checksums.get("config", ""),
+        "dem_sha256": result.setup.checksums["dem"],
+        "melt_method": cfg.melt.method,
+        "warming_k": f"{result.warming_k:g}",
+        "precip_change_pct": f"{result.precip_change_pct:g}",
+        "caution": CAUTION,
+    }
+
+
+def glacier_results(result: RunResult) -> dict:
+    """Per-glacier results and the all-glaciers aggregate for run.json."""
+    s = result.summary
+    g = result.gradients
+    per = {}
+    for name, rows in s.groupby("glacier", sort=False):
+        grad = g[g.glacier == name]
+        per[name] = {
+            "area_km2": float(rows.area_km2.iloc[0]),
+            "mean_annual_balance_mwe": float(rows.annual_balance_mwe.mean()),
+            "mean_winter_balance_mwe": float(rows.winter_balance_mwe.mean()),
+            "mean_summer_balance_mwe": float(rows.summer_balance_mwe.mean()),
+            "mean_ela_m": float(rows.ela_m.mean()) if rows.ela_m.notna().any() else None,
+            "mean_aar": float(rows.aar.mean()),
+            "mean_ablation_gradient_mwe_per_100m": (float(grad.gradient_mwe_per_100m.mean())
+                                                   if grad.gradient_mwe_per_100m.notna().any() else None),
+            "years": [
+                {"balance_year": int(r.balance_year), "annual_balance_mwe": r.annual_balance_mwe,
+                 "winter_balance_mwe": r.winter_balance_mwe, "summer_balance_mwe": r.summer_balance_mwe,
+                 "ela_m": r.ela_m, "aar": r.aar, "ela_flag": r.ela_flag,
+                 "ablation_gradient_mwe_per_100m": gr}
+                for r, gr in zip(rows.itertuples(), grad.gradient_mwe_per_100m)],
+        }
+    # all glaciers together: area-weighted balances per year
+    agg_years = []
+    for year, rows in s.groupby("balance_year"):
+        w = rows.area_km2.to_numpy()
+        agg_years.append({"balance_year": int(year), "area_km2": float(w.sum()),
+                          **{c: float(np.sum(rows[c].to_numpy() * w) / w.sum())
+                             for c in ("annual_balance_mwe", "winter_balance_mwe", "summer_balance_mwe")}})
+    aggregate = {"area_km2": float(s.groupby("glacier").area_km2.first().sum()),
+                 "mean_annual_balance_mwe": float(np.mean([y["annual_balance_mwe"] for y in agg_years])),
+                 "years": agg_years}
+    return {"glaciers": per, "all_glaciers": aggregate}
+
+
+def run_json(result: RunResult, files: list[str]) -> dict:
+    cfg = result.config
+    setup = result.setup
+    return {
+        "firnline_version": __version__,
+        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        "caution": CAUTION,
+        "config_file": cfg.source,
+        "config": {k: (dataclasses.asdict(v) if dataclasses.is_dataclass(v) else v)
+                   for k, v in ((f.name, getattr(cfg, f.name)) for f in dataclasses.fields(cfg))
+                   if k not in ("raw", "source")},
+        "parameters": parameters_used(cfg),
+        "scenario": {"warming_k": result.warming_k, "precip_change_pct": result.precip_change_pct},
+        "input_sha256": setup.checksums,
+        "grid": {"crs": setup.grid.crs.to_string(), "shape": list(setup.grid.shape),
+                 "transform": list(setup.grid.transform)[:6], "cell_size_m": list(setup.grid.cell_size_m),
+                 "valid_cells": setup.grid.n_valid},
+        "record": {"first_day": str(setup.forcing.dates[0]), "last_day": str(setup.forcing.dates[-1]),
+                   "balance_years": [int(y) for y in setup.forcing.years]},
+        "initial_condition": "no snow on any cell on the first day of the record; the snowpack "
+                             "then carries over between balance years",
+        "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
+        **glacier_results(result),
+        "notes": setup.notes,
+        "timings_s": result.timings,
+        "files": files,
+    }
+
+
+def write_run(result: RunResult, out_dir: Path) -> list[Path]:
+    """Write every product of a run into ``out_dir``, all or nothing."""
+    setup = result.setup
+    grid = setup.grid
+    tags = provenance(result)
+    ds = result.fields
+    years = [int(y) for y in ds.balance_year.values]
+    with staged(out_dir) as st:
+        write_csv(st.path("summary.csv"), result.summary)
+        write_csv(st.path("profiles.csv"), result.profiles)
+        for var, prefix, desc in MAPS:
+            for i, year in enumerate(years):
+                write_geotiff(st.path(f"{prefix}_{year}.tif"), ds[var].values[i], grid.transform, grid.crs,
+                              [f"{desc}, balance year {year}"], "m w.e.", tags)
+        mean = ds["annual_balance"].mean("balance_year").values
+        write_geotiff(st.path("mean_annual_balance.tif"), mean, grid.transform, grid.crs,
+                      [f"mean annual surface mass balance {years[0]}-{years[-1]}"], "m w.e.", tags)
+        write_json(st.path("run.json"), run_json(result, list(st.names) + ["run.json"]))
+    return [Path(out_dir) / n for n in st.names]
+
+
+def summary_table(summary: pd.DataFrame) -> str:
+    """The console's closing table: glacier, year, balance, ELA, AAR."""
+    lines = [f"{'glacier':<20} {'year':>5} {'balance':>9} {'ELA':>7} {'AAR':>5}  flag",
+             f"{'':<20} {'':>5} {'m w.e.':>9} {'m':>7} {'':>5}"]
+    for r in summary.itertuples():
+        ela = f"{r.ela_m:7.0f}" if np.isfinite(r.ela_m) else f"{'-':>7}"
+        lines.append(f"{str(r.glacier)[:20]:<20} {r.balance_year:>5} {r.annual_balance_mwe:9.2f} "
+                     f"{ela} {r.aar:5.2f}  {r.ela_flag}")
+    return "\n".join(lines)

@@ -1,0 +1,80 @@
+"""Shared builders of small synthetic cases (DEM GeoTIFF, station CSV, config)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import rasterio
+from rasterio.transform import from_origin
+
+CRS = "EPSG:32632"
+
+
+def write_dem(path: Path, elevation: np.ndarray, cell=50.0, x0=600000.0, y0=5150000.0, crs=CRS,
+              nodata=-9999.0) -> Path:
+    z = np.where(np.isfinite(elevation), elevation, nodata).astype("float32")
+    with rasterio.open(path, "w", driver="GTiff", width=z.shape[1], height=z.shape[0], count=1,
+                       dtype="float32", crs=crs, transform=from_origin(x0, y0, cell, cell),
+                       nodata=nodata) as dst:
+        dst.write(z, 1)
+    return path
+
+
+def ramp(ny=20, nx=10, z_top=3000.0, z_bottom=2000.0) -> np.ndarray:
+    """A plane rising northwards (row 0 is north) from z_bottom to z_top at the row centres."""
+    z = np.linspace(z_top, z_bottom, ny)
+    return np.repeat(z[:, None], nx, axis=1)
+
+
+def write_station(path: Path, start="2016-10-01", end="2018-09-30", t=5.0, p=5.0) -> Path:
+    dates = pd.date_range(start, end, freq="D")
+    tt = np.broadcast_to(np.asarray(t, float), dates.shape) if np.ndim(t) == 0 else np.asarray(t)
+    pp = np.broadcast_to(np.asarray(p, float), dates.shape) if np.ndim(p) == 0 else np.asarray(p)
+    pd.DataFrame({"date": dates.strftime("%Y-%m-%d"), "temperature_c": tt,
+                  "precipitation_mm": pp}).to_csv(path, index=False)
+    return path
+
+
+def write_config(path: Path, sections: dict) -> Path:
+    def val(v):
+        if isinstance(v, str):
+            return f'"{v}"'
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, (list, tuple)):
+            return "[" + ", ".join(val(x) for x in v) + "]"
+        if isinstance(v, dict):
+            return "{ " + ", ".join(f"{k} = {val(x)}" for k, x in v.items()) + " }"
+        return repr(v)
+    lines = []
+    for name, keys in sections.items():
+        lines.append(f"[{name}]")
+        lines += [f"{k} = {val(v)}" for k, v in keys.items()]
+        lines.append("")
+    path.write_text("\n".join(lines))
+    return path
+
+
+def base_sections(station_elevation=2000.0) -> dict:
+    return {
+        "site": {"name": "test plane"},
+        "dem": {"path": "dem.tif"},
+        "climate": {"station_file": "station.csv", "station_elevation_m": station_elevation},
+        "output": {"dir": "out"},
+    }
+
+
+@pytest.fixture
+def plane_case(tmp_path):
+    """A planar glacier 2000..3000 m under constant forcing; returns a builder."""
+    def build(t=5.0, p=5.0, start="2016-10-01", end="2018-09-30", **overrides):
+        write_dem(tmp_path / "dem.tif", ramp())
+        write_station(tmp_path / "station.csv", start, end, t, p)
+        sec = base_sections()
+        for k, v in overrides.items():
+            sec.setdefault(k, {}).update(v)
+        return write_config(tmp_path / "case.toml", sec)
+    return build

@@ -129,3 +129,49 @@ def write_json(path: Path, data: dict) -> None:
 
 def write_csv(path: Path, df: pd.DataFrame, float_format: str = "%.4f") -> None:
     df.to_csv(path, index=False, float_format=float_format, na_rep="")
+
+
+# CF standard names where CF has one (CF Standard Name Table); balances in metres of
+# water equivalent over a balance year have none, so they carry long_name and comment only.
+CF_STANDARD_NAMES = {
+    "elevation": "surface_altitude",
+    "glacier_fraction": "land_ice_area_fraction",
+}
+
+
+def write_netcdf(path: Path, ds, crs, attrs: dict | None = None) -> None:
+    """Write a (balance_year, y, x) Dataset as compressed NetCDF-CF (NetCDF-4 via h5netcdf).
+
+    The grid-mapping variable ``crs`` comes from pyproj's ``CRS.to_cf()`` (CF-1.8
+    conventions, with ``crs_wkt``); every data variable points at it through
+    ``grid_mapping``. Units "m w.e." (not UDUNITS) are written as ``units = "m"`` with a
+    comment that the value is metres of water equivalent.
+    """
+    import xarray as xr
+    from pyproj import CRS
+
+    pcrs = CRS.from_wkt(crs.to_wkt()) if not isinstance(crs, CRS) else crs
+    out = ds.copy()
+    out["crs"] = xr.DataArray(np.int32(0), attrs=pcrs.to_cf())
+    out["x"].attrs.update(standard_name="projection_x_coordinate", long_name="x coordinate of cell centre",
+                          units="m")
+    out["y"].attrs.update(standard_name="projection_y_coordinate", long_name="y coordinate of cell centre",
+                          units="m")
+    out["balance_year"].attrs.update(long_name="balance year, labelled by the calendar year it ends in",
+                                     units="1")
+    encoding = {}
+    for name, var in out.data_vars.items():
+        if name == "crs":
+            continue
+        a = dict(var.attrs)
+        if a.get("units") == "m w.e.":
+            a["units"] = "m"
+            a["comment"] = "metres of water equivalent (m w.e.)"
+        if name in CF_STANDARD_NAMES:
+            a["standard_name"] = CF_STANDARD_NAMES[name]
+        a["grid_mapping"] = "crs"
+        var.attrs = a
+        encoding[name] = {"zlib": True, "complevel": 4, "dtype": "float32", "_FillValue": np.float32(NODATA)}
+    out.attrs = {k: v for k, v in out.attrs.items() if k != "crs_wkt"}
+    out.attrs.update({"Conventions": "CF-1.8"}, **(attrs or {}))
+    out.to_netcdf(path, engine="h5netcdf", encoding=encoding)

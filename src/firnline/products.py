@@ -15,7 +15,7 @@ import pandas as pd
 
 from . import __version__
 from .model import CAUTION, RunResult, parameters_used
-from .outputs import staged, write_csv, write_geotiff, write_json
+from .outputs import staged, write_csv, write_geotiff, write_json, write_netcdf
 
 MAPS = [  # (variable in fields, file prefix, description)
     ("annual_balance", "annual_balance", "annual surface mass balance"),
@@ -124,6 +124,13 @@ def write_run(result: RunResult, out_dir: Path) -> list[Path]:
         mean = ds["annual_balance"].mean("balance_year").values
         write_geotiff(st.path("mean_annual_balance.tif"), mean, grid.transform, grid.crs,
                       [f"mean annual surface mass balance {years[0]}-{years[-1]}"], "m w.e.", tags)
+        write_geotiff(st.path("glacier_id.tif"), setup.glaciers.id_map, grid.transform, grid.crs,
+                      ["glacier id with the largest share of the cell (lookup in run.json)"], "1",
+                      tags, dtype="int32", nodata=0)
+        write_netcdf(st.path("balance.nc"), ds, grid.crs,
+                     {"title": f"firnline surface mass balance, {result.config.site.name}",
+                      "history": f"created by firnline {__version__}", **{k: tags[k] for k in
+                      ("dem_sha256", "config_sha256", "melt_method", "warming_k", "precip_change_pct")}})
         write_json(st.path("run.json"), run_json(result, list(st.names) + ["run.json"]))
     return [Path(out_dir) / n for n in st.names]
 

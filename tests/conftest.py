@@ -8,6 +8,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import rasterio
+import shapely
+import warnings
+from pyogrio import raw
 from rasterio.transform import from_origin
 
 CRS = "EPSG:32632"
@@ -55,6 +58,23 @@ def write_config(path: Path, sections: dict) -> Path:
         lines += [f"{k} = {val(v)}" for k, v in keys.items()]
         lines.append("")
     path.write_text("\n".join(lines))
+    return path
+
+
+def write_outlines(path, names, geoms, driver, crs="EPSG:4326", layer=None, extra=None, append=False):
+    """Write outlines with pyogrio (geometry None = a feature without geometry)."""
+    wkb = np.array([None if g is None else shapely.to_wkb(g) for g in geoms], dtype=object)
+    fields, data = ["name"], [np.array(names, dtype=object)]
+    for key, values in (extra or {}).items():
+        fields.append(key)
+        data.append(np.asarray(values))
+    gtype = "MultiPolygon" if driver == "ESRI Shapefile" else "Unknown"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # pyogrio: no crs given
+        raw.write(
+            str(path), wkb, data, fields, driver=driver, crs=crs, layer=layer,
+            geometry_type=gtype, append=append,
+        )
     return path
 
 

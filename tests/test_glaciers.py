@@ -8,7 +8,7 @@ import pyproj
 import pytest
 import rasterio.crs
 import shapely
-from pyogrio import raw
+from conftest import write_outlines
 from rasterio.transform import from_origin
 
 from firnline.errors import InputError
@@ -74,23 +74,6 @@ def build_lonlat(names, geoms, valid=None, transform=TRANSFORM, shape=SHAPE, cel
     return build_glaciers(
         names, projected, transform, shape, valid_all() if valid is None else valid, cell_area
     )
-
-
-def write_outlines(path, names, geoms, driver, crs="EPSG:4326", layer=None, extra=None, append=False):
-    """Write outlines with pyogrio (geometry None = a feature without geometry)."""
-    wkb = np.array([None if g is None else shapely.to_wkb(g) for g in geoms], dtype=object)
-    fields, data = ["name"], [np.array(names, dtype=object)]
-    for key, values in (extra or {}).items():
-        fields.append(key)
-        data.append(np.asarray(values))
-    gtype = "MultiPolygon" if driver == "ESRI Shapefile" else "Unknown"
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", UserWarning)  # pyogrio: no crs given
-        raw.write(
-            str(path), wkb, data, fields, driver=driver, crs=crs, layer=layer,
-            geometry_type=gtype, append=append,
-        )
-    return path
 
 
 def load(path, valid=None, id_field="name", layer=None, crs=DEM_CRS):

@@ -127,7 +127,7 @@ def write_json(path: Path, data: dict) -> None:
         f.write("\n")
 
 
-def write_csv(path: Path, df: pd.DataFrame, float_format: str = "%.4f") -> None:
+def write_csv(path: Path, df: pd.DataFrame, float_format: str = "%.6g") -> None:
     df.to_csv(path, index=False, float_format=float_format, na_rep="")
 
 

@@ -1,0 +1,716 @@
+"""The invented demo catchment "Seldra": a procedural DEM, glacier outlines and a station record.
+
+Everything here is made up. Seldra is a fictional glacierised valley in an
+invented mountain range; its valley station "Seldra Dam" stands at 1200 m a.s.l.
+at the valley's outlet. The grid is placed in a real projected CRS (WGS 84 /
+UTM zone 32N, near 46.5 deg N) only so that the files behave like real inputs
+(CRS, reprojection of the outlines, sun geometry); the terrain is that of no
+real place.
+
+The generators are pure functions of their arguments and deterministic for a
+given seed; only :func:`write_demo_inputs` touches files.
+
+How the terrain is built
+------------------------
+A skeleton of valley floors (axis polylines with a floor elevation and a flat
+floor half-width at each vertex) and ridge crests (polylines with a crest
+elevation at each vertex) is rasterised on a gently warped copy of the grid, so
+that valleys and ridges do not run in straight lines. Every cell gets its
+distance to the nearest floor ``d_f`` and to the nearest crest ``d_r``; with the
+wall fraction ``F = d_f / (d_f + d_r)`` (0 on floors, 1 on crests) the
+elevation is ``z = z_floor + (z_crest - z_floor) * F**1.6``, which makes
+U-shaped, concave valley walls that meet in sharp ridges (aretes) and closed
+bowls (cirques) where a short valley ends below a curved crest. Fractal
+(spectral-synthesis) noise adds roughness, gullies and spurs on the walls and
+summits and cols on the crests, weak only on the ice-filled valley floors. A
+rock knob in the main glacier's upper basin becomes a nunatak. A soft ceiling
+keeps the highest summits below about 3480 m, and a Gaussian filter of one cell
+removes the creases.
+
+Glacier outlines are the parts of the three ice-bearing valleys above each
+glacier's terminus, where the surface lies low on the valley walls (the lateral
+margin climbing higher up-valley, so that tongues taper), below the crests, on
+slopes under 40 deg and off the nunatak; the masks are smoothed and vectorised
+on a four-times finer grid, so that the outlines do not follow cell lines.
+
+The loops below run over the few skeleton segments and over the days of one
+station record, never over cells.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import shapely
+from affine import Affine
+from scipy import ndimage
+from shapely.geometry import Polygon
+from shapely.geometry.polygon import orient
+
+from .errors import InputError
+from .outputs import staged, write_csv, write_geotiff
+
+DEM_CRS = "EPSG:32632"
+"""WGS 84 / UTM zone 32N (EPSG:32632), the CRS of the demo DEM."""
+
+STATION_ELEVATION_M = 1200.0
+"""Elevation of the invented valley station "Seldra Dam", m a.s.l."""
+
+STATION_NAME = "Seldra Dam"
+SITE_NAME = "Seldra"
+
+CELL_SIZE_M = 30.0
+"""Demo DEM cell size, m."""
+
+DEM_SHAPE = (300, 320)
+"""Demo DEM size (rows, columns)."""
+
+DEM_ORIGIN = (561_000.0, 5_150_970.0)
+"""Upper-left corner (x of the west edge, y of the north edge) of the demo DEM
+in EPSG:32632, m: about 46.5 deg N, 9.8 deg E, an arbitrary spot."""
+
+NODATA = -9999.0
+"""Nodata value of the demo GeoTIFF."""
+
+DEFAULT_SEED = 20161001
+
+GLACIER_NAMES = ("north_seldra", "kessel", "tarn")
+"""The demo glaciers: a north-facing valley glacier, an east-facing cirque
+glacier and a small high south-facing cirque glacier."""
+
+# ---------------------------------------------------------------------------
+# Terrain skeleton, in km from the grid's south-west corner (x east, y north).
+# Valley floors: (x_km, y_km, floor elevation m, flat-floor half-width m) per
+# axis vertex; ridges: (x_km, y_km, crest elevation m) per vertex. Vertices
+# just outside the grid shape the slopes that fall off its edges.
+_VALLEYS = {
+    # the main valley, ice-filled above about 2250 m, flowing north to the dam
+    "main": [
+        (4.75, 1.45, 3090.0, 200.0),
+        (4.65, 2.30, 2980.0, 260.0),
+        (4.65, 3.30, 2780.0, 180.0),
+        (4.75, 4.30, 2570.0, 120.0),
+        (4.85, 5.20, 2300.0, 90.0),
+        (4.95, 6.80, 1800.0, 80.0),
+        (5.05, 9.05, 1120.0, 110.0),
+    ],
+    # hanging cirque on the west wall of the main valley, opening east
+    "kessel": [
+        (2.30, 6.40, 3080.0, 40.0),
+        (2.90, 6.45, 2850.0, 60.0),
+        (3.45, 6.50, 2680.0, 70.0),
+        (4.10, 6.55, 2250.0, 60.0),
+        (4.75, 6.60, 1870.0, 80.0),
+    ],
+    # small high cirque on the south flank of the north-east summit
+    "tarn": [
+        (7.92, 8.05, 3120.0, 60.0),
+        (7.85, 7.55, 2880.0, 80.0),
+        (7.80, 7.10, 2600.0, 60.0),
+        (7.70, 6.55, 2120.0, 60.0),
+    ],
+    # tributary valley from the east, joining the main valley below the tongue
+    "east_branch": [
+        (9.65, 6.35, 2330.0, 140.0),
+        (8.60, 6.40, 2220.0, 140.0),
+        (7.60, 6.45, 2080.0, 140.0),
+        (4.95, 6.95, 1760.0, 110.0),
+    ],
+    # valleys beyond the catchment's ridges, and slopes falling off the grid's edges
+    "west_outer": [(1.35, 1.90, 2950.0, 120.0), (1.05, 3.80, 2550.0, 150.0),
+                   (0.60, 5.40, 2150.0, 160.0), (0.25, 9.05, 1500.0, 220.0)],
+    "east_outer": [(8.00, 1.90, 2950.0, 120.0), (8.30, 4.00, 2600.0, 140.0),
+                   (8.60, 5.90, 2260.0, 140.0), (8.60, 6.40, 2220.0, 140.0)],
+    "south_edge": [(-0.05, -0.02, 2650.0, 20.0), (4.50, -0.02, 2950.0, 20.0), (9.65, -0.02, 2700.0, 20.0)],
+    "north_edge": [(6.70, 9.02, 2500.0, 20.0), (9.65, 9.02, 2700.0, 20.0)],
+}
+_RIDGES = [
+    # southern main ridge with the catchment's highest summit
+    [(-0.05, 0.90, 2900.0), (1.60, 1.00, 3250.0), (3.20, 0.70, 3370.0), (4.50, 0.55, 3440.0),
+     (5.80, 0.75, 3350.0), (6.80, 0.95, 3300.0), (8.00, 1.15, 3380.0), (9.20, 1.30, 3250.0),
+     (9.65, 1.40, 3100.0)],
+    # west ridge of the main valley, closing in on the tongue
+    [(1.60, 1.00, 3250.0), (2.40, 2.20, 3320.0), (3.35, 3.40, 3170.0), (3.55, 4.50, 2990.0),
+     (3.40, 5.40, 2870.0), (2.90, 5.80, 3000.0)],
+    # kessel: south spur, headwall and north spur, then the ridge down to the dam
+    [(1.85, 5.70, 3250.0), (2.80, 5.80, 3060.0), (3.70, 5.95, 2620.0), (4.15, 6.05, 2300.0)],
+    [(1.85, 5.70, 3250.0), (1.80, 6.40, 3330.0), (1.95, 7.10, 3150.0), (2.20, 7.60, 2950.0),
+     (2.90, 8.40, 2500.0), (3.50, 9.05, 2150.0)],
+    [(1.95, 7.10, 3150.0), (2.90, 7.15, 2960.0), (3.80, 7.10, 2480.0), (4.25, 7.00, 2170.0)],
+    # east ridge of the main valley
+    [(6.80, 0.95, 3300.0), (6.30, 2.30, 3290.0), (5.90, 3.50, 3120.0), (5.95, 4.60, 2920.0),
+     (6.20, 5.50, 2700.0), (6.50, 5.95, 2450.0)],
+    # ridge between the two eastern valleys
+    [(9.20, 1.30, 3250.0), (9.30, 3.00, 3050.0), (9.40, 5.00, 2750.0), (9.50, 5.80, 2500.0)],
+    # north-east ridge with the summit above the tarn cirque
+    [(5.90, 7.70, 2150.0), (6.80, 8.10, 2800.0), (7.90, 8.35, 3330.0), (8.90, 8.30, 3120.0),
+     (9.65, 8.20, 2850.0)],
+    # tarn side spurs
+    [(7.30, 8.20, 3120.0), (7.30, 7.50, 2990.0), (7.25, 7.10, 2450.0)],
+    [(8.45, 8.30, 3180.0), (8.45, 7.50, 3040.0), (8.35, 7.10, 2500.0)],
+]
+# glacier name -> (valley that holds it, elevation of its terminus m)
+_GLACIERS = {"north_seldra": ("main", 2200.0), "kessel": ("kessel", 2600.0), "tarn": ("tarn", 2800.0)}
+
+_LAYOUT_SEED = 46       # fixed: the warp of the skeleton does not change with the roughness seed
+_WARP_KM = 0.25         # spread of the warp
+_WALL_EXPONENT = 1.6    # concavity of the valley walls
+_BLEND_CELLS = 4.0      # smoothing where the nearest valley or ridge changes, cells
+_NUNATAK = (4.40, 2.45, 150.0, 120.0)  # rock knob: x_km, y_km, height m, radius m
+_CEILING_KNEE_M, _CEILING_ROOM_M = 3330.0, 150.0
+
+_MAX_GLACIER_SLOPE_DEG = 40.0
+_OUTLINE_REFINE = 4          # outlines are traced on a grid this many times finer
+_OUTLINE_SIMPLIFY_M = 8.0    # Douglas-Peucker tolerance of the traced outlines
+_MIN_HOLE_M2 = 20_000.0      # smaller holes in the ice masks are filled (the nunatak is larger)
+
+# ---------------------------------------------------------------------------
+# Station climate at 1200 m (invented, in the manner of a mid-latitude valley
+# station in a mountain range): annual mean near 5.8 C, January near -4.5 C,
+# July near 15.8 C, about 1100-1150 mm a year with a summer maximum. Tuned so
+# that the demo glaciers, run with firnline's default parameters, have ELAs
+# near 2700-3150 m and specific balances of about -1.7..+1.1 m w.e.
+_T_MONTHLY_C = (-3.6, -2.8, 0.3, 4.3, 9.3, 13.4, 15.8, 15.4, 11.9, 7.1, 1.6, -2.6)  # Jan..Dec
+_T_WARMEST_DOY = 200.0
+_T_AR1 = 0.75                              # lag-one autocorrelation of daily anomalies
+_T_SD_K = (3.4, 2.8)                       # spread of daily anomalies: mid-winter, mid-summer
+_T_YEAR_SD_K = {"winter": 1.0, "summer": 0.8}
+_T_TREND_K_PER_YEAR = 0.03
+_P_WET_AFTER_DRY = (0.27, 0.33)            # Markov chain: mid-winter, mid-summer
+_P_WET_AFTER_WET = (0.64, 0.62)
+_P_MEAN_WET_MM = (4.8, 8.0)                # mean wet-day amount: mid-winter, mid-summer
+_P_GAMMA_SHAPE = 0.8
+_P_YEAR_SD = {"winter": 0.12, "summer": 0.08}  # log-spread of the seasonal totals
+_WET_DAY_T_SHIFT_K = (0.5, -1.2)           # wet days milder in winter, cooler in summer
+
+
+# ---------------------------------------------------------------------------
+# terrain
+
+
+def dem_transform() -> Affine:
+    """Affine transform of the demo DEM (north up, 30 m cells, in :data:`DEM_CRS`)."""
+    return Affine(CELL_SIZE_M, 0.0, DEM_ORIGIN[0], 0.0, -CELL_SIZE_M, DEM_ORIGIN[1])
+
+
+def _cell_centres_km(shape, transform):
+    """Cell-centre coordinates (km) from the grid's south-west corner, x east and y north."""
+    ny, nx = shape
+    x = (np.arange(nx) + 0.5) * abs(transform.a) / 1000.0
+    y = (ny - np.arange(ny) - 0.5) * abs(transform.e) / 1000.0
+    return np.meshgrid(x, y)
+
+
+def _polyline_nearest(xk, yk, vertices):
+    """Distance from each cell to a polyline and the vertex attributes at the nearest point.
+
+    Parameters
+    ----------
+    xk, yk : ndarray
+        Cell coordinates, km.
+    vertices : sequence of (x_km, y_km, *attributes)
+
+    Returns
+    -------
+    distance_m : ndarray
+        Distance to the polyline, m.
+    attributes : ndarray (n_attributes, *xk.shape)
+        The attributes interpolated linearly along the segment at the nearest point.
+    """
+    v = np.asarray(vertices, dtype=float)
+    best = np.full(xk.shape, np.inf)
+    attributes = np.zeros((v.shape[1] - 2,) + xk.shape)
+    for a, b in zip(v[:-1], v[1:]):  # over the few segments
+        dx, dy = b[0] - a[0], b[1] - a[1]
+        t = np.clip(((xk - a[0]) * dx + (yk - a[1]) * dy) / (dx * dx + dy * dy), 0.0, 1.0)
+        d = np.hypot(xk - (a[0] + t * dx), yk - (a[1] + t * dy)) * 1000.0
+        closer = d < best
+        best = np.where(closer, d, best)
+        along = a[2:, None, None] + t[None] * (b[2:] - a[2:])[:, None, None]
+        attributes = np.where(closer[None], along, attributes)
+    return best, attributes
+
+
+def _fractal_noise(shape, rng, exponent=1.8, smallest_scale_cells=2.0):
+    """Zero-mean, unit-variance isotropic fractal noise by spectral synthesis.
+
+    White Gaussian noise filtered in the Fourier domain to an amplitude spectrum
+    proportional to ``k**-exponent`` (fractional Brownian surfaces by Fourier
+    filtering; Voss 1988, in Peitgen & Saupe (eds.), The Science of Fractal
+    Images, Springer), with a Gaussian roll-off below ``smallest_scale_cells``.
+    """
+    ny, nx = shape
+    ky = np.fft.fftfreq(ny)[:, None]
+    kx = np.fft.rfftfreq(nx)[None, :]
+    k = np.hypot(kx, ky)
+    k[0, 0] = 1.0
+    amplitude = k ** (-exponent) * np.exp(-((k * smallest_scale_cells) ** 2))
+    amplitude[0, 0] = 0.0
+    spectrum = rng.normal(size=(ny, nx // 2 + 1)) + 1j * rng.normal(size=(ny, nx // 2 + 1))
+    field = np.fft.irfft2(amplitude * spectrum, s=shape)
+    return (field - field.mean()) / field.std()
+
+
+def _layout(shape, transform):
+    """The valley-and-ridge skeleton on a grid; it does not depend on the roughness seed.
+
+    Returns
+    -------
+    dict of ndarray
+        ``xk``, ``yk`` cell centres (km); ``valley`` index into ``_VALLEYS`` of
+        the nearest valley floor; ``nearest_floor_z`` and ``nearest_ridge_z``
+        the elevation of the nearest floor and crest (m); ``d_floor`` the
+        distance to the nearest floor (m); ``fraction`` the wall fraction F
+        (0 on floors, 1 on crests).
+    """
+    xk, yk = _cell_centres_km(shape, transform)
+    rng = np.random.default_rng(_LAYOUT_SEED)
+    xw = xk + _WARP_KM * _fractal_noise(shape, rng, exponent=3.0)
+    yw = yk + _WARP_KM * _fractal_noise(shape, rng, exponent=3.0)
+    cell_m = abs(transform.a)
+    half_diagonal_m = 0.5 * cell_m * np.sqrt(2.0)
+
+    floor = np.zeros(shape, bool)
+    floor_z = np.zeros(shape)
+    label = np.full(shape, -1)
+    for k, vertices in enumerate(_VALLEYS.values()):
+        d, (z, half_width) = _polyline_nearest(xw, yw, vertices)
+        on = d <= np.maximum(half_width, half_diagonal_m)
+        floor |= on
+        floor_z = np.where(on, z, floor_z)
+        label = np.where(on, k, label)
+    ridge = np.zeros(shape, bool)
+    ridge_z = np.zeros(shape)
+    for vertices in _RIDGES:
+        d, (z,) = _polyline_nearest(xw, yw, vertices)
+        on = (d <= half_diagonal_m) & ~floor
+        ridge |= on
+        ridge_z = np.where(on, z, ridge_z)
+
+    d_floor, (iy, ix) = ndimage.distance_transform_edt(~floor, sampling=cell_m, return_indices=True)
+    d_ridge, (jy, jx) = ndimage.distance_transform_edt(~ridge, sampling=cell_m, return_indices=True)
+    return {
+        "xk": xk,
+        "yk": yk,
+        "valley": label[iy, ix],
+        "nearest_floor_z": floor_z[iy, ix],
+        "nearest_ridge_z": ridge_z[jy, jx],
+        "d_floor": d_floor,
+        "fraction": d_floor / (d_floor + d_ridge),
+    }
+
+
+def _floor_surface(layout):
+    """Floor elevation of the nearest valley (m), blended where the nearest valley changes."""
+    return ndimage.gaussian_filter(layout["nearest_floor_z"], _BLEND_CELLS, mode="nearest")
+
+
+def _knob(xk, yk):
+    """Height (m) of the rock knob that makes the nunatak in the main glacier's upper basin."""
+    x0, y0, height, radius = _NUNATAK
+    return height * np.exp(-((xk - x0) ** 2 + (yk - y0) ** 2) * 1e6 / (2.0 * radius**2))
+
+
+def _ice_valleys(layout):
+    """Cells in an ice-bearing valley above (or a little below) its glacier's terminus."""
+    names = list(_VALLEYS)
+    icy = np.zeros(layout["valley"].shape, bool)
+    for valley, terminus_m in _GLACIERS.values():
+        icy |= (layout["valley"] == names.index(valley)) & (layout["nearest_floor_z"] > terminus_m - 150.0)
+    return icy
+
+
+def make_dem(seed: int = DEFAULT_SEED) -> tuple[np.ndarray, Affine]:
+    """Procedural elevation model of the invented Seldra catchment.
+
+    Parameters
+    ----------
+    seed : int
+        Seed of the random roughness; the same seed gives the same DEM. The
+        layout of valleys and ridges is the same for every seed.
+
+    Returns
+    -------
+    elevation : ndarray (300, 320) float32
+        Surface elevation, m a.s.l., between about 1200 and 3480 m; NaN on a
+        ragged triangle of nodata cells in the north-west corner (as if outside
+        a survey's footprint).
+    transform : affine.Affine
+        Pixel-to-CRS transform in :data:`DEM_CRS` (30 m cells).
+    """
+    rng = np.random.default_rng(seed)
+    transform = dem_transform()
+    layout = _layout(DEM_SHAPE, transform)
+    z_floor = _floor_surface(layout)
+    z_crest = ndimage.gaussian_filter(layout["nearest_ridge_z"], _BLEND_CELLS, mode="nearest")
+    fraction = layout["fraction"]
+    z = z_floor + (z_crest - z_floor) * fraction**_WALL_EXPONENT
+
+    # roughness on walls and rock; the ice-filled valley floors stay smooth
+    knob = _knob(layout["xk"], layout["yk"])
+    rough = np.clip(fraction / 0.4, 0.0, 1.0)
+    rough = np.maximum(rough, 1.0 - ndimage.gaussian_filter(_ice_valleys(layout).astype(float), 3.0))
+    rough = np.maximum(rough, np.clip(knob / 60.0, 0.0, 1.0))
+    z += (4.0 + 30.0 * rough) * _fractal_noise(DEM_SHAPE, rng, exponent=1.6)
+    # gullies and spurs on the walls, summits and cols along the crests
+    ridged = 1.0 - np.abs(_fractal_noise(DEM_SHAPE, rng, exponent=2.2, smallest_scale_cells=5.0))
+    z += 110.0 * rough * (ridged - ridged.mean())
+    z += 50.0 * fraction**2 * _fractal_noise(DEM_SHAPE, rng, exponent=3.0)
+    z += knob
+    z = ndimage.gaussian_filter(z, 1.0, mode="nearest")
+    above = z > _CEILING_KNEE_M
+    z[above] = _CEILING_KNEE_M + _CEILING_ROOM_M * np.tanh((z[above] - _CEILING_KNEE_M) / _CEILING_ROOM_M)
+
+    # ragged nodata triangle in the north-west corner
+    ny, nx = DEM_SHAPE
+    row, col = np.mgrid[0:ny, 0:nx]
+    edge = 28.0 + 4.0 * np.sin(row / 3.0) + rng.integers(0, 3, size=(ny, 1))
+    z[row + col < edge] = np.nan
+    return z.astype(np.float32), transform
+
+
+# ---------------------------------------------------------------------------
+# glacier outlines
+
+
+def _slope_deg(elevation, cell_m):
+    """Slope (deg) by central differences; used only to keep steep rock out of the ice masks."""
+    filled = np.where(np.isfinite(elevation), elevation, np.nanmean(elevation))
+    gy, gx = np.gradient(filled, cell_m)
+    return np.degrees(np.arctan(np.hypot(gx, gy)))
+
+
+def _largest_component(mask):
+    parts, n = ndimage.label(mask)
+    if n <= 1:
+        return mask
+    sizes = ndimage.sum(mask, parts, index=np.arange(1, n + 1))
+    return parts == (1 + int(np.argmax(sizes)))
+
+
+def glacier_masks(elevation, transform) -> dict[str, np.ndarray]:
+    """Ice masks of the demo glaciers on the DEM grid.
+
+    A cell is ice where it lies in the glacier's valley (by nearest valley
+    floor) above the glacier's terminus, no higher on the valley wall than
+    ``30 m + 0.8 x`` (``x``: height of the nearest floor above the terminus) and
+    no further from the floor than ``60 m + 2 x``, so that the tongue tapers,
+    below the upper third of the walls, on slopes under 40 deg, on valid cells
+    and off the nunatak's rock knob.
+
+    Parameters
+    ----------
+    elevation : ndarray (ny, nx)
+        The demo DEM, m (NaN for nodata).
+    transform : affine.Affine
+        Its pixel-to-CRS transform (north up, square cells).
+
+    Returns
+    -------
+    dict of str to ndarray (ny, nx) bool
+        One mask per name in :data:`GLACIER_NAMES`.
+    """
+    elevation = np.asarray(elevation, dtype=float)
+    layout = _layout(elevation.shape, transform)
+    slope = _slope_deg(elevation, abs(transform.a))
+    height_above_floor_m = elevation - _floor_surface(layout)
+    rock = (_knob(layout["xk"], layout["yk"]) > 40.0) | ~np.isfinite(elevation)
+    names = list(_VALLEYS)
+    masks = {}
+    for glacier, (valley, terminus_m) in _GLACIERS.items():
+        above_terminus_m = layout["nearest_floor_z"] - terminus_m
+        with np.errstate(invalid="ignore"):
+            ice = (
+                (layout["valley"] == names.index(valley))
+                & (above_terminus_m >= 0.0)
+                & (elevation >= terminus_m)
+                & (height_above_floor_m < 30.0 + 0.8 * above_terminus_m)
+                & (layout["d_floor"] < 60.0 + 2.0 * above_terminus_m)
+                & (layout["fraction"] < 0.65)
+                & (slope < _MAX_GLACIER_SLOPE_DEG)
+                & ~rock
+            )
+        masks[glacier] = _largest_component(ndimage.binary_opening(ice, iterations=2))
+    return masks
+
+
+def _trace(mask, transform):
+    """Largest polygon (with its larger holes) around a boolean mask, smoothed, in CRS units."""
+    from rasterio.features import shapes
+
+    refine = _OUTLINE_REFINE
+    soft = ndimage.gaussian_filter(mask.astype(float), 1.0)
+    fine = ndimage.zoom(soft, refine, order=1, grid_mode=True, mode="nearest") >= 0.5
+    t = transform
+    fine_transform = Affine(t.a / refine, t.b / refine, t.c, t.d / refine, t.e / refine, t.f)
+    pieces = [
+        shapely.geometry.shape(geometry)
+        for geometry, value in shapes(fine.astype(np.uint8), mask=fine, transform=fine_transform)
+        if value == 1
+    ]
+    polygon = max(pieces, key=lambda p: p.area)
+    holes = [ring for ring in polygon.interiors if Polygon(ring).area >= _MIN_HOLE_M2]
+    return Polygon(polygon.exterior, holes).simplify(_OUTLINE_SIMPLIFY_M, preserve_topology=True)
+
+
+def make_outlines(elevation, transform) -> list[tuple[str, Polygon]]:
+    """Outlines of the demo glaciers, in the DEM's CRS.
+
+    The masks of :func:`glacier_masks` are smoothed (Gaussian, one cell),
+    traced on a four-times finer grid with ``rasterio.features.shapes`` and
+    simplified (Douglas-Peucker, 8 m), so that edges do not follow cell lines.
+    Holes under 0.02 km2 are filled; the nunatak in ``north_seldra`` stays a
+    hole. The polygons are valid, do not overlap and have counter-clockwise
+    exteriors.
+
+    Parameters
+    ----------
+    elevation : ndarray (ny, nx)
+        The demo DEM, m (NaN for nodata), as from :func:`make_dem`.
+    transform : affine.Affine
+        Its pixel-to-CRS transform.
+
+    Returns
+    -------
+    list of (str, shapely.Polygon)
+        ``(name, polygon)`` for each name in :data:`GLACIER_NAMES`, coordinates in m.
+    """
+    outlines = []
+    for name, mask in glacier_masks(elevation, transform).items():
+        polygon = _trace(mask, transform)
+        for _, other in outlines:  # guard against any touching margins
+            polygon = polygon.difference(other)
+        if polygon.geom_type != "Polygon":
+            polygon = max(getattr(polygon, "geoms", [polygon]), key=lambda p: p.area)
+        outlines.append((name, orient(polygon, sign=1.0)))
+    return outlines
+
+
+# ---------------------------------------------------------------------------
+# station record
+
+
+def _smooth_annual_cycle(monthly, doy, n_harmonics=3):
+    """Smooth periodic curve through twelve monthly means, evaluated on days of the year.
+
+    Least-squares fit of ``n_harmonics`` annual harmonics to the monthly values
+    placed at mid-month (harmonic analysis; Wilks 2011, Statistical Methods in
+    the Atmospheric Sciences, 3rd ed., Academic Press, section 9.4).
+    """
+    mid_month = np.array([16.0, 45.5, 75.0, 105.5, 136.0, 166.5, 197.0, 228.0, 258.5, 289.0, 319.5, 350.0])
+
+    def basis(day):
+        angle = 2.0 * np.pi * np.asarray(day, dtype=float)[:, None] / 365.25 * np.arange(1, n_harmonics + 1)
+        return np.hstack([np.ones((angle.shape[0], 1)), np.cos(angle), np.sin(angle)])
+
+    coefficients, *_ = np.linalg.lstsq(basis(mid_month), np.asarray(monthly, dtype=float), rcond=None)
+    return basis(doy) @ coefficients
+
+
+def make_station_record(seed: int = DEFAULT_SEED, start: str = "2016-10-01", end: str = "2024-09-30") -> pd.DataFrame:
+    """Invented daily record of the valley station "Seldra Dam" (1200 m a.s.l.).
+
+    Temperature: a smooth seasonal cycle through invented monthly means, plus
+    AR(1) day-to-day anomalies (first-order autoregression; Wilks 2011,
+    Statistical Methods in the Atmospheric Sciences, 3rd ed., section 9.3),
+    plus one winter and one summer anomaly per balance year (warm and cool
+    summers, mild and cold winters), plus a small warming trend; wet days are
+    a little milder in winter and cooler in summer. Precipitation: occurrence
+    from a two-state first-order Markov chain and wet-day amounts from a gamma
+    distribution (Richardson 1981, Water Resources Research 17(1), 182-190),
+    both seasonally varying, with one winter and one summer multiplier per
+    balance year (snowy and dry winters). The year-by-year anomalies are
+    centred, so that the record's period keeps the invented climatology.
+
+    Parameters
+    ----------
+    seed : int
+        Seed of the random generator; the same seed gives the same record.
+    start, end : str
+        First and last day, ISO dates, both included.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``date`` (str, YYYY-MM-DD), ``temperature_c`` (daily mean air
+        temperature, deg C) and ``precipitation_mm`` (daily total, mm, >= 0),
+        one row per day without gaps, values rounded to 0.1.
+    """
+    dates = pd.date_range(start, end, freq="D")
+    if dates.size == 0:
+        raise InputError(f"The demo station record from {start} to {end} is empty; give an end after the start.")
+    n = dates.size
+    rng = np.random.default_rng(seed)
+    doy = dates.day_of_year.to_numpy(dtype=float)
+    summer = 0.5 * (1.0 + np.cos(2.0 * np.pi * (doy - _T_WARMEST_DOY) / 365.25))  # 1 late July, 0 mid January
+
+    def seasonal(pair):
+        return pair[0] + (pair[1] - pair[0]) * summer
+
+    balance_year = (dates.year + (dates.month >= 10)).to_numpy()
+    years, year_index = np.unique(balance_year, return_inverse=True)
+
+    def year_anomalies(sd):
+        draws = rng.normal(0.0, sd, years.size)
+        return (draws - draws.mean())[year_index]
+
+    t_winter = year_anomalies(_T_YEAR_SD_K["winter"])
+    t_summer = year_anomalies(_T_YEAR_SD_K["summer"])
+    p_winter = np.exp(year_anomalies(_P_YEAR_SD["winter"]))
+    p_summer = np.exp(year_anomalies(_P_YEAR_SD["summer"]))
+
+    # precipitation occurrence: two-state Markov chain, then gamma amounts
+    p01, p11 = seasonal(_P_WET_AFTER_DRY), seasonal(_P_WET_AFTER_WET)
+    u = rng.random(n)
+    wet = np.zeros(n, dtype=bool)
+    previous = False
+    for i in range(n):  # over the days of one station
+        previous = bool(u[i] < (p11[i] if previous else p01[i]))
+        wet[i] = previous
+    mean_wet_mm = seasonal(_P_MEAN_WET_MM) * ((1.0 - summer) * p_winter + summer * p_summer)
+    amount_mm = rng.gamma(_P_GAMMA_SHAPE, mean_wet_mm / _P_GAMMA_SHAPE)
+    precipitation = np.where(wet, 0.1 + amount_mm, 0.0)
+
+    # temperature: climatology + year anomalies + trend + AR(1) daily anomalies
+    sd = seasonal(_T_SD_K)
+    innovation = rng.normal(0.0, 1.0, n) * sd * np.sqrt(1.0 - _T_AR1**2)
+    anomaly = np.empty(n)
+    anomaly[0] = innovation[0] / np.sqrt(1.0 - _T_AR1**2)
+    for i in range(1, n):  # recursive filter over the days of one station
+        anomaly[i] = _T_AR1 * anomaly[i - 1] + innovation[i]
+    elapsed_years = (dates - dates[0]).days.to_numpy() / 365.25
+    wet_share = p01 / (1.0 - p11 + p01)  # stationary wet-day probability of the chain
+    temperature = (
+        _smooth_annual_cycle(_T_MONTHLY_C, doy)
+        + (1.0 - summer) * t_winter
+        + summer * t_summer
+        + _T_TREND_K_PER_YEAR * (elapsed_years - elapsed_years.mean())
+        + anomaly
+        + seasonal(_WET_DAY_T_SHIFT_K) * (wet - wet_share)
+    )
+    return pd.DataFrame(
+        {
+            "date": dates.strftime("%Y-%m-%d"),
+            "temperature_c": np.round(temperature, 1),
+            "precipitation_mm": np.round(precipitation, 1),
+        }
+    )
+
+
+# ---------------------------------------------------------------------------
+# the one edge that writes files
+
+
+def _write_outlines(path: Path, outlines):
+    """GeoJSON per RFC 7946: longitude/latitude (EPSG:4326), no CRS member."""
+    from pyogrio.raw import write
+    from pyproj import Transformer
+
+    to_lonlat = Transformer.from_crs(DEM_CRS, "EPSG:4326", always_xy=True)
+
+    def project(coords):
+        lon, lat = to_lonlat.transform(coords[:, 0], coords[:, 1])
+        return np.column_stack([lon, lat])
+
+    # densify first so that long straight edges stay true after reprojection
+    geometries = [shapely.transform(shapely.segmentize(p, 20.0), project) for _, p in outlines]
+    names = np.array([name for name, _ in outlines], dtype=object)
+    write(
+        str(path),
+        geometry=shapely.to_wkb(geometries),
+        field_data=[names],
+        fields=["name"],
+        driver="GeoJSON",
+        geometry_type="Polygon",
+        crs="EPSG:4326",
+        layer="glaciers",
+        layer_options={"RFC7946": "YES"},
+    )
+
+
+def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
+    """Write the Seldra demo inputs into a folder.
+
+    Files: ``dem.tif`` (GeoTIFF, float32, nodata -9999, tiled, DEFLATE,
+    EPSG:32632, 30 m cells), ``station.csv`` (``date, temperature_c,
+    precipitation_mm``, 2016-10-01 to 2024-09-30) and ``glaciers.geojson``
+    (RFC 7946 longitude/latitude polygons with a ``name`` property). The files
+    are staged with :func:`firnline.outputs.staged` and appear only when all
+    three are complete.
+
+    Parameters
+    ----------
+    folder : str or path-like
+        Output folder; created if missing.
+    seed : int
+        Seed of the DEM roughness and of the station record.
+
+    Returns
+    -------
+    dict of str to Path
+        Paths under the keys ``dem``, ``station`` and ``glaciers``.
+    """
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"The demo folder {folder} is a file; give the path of a folder.")
+    elevation, transform = make_dem(seed)
+    outlines = make_outlines(elevation, transform)
+    station = make_station_record(seed)
+    names = {"dem": "dem.tif", "station": "station.csv", "glaciers": "glaciers.geojson"}
+    with staged(folder) as staging:
+        write_geotiff(
+            staging.path(names["dem"]), elevation, transform, DEM_CRS,
+            descriptions=["surface elevation"], units="m",
+            tags={
+                "site": SITE_NAME,
+                "content": "invented terrain of the fictional Seldra catchment, not a real place",
+                "generator": f"firnline.demo.make_dem(seed={seed})",
+            },
+            nodata=NODATA,
+        )
+        write_csv(staging.path(names["station"]), station, float_format="%.1f")
+        _write_outlines(staging.path(names["glaciers"]), outlines)
+    return {key: folder / name for key, name in names.items()}
+
+
+# ----------------------------------------------------------------------------
+# the demo config: src/firnline/demo.toml (paths relative to the demo folder);
+# configs/demo.toml is the same text with paths into ../demo_dem/
+# ----------------------------------------------------------------------------
+
+_CONFIG_INPUTS = ("dem.tif", "glaciers.geojson", "station.csv")
+
+
+def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> str:
+    """The demo config, with ``inputs_prefix`` put before each input file name.
+
+    ``output_dir`` replaces ``[output] dir`` (marked as a demo value) when given.
+    """
+    from importlib.resources import files
+
+    text = files("firnline").joinpath("demo.toml").read_text(encoding="utf-8")
+    for name in _CONFIG_INPUTS:
+        text = text.replace(f'"{name}"', f'"{inputs_prefix}{name}"')
+    if output_dir is not None:
+        old = 'dir = "out"                               # default, relative to this file'
+        new = f'dir = "{output_dir}"'
+        text = text.replace(old, f"{new:<42}# demo value (default \"out\"), relative to this file")
+    return text
+
+
+def write_demo(folder) -> Path:
+    """Write the demo inputs and ``demo.toml`` into ``folder``; return the config's path."""
+    from .outputs import staged as _staged
+
+    folder = Path(folder)
+    write_demo_inputs(folder)
+    with _staged(folder) as st:
+        st.path("demo.toml").write_text(demo_config_text(), encoding="utf-8")
+    return folder / "demo.toml"
+
+
+def write_repo_config(path) -> None:
+    """Write ``configs/demo.toml`` of the source tree (inputs in ``../demo_dem/``)."""
+    Path(path).write_text(demo_config_text("../demo_dem/", output_dir="../out"), encoding="utf-8")

@@ -9,6 +9,14 @@ the README.
 __version__ = "0.1.0"
 
 from .config import Config, load_config  # noqa: E402
-from .model import RunResult, run  # noqa: E402
+
+
+def __getattr__(name):
+    # the model (numba, xarray, pandas) loads on first use, so `firnline --help` stays quick
+    if name in ("run", "RunResult"):
+        from . import model
+        return getattr(model, name)
+    raise AttributeError(f"module 'firnline' has no attribute {name!r}")
+
 
 __all__ = ["Config", "RunResult", "load_config", "run", "__version__"]

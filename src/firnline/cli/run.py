@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from ..model import CAUTION, run
-from ..products import summary_table
 from .common import add_common, config_and_out, progress_factory, say
 
 
@@ -20,6 +18,9 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
+    from ..model import CAUTION, run
+    from ..products import summary_table
+
     cfg, out = config_and_out(args)
     if args.precip_change <= -100:
         from ..errors import InputError

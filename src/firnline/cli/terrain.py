@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-from ..grid import read_dem
-from ..outputs import staged, write_geotiff
-from ..terrain import slope_aspect
 from .common import add_common, config_and_out, say
 
 
@@ -16,6 +13,10 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
+    from ..grid import read_dem
+    from ..outputs import staged, write_geotiff
+    from ..terrain import slope_aspect
+
     cfg, out = config_and_out(args)
     grid = read_dem(cfg.dem.path)
     for note in grid.notes:

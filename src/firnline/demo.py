@@ -635,10 +635,11 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
 
     Files: ``dem.tif`` (GeoTIFF, float32, nodata -9999, tiled, DEFLATE,
     EPSG:32632, 30 m cells), ``station.csv`` (``date, temperature_c,
-    precipitation_mm``, 2016-10-01 to 2024-09-30) and ``glaciers.geojson``
-    (RFC 7946 longitude/latitude polygons with a ``name`` property). The files
-    are staged with :func:`firnline.outputs.staged` and appear only when all
-    three are complete.
+    precipitation_mm``, 2016-10-01 to 2024-09-30), ``glaciers.geojson``
+    (RFC 7946 longitude/latitude polygons with a ``name`` property), and the
+    invented observations ``stakes.csv`` and ``glacier_balances.csv`` (see
+    :func:`write_demo_observations`). The files are staged with
+    :func:`firnline.outputs.staged` and appear only when all are complete.
 
     Parameters
     ----------
@@ -672,6 +673,7 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
         )
         write_csv(staging.path(names["station"]), station, float_format="%.1f")
         _write_outlines(staging.path(names["glaciers"]), outlines)
+        names.update(write_demo_observations(staging, seed))
     return {key: folder / name for key, name in names.items()}
 
 
@@ -714,3 +716,137 @@ def write_demo(folder) -> Path:
 def write_repo_config(path) -> None:
     """Write ``configs/demo.toml`` of the source tree (inputs in ``../demo_dem/``)."""
     Path(path).write_text(demo_config_text("../demo_dem/", output_dir="../out"), encoding="utf-8")
+
+
+# ----------------------------------------------------------------------------
+# invented observations for calibration: stakes, snow probing, geodetic balances
+# ----------------------------------------------------------------------------
+
+DEMO_TRUE_FACTORS = {"ddf_snow_mm_per_day_k": 4.2, "ddf_ice_mm_per_day_k": 7.6}
+"""The invented "true" degree-day factors (mm w.e. d-1 K-1) that make the demo observations;
+``configs/demo_calibrate.toml`` starts from the defaults 3.0 and 6.0 and should find them again."""
+
+
+def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> dict[str, str]:
+    """Invent the observations of the demo glaciers and write them into a staging folder.
+
+    The demo inputs (``dem.tif``, ``glaciers.geojson``, ``station.csv``) must already be
+    in the folder ``inputs`` (default: ``staging.dir``, where :func:`write_demo_inputs`
+    has just written them). The demo model (``demo.toml`` with :data:`DEMO_TRUE_FACTORS`) is
+    run once on the cells observed, and seeded Gaussian noise at each row's stated
+    sigma is added. Everything is invented:
+
+    * ``stakes.csv`` (``[observations] point_balances``): stakes on each glacier (6 on
+      north_seldra, 4 on kessel, 3 on tarn, spread over the glacier's elevation range,
+      in its interior), read at an autumn and a spring visit each year for the balance
+      years 2020-2024 (annual: autumn visit to the day before the next autumn visit,
+      sigma 0.15 m w.e.; winter: autumn visit to the day before the spring visit,
+      sigma 0.10 m w.e.); about one reading in twenty is missing (stake lost). Plus a
+      snow-probing survey on 27 April 2022 (30 points on north_seldra, 10 on kessel,
+      autumn 2021 visit to 26 April, sigma 0.12 m w.e.). Coordinates in EPSG:32632, 0.1 m; balances 0.01 m w.e.
+    * ``glacier_balances.csv``: a geodetic balance of each glacier from two invented
+      DEM surveys (2017-09-14 and 2023-09-20) as ``dh_m``, the mean elevation change;
+      ``sigma_mwe`` is the part of the uncertainty from the elevation change, and the
+      noise added includes the conversion uncertainty (850 +/- 60 kg m-3, Huss 2013,
+      The Cryosphere 7, 877-887).
+
+    Parameters
+    ----------
+    staging : firnline.outputs.Staging
+        Where the two files are written (they appear when the staging commits).
+    seed : int
+        Seed of the stake sites, visit dates and noise.
+    inputs : str or path-like, optional
+        Folder holding the demo inputs.
+
+    Returns
+    -------
+    dict
+        ``{"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv"}``.
+    """
+    import datetime as dt
+    import sys
+
+    from .calibrate import build_operator, modelled_values
+    from .config import parse_config
+    from .model import prepare
+    from .observations import (GEODETIC_DENSITY_KG_M3, GEODETIC_DENSITY_SIGMA_KG_M3, check_glacier_balances,
+                               check_point_balances, parse_table)
+
+    if sys.version_info >= (3, 11):
+        import tomllib
+    else:  # pragma: no cover
+        import tomli as tomllib
+
+    folder = Path(staging.dir if inputs is None else inputs)
+    config = parse_config(tomllib.loads(demo_config_text()), folder).with_values(**DEMO_TRUE_FACTORS)
+    setup = prepare(config)
+    gl, grid = setup.glaciers, setup.grid
+    ny, nx = grid.shape
+    rng = np.random.default_rng(seed + 6)
+    x_c, y_c = grid.cell_centres()
+
+    def interior(g):
+        """Cells wholly inside glacier g and their distance to its margin (m)."""
+        full = np.zeros(ny * nx, bool)
+        full[gl.cells[g][gl.fractions[g] > 0.999]] = True
+        full = full.reshape(ny, nx)
+        return full, ndimage.distance_transform_edt(full, sampling=abs(grid.transform.a))
+
+    def where(flat):
+        """An invented GPS position: the cell centre plus up to 10 m either way."""
+        r, c = divmod(int(flat), nx)
+        return round(float(x_c[c] + rng.uniform(-10, 10)), 1), round(float(y_c[r] + rng.uniform(-10, 10)), 1)
+
+    def day(year, month, first_day, last_day):
+        return dt.date(year, month, int(rng.integers(first_day, last_day + 1)))
+
+    rows = []  # point_id, (x, y), start, end, sigma
+    stake_counts = {"north_seldra": 6, "kessel": 4, "tarn": 3}
+    years = range(2020, 2025)
+    for g, name in enumerate(gl.names):
+        full, dist = interior(g)
+        z = grid.elevation
+        cells = np.flatnonzero(full)
+        zq = np.quantile(z.ravel()[cells], np.linspace(0.1, 0.9, stake_counts[name]))
+        autumn = {y: day(y, 9, 12, 30) for y in range(years[0] - 1, years[-1] + 1)}
+        spring = {y: day(y, 4, 22, 30) + dt.timedelta(days=int(rng.integers(0, 13))) for y in years}
+        for k, zk in enumerate(zq):
+            near = cells[np.abs(z.ravel()[cells] - zk) < 25.0]
+            stake = near[np.argmax(dist.ravel()[near])]
+            sid, xy = f"{name[:2].upper()}{k + 1:02d}", where(stake)
+            for y in years:
+                if rng.random() > 0.05:
+                    rows.append((sid, xy, autumn[y - 1], autumn[y] - dt.timedelta(days=1), 0.15))
+                if rng.random() > 0.05:
+                    rows.append((sid, xy, autumn[y - 1], spring[y] - dt.timedelta(days=1), 0.10))
+        probes = {"north_seldra": 30, "kessel": 10}.get(name, 0)
+        if probes:
+            deep = cells[dist.ravel()[cells] >= 60.0]
+            for k, cell in enumerate(rng.choice(deep, probes, replace=False)):
+                rows.append((f"{name[:2].upper()}-P{k + 1:02d}", where(cell), autumn[2021],
+                             dt.date(2022, 4, 26), 0.12))
+    stakes = pd.DataFrame({"point_id": [r[0] for r in rows], "x": [r[1][0] for r in rows],
+                           "y": [r[1][1] for r in rows],
+                           "start_date": [r[2].isoformat() for r in rows],
+                           "end_date": [r[3].isoformat() for r in rows],
+                           "balance_mwe": 0.0, "sigma_mwe": [r[4] for r in rows]})
+    geodetic = pd.DataFrame({"glacier": list(gl.names), "start_date": "2017-09-14", "end_date": "2023-09-19",
+                             "dh_m": 0.0,
+                             "sigma_mwe": [{"north_seldra": 0.25, "kessel": 0.3}.get(n, 0.35) for n in gl.names]})
+    points = check_point_balances(parse_table(stakes.to_csv(index=False), "stakes.csv"), setup.forcing.dates,
+                                  grid.transform, grid.valid, grid.elevation, grid.crs, grid.crs)
+    glaciers = check_glacier_balances(parse_table(geodetic.to_csv(index=False), "glacier_balances.csv"),
+                                      setup.forcing.dates, list(gl.names))
+    truth = modelled_values(setup, config, build_operator(setup, points, glaciers))
+    n = len(stakes)
+    stakes["balance_mwe"] = np.round(truth[:n] + rng.normal(0.0, 1.0, n) * stakes.sigma_mwe, 2)
+    b_geo = truth[n:]
+    sigma_geo = np.hypot(geodetic.sigma_mwe, np.abs(b_geo) * GEODETIC_DENSITY_SIGMA_KG_M3 / GEODETIC_DENSITY_KG_M3)
+    observed = b_geo + rng.normal(0.0, 1.0, b_geo.size) * sigma_geo
+    geodetic["dh_m"] = np.round(observed * 1000.0 / GEODETIC_DENSITY_KG_M3, 2)
+    names = {"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv"}
+    stakes.to_csv(staging.path(names["stakes"]), index=False)
+    geodetic[["glacier", "start_date", "end_date", "dh_m", "sigma_mwe"]].to_csv(
+        staging.path(names["glacier_balances"]), index=False)
+    return names

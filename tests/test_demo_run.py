@@ -33,7 +33,7 @@ def test_demo_command_then_run_writes_every_file_on_the_dem_grid(tmp_path):
     assert sorted(s.balance_year.unique()) == [2017, 2018]
     assert set(s.glacier) == {"north_seldra", "kessel", "tarn"}
     expected = {"summary.csv", "profiles.csv", "mean_annual_balance.tif", "run.json", "balance.nc",
-                "glacier_id.tif"}
+                "glacier_id.tif", "balanced_budget.csv"}
     for y in (2017, 2018):
         expected |= {f"{p}_{y}.tif" for p in ("annual_balance", "winter_balance", "summer_balance",
                                               "accumulation", "ablation")}

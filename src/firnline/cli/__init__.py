@@ -12,11 +12,13 @@ import traceback
 
 from .. import __version__
 from ..errors import InputError
+from . import calibrate as calibrate_cmd
 from . import demo as demo_cmd
 from . import run as run_cmd
+from . import scenarios as scenarios_cmd
 from . import terrain as terrain_cmd
 
-COMMANDS = [run_cmd, terrain_cmd, demo_cmd]
+COMMANDS = [run_cmd, terrain_cmd, scenarios_cmd, calibrate_cmd, demo_cmd]
 
 
 def build_parser() -> argparse.ArgumentParser:

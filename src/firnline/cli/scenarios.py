@@ -1,0 +1,53 @@
+"""``firnline scenarios CONFIG --warming K [K ...] [--precip-change PCT [PCT ...]]``.
+
+Runs every combination of the warmings and precipitation changes (and always the
+no-change reference) in one kernel pass and writes, all or nothing:
+
+* ``scenarios.csv``, ``scenario_years.csv``, ``sensitivity.csv``, ``scenario_profiles.csv``
+* ``mean_annual_balance_w<K>_p<PCT>.tif`` per scenario, e.g. ``mean_annual_balance_w+1.0_p+0.tif``
+* ``ela_vs_warming.png``, ``balance_vs_warming.png``, ``balance_profiles.png``
+* ``scenarios.json`` (provenance, the rules of the means and slopes, flag counts)
+"""
+
+from __future__ import annotations
+
+from ..errors import InputError
+from .common import add_common, config_and_out, progress_factory, say
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("scenarios", help="sweep warming and precipitation change: ELA, balance, sensitivity",
+                       description="Model every combination of the given warmings and precipitation "
+                                   "changes (plus the no-change reference) in one pass; write per-glacier "
+                                   "means, per-year results, dELA/dT and dB/dT, a mean-balance map per "
+                                   "scenario and figures.")
+    add_common(p)
+    p.add_argument("--warming", nargs="*", metavar="K",
+                   help="uniform warmings added to the station temperature, K (one or more; required)")
+    p.add_argument("--precip-change", nargs="*", metavar="PCT",
+                   help="precipitation changes, %% (each above -100; default 0)")
+    p.set_defaults(func=main)
+
+
+def main(args) -> int:
+    if not args.warming:
+        raise InputError("firnline scenarios needs --warming K [K ...]: give one or more warmings in K, "
+                         "e.g. --warming 1 2 3.")
+    from ..model import CAUTION, prepare
+    from ..products import sweep_table, write_sweep
+    from ..scenarios import scenario_list, sweep
+
+    scen = scenario_list(args.warming, args.precip_change or [])   # checks the values before any work
+    cfg, out = config_and_out(args)
+    factory = progress_factory(args.quiet)
+    setup = prepare(cfg, factory)
+    for note in setup.notes:
+        say(args, note)
+    say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
+    cb = factory("days", setup.forcing.n_days) if factory else None
+    result = sweep(setup, args.warming, args.precip_change or [], progress=cb)
+    files = write_sweep(result, out)
+    print(sweep_table(result))
+    say(args, f"wrote {len(files)} files to {out}")
+    say(args, CAUTION)
+    return 0

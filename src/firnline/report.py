@@ -1,0 +1,243 @@
+"""Figures of a scenario sweep (matplotlib, Agg canvas, PNG).
+
+Each function takes the tables of a :class:`firnline.scenarios.Sweep` and returns a
+:class:`matplotlib.figure.Figure` on an Agg canvas (no pyplot, no global backend
+change, so it is safe inside a notebook); :func:`save_png` writes it. Every figure
+carries a caption saying that it shows model estimates, the period and what the
+markers mean, so it can be read without the tables.
+
+* :func:`ela_figure`: mean ELA against warming, one panel per glacier, one line per
+  precipitation change, with the glacier's lowest and highest elevation.
+* :func:`balance_figure`: mean annual balance against warming, one panel per
+  precipitation change, one line per glacier plus the area-weighted mean of all.
+* :func:`profile_figure`: balance profiles of the record-mean annual balance, one
+  panel per glacier, one line per scenario.
+"""
+
+from __future__ import annotations
+
+import math
+import textwrap
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+
+MAX_PANELS = 12
+"""At most this many glaciers get a panel (the largest by area); the caption says so."""
+
+MAX_LINES = 10
+"""At most this many glaciers get a line in :func:`balance_figure` (the largest by area)."""
+
+_STYLES = ["-", "--", ":", "-."]
+_ESTIMATE = ("Model estimates (firnline), not measurements; review by qualified practitioners "
+             "is needed before any water, hydropower or hazard decision.")
+
+
+def save_png(fig: Figure, path: str | Path, dpi: int = 150) -> None:
+    """Write a figure as PNG."""
+    fig.savefig(path, dpi=dpi, format="png")
+
+
+def _figure(n_panels: int, caption: Sequence[str], panel_w=4.2, panel_h=3.4, ncols_max=3,
+            legend_w=3.0, sharey=False):
+    """A figure with ``n_panels`` axes, room for a figure legend on the right and the caption below."""
+    ncols = min(ncols_max, max(1, n_panels))
+    nrows = math.ceil(n_panels / ncols)
+    width = panel_w * ncols + legend_w
+    lines = [w for line in [*caption, _ESTIMATE] for w in textwrap.wrap(line, int(width * 15))]
+    cap_h = 0.14 * len(lines) + 0.15
+    height = panel_h * nrows + 0.5 + cap_h
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    fig.get_layout_engine().set(rect=(0.0, cap_h / height, 1.0, 1.0 - cap_h / height))
+    axes = fig.subplots(nrows, ncols, squeeze=False, sharey=sharey).ravel()
+    for ax in axes[n_panels:]:
+        ax.set_visible(False)
+    fig.text(0.01, 0.08 / height, "\n".join(lines), fontsize=7.5, ha="left", va="bottom", color="0.25",
+             in_layout=False)
+    return fig, list(axes[:n_panels])
+
+
+def _finish(fig: Figure, title: str, site: str, handles, labels=None) -> None:
+    fig.suptitle(f"{title} - {site}" if site else title, x=0.01, ha="left")
+    if labels is None:
+        fig.legend(handles=handles, loc="outside right center", fontsize=8, frameon=False)
+    else:
+        fig.legend(handles, labels, loc="outside right center", fontsize=8, frameon=False)
+
+
+def _largest(glaciers: pd.DataFrame, n: int) -> list[str]:
+    g = glaciers.sort_values("area_km2", ascending=False, kind="stable")
+    return list(g.glacier[:n])
+
+
+def _period(years: Sequence[int]) -> str:
+    return f"balance years {years[0]}-{years[-1]}" if len(years) > 1 else f"balance year {years[0]}"
+
+
+def _precip_style(precips: Sequence[float]) -> tuple[dict, dict]:
+    """Line style and colour per precipitation change: 0 % solid and blue, the others in turn."""
+    style, colour, others = {}, {}, [p for p in precips if p != 0.0]
+    for p in precips:
+        k = others.index(p) if p != 0.0 else -1
+        style[p] = "-" if p == 0.0 else _STYLES[1 + k % (len(_STYLES) - 1)]
+        colour[p] = "C0" if p == 0.0 else f"C{1 + k % 9}"
+    return style, colour
+
+
+def _subset_note(shown: int, total: int) -> list[str]:
+    return [f"Shown: the {shown} largest of {total} glaciers; all are in scenarios.csv."] if shown < total else []
+
+
+def ela_figure(table: pd.DataFrame, flags: pd.DataFrame, glaciers: pd.DataFrame,
+               years: Sequence[int], site: str = "") -> Figure:
+    """Mean ELA (m a.s.l.) against warming (K), one panel per glacier.
+
+    Parameters
+    ----------
+    table : DataFrame with :data:`firnline.scenarios.SCENARIO_COLUMNS`
+    flags : DataFrame with :data:`firnline.scenarios.FLAG_COLUMNS`
+    glaciers : DataFrame (glacier, area_km2, min_elevation_m, max_elevation_m)
+    years : balance years of the record
+    site : label for the title
+
+    Filled markers: the ELA stayed on the glacier in every year; open markers: it left
+    the glacier in some years (mean over the others); triangles at the glacier's top
+    (bottom): the ELA was above (below) the glacier in every year.
+    """
+    names = _largest(glaciers, MAX_PANELS)
+    fig, axes = _figure(len(names), [
+        f"Mean ELA over the {_period(years)}, averaged over the years in which the ELA lay on the "
+        "glacier; grey band: the glacier's elevation range. An open marker is a mean over fewer years "
+        "and leans towards the years in which the ELA stayed on the glacier (the counts are in "
+        "scenarios.json, the year-by-year values in scenario_years.csv).",
+        *_subset_note(len(names), len(glaciers))])
+    t = table.merge(flags, on=["glacier", "warming_k", "precip_change_pct"])
+    precips = sorted(t.precip_change_pct.unique())
+    style, pcol = _precip_style(precips)
+    for ax, name in zip(axes, names):
+        gi = glaciers[glaciers.glacier == name].iloc[0]
+        lo, hi = gi.min_elevation_m, gi.max_elevation_m
+        ax.axhspan(lo, hi, color="0.93", zorder=0)
+        ax.axhline(hi, color="0.5", lw=0.8)
+        ax.axhline(lo, color="0.5", lw=0.8)
+        ax.annotate("glacier top", (0.01, hi), xycoords=("axes fraction", "data"), fontsize=7,
+                    color="0.4", va="bottom")
+        ax.annotate("glacier bottom", (0.01, lo), xycoords=("axes fraction", "data"), fontsize=7,
+                    color="0.4", va="top")
+        for p in precips:
+            r = t[(t.glacier == name) & (t.precip_change_pct == p)].sort_values("warming_k")
+            c = pcol[p]
+            ax.plot(r.warming_k, r.ela_m, style[p], color=c, lw=1.4)
+            full = r.n_ela_ok == r.n_years
+            part = (r.n_ela_ok > 0) & ~full
+            ax.plot(r.warming_k[full], r.ela_m[full], "o", color=c, ms=5)
+            ax.plot(r.warming_k[part], r.ela_m[part], "o", mfc="white", mec=c, ms=5)
+            above = r.n_above_glacier == r.n_years
+            below = r.n_below_glacier == r.n_years
+            for off, z, marker in ((above, hi, "^"), (below, lo, "v")):
+                if off.any():   # (an empty unclipped line would drag the layout to the origin)
+                    ax.plot(r.warming_k[off], np.full(off.sum(), z), marker, color=c, ms=7, clip_on=False)
+        ax.set_title(str(name), fontsize=10)
+        ax.set_xlabel("warming (K)")
+        ax.set_ylabel("mean ELA (m a.s.l.)")
+        ax.grid(alpha=0.3)
+    handles = [Line2D([], [], ls=style[p], color=pcol[p], label=f"precipitation {p:+g} %")
+               for p in precips]
+    handles += [Line2D([], [], ls="", marker="o", color="0.3", label="ELA on the glacier every year"),
+                Line2D([], [], ls="", marker="o", mfc="white", mec="0.3",
+                       label="ELA off the glacier in some years"),
+                Line2D([], [], ls="", marker="^", color="0.3", label="ELA above the glacier every year"),
+                Line2D([], [], ls="", marker="v", color="0.3", label="ELA below the glacier every year")]
+    _finish(fig, "Equilibrium-line altitude under warming", site, handles)
+    return fig
+
+
+def balance_figure(table: pd.DataFrame, glaciers: pd.DataFrame, years: Sequence[int],
+                   site: str = "") -> Figure:
+    """Mean annual balance (m w.e. per year) against warming (K), one panel per precipitation change.
+
+    Parameters
+    ----------
+    table : DataFrame with :data:`firnline.scenarios.SCENARIO_COLUMNS`
+    glaciers : DataFrame (glacier, area_km2, ...)
+    years : balance years of the record
+    site : label for the title
+
+    With more than one glacier a thick black line gives the area-weighted mean of all
+    glaciers.
+    """
+    precips = sorted(table.precip_change_pct.unique())
+    names = _largest(glaciers, MAX_LINES)
+    note = ([f"Lines for the {len(names)} largest of {len(glaciers)} glaciers; the black line "
+             "covers all of them."] if len(names) < len(glaciers) else [])
+    fig, axes = _figure(len(precips), [
+        f"Specific annual balance averaged over the {_period(years)}; dashed line: zero balance "
+        "(the glacier in balance).", *note], sharey=True)
+    area = glaciers.set_index("glacier").area_km2
+    for ax, p in zip(axes, precips):
+        t = table[table.precip_change_pct == p]
+        for i, name in enumerate(names):
+            r = t[t.glacier == name].sort_values("warming_k")
+            ax.plot(r.warming_k, r.mean_annual_balance_mwe, "o-", color=f"C{i % 10}", ms=4, lw=1.2,
+                    label=str(name))
+        if len(glaciers) > 1:
+            w = t.glacier.map(area)
+            allg = (t.mean_annual_balance_mwe * w).groupby(t.warming_k).sum() / w.groupby(t.warming_k).sum()
+            ax.plot(allg.index, allg.to_numpy(), "k-", lw=2.6, label="all glaciers (area-weighted)")
+        ax.axhline(0.0, color="0.5", lw=0.8, ls="--")
+        ax.set_title(f"precipitation change {p:+g} %", fontsize=10)
+        ax.set_xlabel("warming (K)")
+        ax.set_ylabel("mean annual balance (m w.e. per year)")
+        ax.grid(alpha=0.3)
+    _finish(fig, "Glacier-wide annual balance under warming", site, *axes[0].get_legend_handles_labels())
+    return fig
+
+
+def profile_figure(profiles: pd.DataFrame, glaciers: pd.DataFrame, years: Sequence[int],
+                   site: str = "") -> Figure:
+    """Balance profiles: elevation (m a.s.l.) against mean annual balance (m w.e. per year).
+
+    Parameters
+    ----------
+    profiles : DataFrame with :data:`firnline.scenarios.PROFILE_COLUMNS`
+    glaciers : DataFrame (glacier, area_km2, ...)
+    years : balance years of the record
+    site : label for the title
+
+    One panel per glacier, one line per scenario: colour by warming (blue cool to red
+    warm), line style by precipitation change; points at the band centres.
+    """
+    from matplotlib import colormaps
+
+    names = _largest(glaciers, MAX_PANELS)
+    band = profiles.band_top_m.iloc[0] - profiles.band_bottom_m.iloc[0] if len(profiles) else float("nan")
+    fig, axes = _figure(len(names), [
+        f"Area-weighted mean annual balance of {band:g} m elevation bands over the {_period(years)}; "
+        "a line crosses zero at the equilibrium line of the record-mean balance (which can differ from "
+        "the mean of the yearly ELAs in scenarios.csv).",
+        *_subset_note(len(names), len(glaciers))], panel_h=3.8)
+    warm = sorted(profiles.warming_k.unique())
+    precips = sorted(profiles.precip_change_pct.unique())
+    style = _precip_style(precips)[0]
+    cmap = colormaps["coolwarm"]
+    colour = {w: cmap(0.5 if len(warm) == 1 else i / (len(warm) - 1)) for i, w in enumerate(warm)}
+    for ax, name in zip(axes, names):
+        g = profiles[profiles.glacier == name]
+        for (w, p), r in g.groupby(["warming_k", "precip_change_pct"]):
+            zc = 0.5 * (r.band_bottom_m + r.band_top_m)
+            ax.plot(r.mean_annual_balance_mwe, zc, style[p], color=colour[w], lw=1.3, marker=".", ms=3)
+        ax.axvline(0.0, color="0.4", lw=0.8)
+        ax.set_title(str(name), fontsize=10)
+        ax.set_xlabel("mean annual balance (m w.e. per year)")
+        ax.set_ylabel("elevation (m a.s.l.)")
+        ax.grid(alpha=0.3)
+    handles = [Line2D([], [], color=colour[w], lw=2, label=f"warming {w:+g} K") for w in warm]
+    handles += [Line2D([], [], color="0.3", ls=style[p], label=f"precipitation {p:+g} %") for p in precips]
+    _finish(fig, "Balance profiles per scenario", site, handles)
+    return fig

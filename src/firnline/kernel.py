@@ -128,6 +128,8 @@ def _block(dz, orog, glacier, rad_values, rad_scale, use_rad, t_st, p_st, lapse,
     ns = warming.shape[0]
     nd = t_st.shape[0]
     span = rain_c - snow_c
+    w_lo = (1.0 - rad_w) * rad_scale     # interpolation weights with the storage scale folded in
+    w_hi = rad_w * rad_scale
     for c in prange(n):
         is_glacier = glacier[c]
         for s in range(ns):
@@ -147,8 +149,7 @@ def _block(dz, orog, glacier, rad_values, rad_scale, use_rad, t_st, p_st, lapse,
                 imelt = 0.0
                 if t > thr:
                     if use_rad:
-                        rad = ((1.0 - rad_w[d]) * rad_values[rad_lo[d], c]
-                               + rad_w[d] * rad_values[rad_hi[d], c]) * rad_scale
+                        rad = w_lo[d] * rad_values[rad_lo[d], c] + w_hi[d] * rad_values[rad_hi[d], c]
                         fs = f_snow0 + a_snow * rad
                         fi = f_ice0 + a_ice * rad
                     else:
@@ -227,7 +228,7 @@ def run_kernel(z_m: np.ndarray, glacier: np.ndarray, z_station_m: float,
     precip_change_pct : sequence of float
         One precipitation change (%) per scenario, same length as ``warming_k``.
     radiation : object with ``values`` (n_nodes, n_cells), ``scale_w_m2`` and
-        ``node_weights(doy) -> (i_lo, i_hi, w)``, optional
+        ``node_weights(doys) -> (i_lo, i_hi, w)``, optional
         Potential direct radiation table over the same cells (see
         :class:`firnline.radiation.RadiationTable`); required when
         ``params.use_radiation``.
@@ -287,7 +288,7 @@ def run_kernel(z_m: np.ndarray, glacier: np.ndarray, z_station_m: float,
     lapse_d = lapse[np.asarray(month, dtype=np.int64) - 1]
     season = np.where(np.asarray(winter, bool), 0, 1).astype(np.int64)
     if use_rad:
-        rad_values = radiation.values
+        rad_values = radiation.values             # (n_nodes, n_cells)
         rad_lo, rad_hi, rad_w = radiation.node_weights(np.asarray(day_of_year))
     else:
         rad_values = np.zeros((1, 1), dtype="float32")

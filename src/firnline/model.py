@@ -118,10 +118,71 @@ def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bo
     if need_radiation is None:
         need_radiation = config.melt.method == "radiation"
     if need_radiation:
-        from .radiation_setup import radiation_for
-        setup.radiation = radiation_for(setup, progress)
+        setup.radiation, _, note = radiation_climatology(grid, slope, aspect, config, progress)
+        setup.notes.append(note)
         setup.timings["radiation_s"] = time.perf_counter() - t1
     return setup
+
+
+def _bar(progress: ProgressFactory, label: str):
+    """Adapt a progress factory to the (n_done, n_total) callbacks of horizon/radiation."""
+    if progress is None:
+        return None
+    state = {}
+
+    def cb(done: int, total: int) -> None:
+        if "bar" not in state:
+            state["bar"] = progress(label, total)
+        state["bar"](done)
+    return cb
+
+
+def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndarray, config: Config,
+                          progress: ProgressFactory = None, want_horizons: bool = False):
+    """The potential direct radiation table of the valid cells, from the disk cache when it can.
+
+    Horizons (Dozier & Frew 1990 sector search) and the daily climatology (Hock 1999
+    beam with cast shadows) depend only on the DEM and the ``[radiation]`` settings
+    and ``[melt] transmissivity``; both are cached under ``[radiation] cache_dir``,
+    keyed by the DEM's SHA-256 and those settings.
+
+    Returns
+    -------
+    table : RadiationTable
+    horizons : ndarray (n_sectors, ny, nx) radians, or None unless ``want_horizons`` or
+        the table had to be computed
+    note : str
+        One sentence for the console: computed (and cached) or reused.
+    """
+    from . import cache
+    from .horizon import horizon_angles
+    from .radiation import compute_table
+
+    rc = config.radiation
+    hkey = cache.cache_key(dem_sha256=grid.checksum, shape=list(grid.shape),
+                           transform=list(grid.transform)[:6], horizon_sectors=rc.horizon_sectors,
+                           horizon_distance_m=rc.horizon_distance_m)
+    tkey = cache.cache_key(horizon=hkey, transmissivity=config.melt.transmissivity,
+                           time_step_minutes=rc.time_step_minutes)
+    t0 = time.perf_counter()
+    table = cache.load_table(rc.cache_dir, tkey)
+    horizons = None
+    if table is not None and not want_horizons:
+        return table, None, f"reused the cached radiation climatology ({rc.cache_dir / ('table-' + tkey)}.npz)."
+    horizons = cache.load_horizons(rc.cache_dir, hkey)
+    if horizons is None:
+        horizons = horizon_angles(grid.elevation, grid.valid, grid.cell_size_m, rc.horizon_sectors,
+                                  rc.horizon_distance_m, progress=_bar(progress, "horizon sectors"))
+        cache.save_horizons(rc.cache_dir, hkey, horizons)
+    if table is not None:
+        return table, horizons, "reused the cached radiation climatology and horizons."
+    lon, lat = grid.lonlat()
+    table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
+                          config.melt.transmissivity, rc.time_step_minutes,
+                          progress=_bar(progress, "radiation row bands"))
+    cache.save_table(rc.cache_dir, tkey, table)
+    return table, horizons, (f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "
+                             f"and cached it in {rc.cache_dir}.")
 
 
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),

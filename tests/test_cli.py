@@ -175,3 +175,11 @@ def test_failure_while_writing_leaves_nothing(plane_case, tmp_path, monkeypatch)
     monkeypatch.setattr(products, "write_geotiff", flaky)
     assert main(["run", str(cfg), "--out", str(tmp_path / "out"), "--quiet"]) == 1
     assert outputs(tmp_path / "out") == []
+
+
+@pytest.mark.parametrize("flag,value,words", [("--warming", "nan", "finite"),
+                                              ("--precip-change", "-100", "above -100")])
+def test_bad_scenario_flags_of_run_exit_2(plane_case, tmp_path, flag, value, words):
+    r = run_cli("run", plane_case(), "--out", tmp_path / "out", flag, value)
+    assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr
+    assert outputs(tmp_path / "out") == []

@@ -21,11 +21,10 @@ def main(args) -> int:
     from ..model import CAUTION, run
     from ..products import summary_table
 
+    from ..scenarios import scenario_list
+
+    scenario_list([args.warming], [args.precip_change])   # the same checks as a sweep: finite, > -100 %
     cfg, out = config_and_out(args)
-    if args.precip_change <= -100:
-        from ..errors import InputError
-        raise InputError(f"--precip-change {args.precip_change:g} would remove all precipitation; "
-                         "give a value above -100.")
     result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
                  progress=progress_factory(args.quiet))
     for note in result.setup.notes:

@@ -73,6 +73,20 @@ class Grid:
     def n_valid(self) -> int:
         return int(self.valid.sum())
 
+    def to_grid(self, values: np.ndarray, where: np.ndarray | None = None,
+                cells: np.ndarray | None = None) -> np.ndarray:
+        """Scatter per-cell values (..., n) onto maps (..., ny, nx), float32, NaN elsewhere.
+
+        ``cells`` are the flat C-order indices the values belong to (default: every valid
+        cell in order); cells where ``where`` (n,) is False also get NaN.
+        """
+        ny, nx = self.shape
+        lead = values.shape[:-1]
+        out = np.full(lead + (ny * nx,), np.nan, dtype="float32")
+        at = self.valid.ravel() if cells is None else cells
+        out[..., at] = values if where is None else np.where(where, values, np.nan)
+        return out.reshape(lead + (ny, nx))
+
     def cell_centres(self) -> tuple[np.ndarray, np.ndarray]:
         """x (nx,) and y (ny,) coordinates of the cell centres in the grid's CRS, m."""
         ny, nx = self.shape

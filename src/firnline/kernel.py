@@ -236,7 +236,7 @@ def run_kernel(z_m: np.ndarray, glacier: np.ndarray, z_station_m: float,
         Day boundaries k (0..n_days) at which to record the cumulative balance of
         every cell after k days (for balances over arbitrary periods).
     progress : callable, optional
-        Called with the number of days done after each day.
+        Called with the number of days done after each block of days.
 
     Returns
     -------

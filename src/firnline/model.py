@@ -26,6 +26,7 @@ import pandas as pd
 import xarray as xr
 
 from . import __version__
+from . import glaciers as glaciers_mod
 from .config import Config
 from .forcing import Forcing, read_station
 from .grid import Grid, file_checksum, read_dem
@@ -82,8 +83,6 @@ def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bo
     need_radiation : bool, optional
         Build the radiation table; default: when ``[melt] method = "radiation"``.
     """
-    from . import glaciers as glaciers_mod
-
     t0 = time.perf_counter()
     notes: list[str] = []
     grid = read_dem(config.dem.path)
@@ -166,7 +165,6 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
                            time_step_minutes=rc.time_step_minutes)
     t0 = time.perf_counter()
     table = cache.load_table(rc.cache_dir, tkey)
-    horizons = None
     if table is not None and not want_horizons:
         return table, None, f"reused the cached radiation climatology ({rc.cache_dir / ('table-' + tkey)}.npz)."
     horizons = cache.load_horizons(rc.cache_dir, hkey)
@@ -296,13 +294,8 @@ def tables(metrics: dict, years: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFr
 
 
 def to_grid(setup: Setup, values: np.ndarray, where: np.ndarray | None = None) -> np.ndarray:
-    """Scatter per-cell values (..., n_cells) onto (..., ny, nx), NaN elsewhere (or where ~where)."""
-    ny, nx = setup.grid.shape
-    lead = values.shape[:-1]
-    out = np.full(lead + (ny * nx,), np.nan, dtype="float32")
-    v = values if where is None else np.where(where, values, np.nan)
-    out[..., setup.cells] = v
-    return out.reshape(lead + (ny, nx))
+    """Per-cell values (..., n_cells) of a setup as maps (..., ny, nx); see :meth:`Grid.to_grid`."""
+    return setup.grid.to_grid(values, where, setup.cells)
 
 
 def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> xr.Dataset:

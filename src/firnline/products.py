@@ -145,8 +145,6 @@ MONTHS = ("January", "February", "March", "April", "May", "June", "July", "Augus
 
 def write_terrain(config, grid, slope, aspect, table, horizons, out_dir: Path) -> list[Path]:
     """Write the products of ``firnline terrain`` into ``out_dir``, all or nothing."""
-    import numpy as np
-
     from .horizon import sector_azimuths_deg
 
     tags = {"firnline_version": __version__, "dem_sha256": grid.checksum,
@@ -156,21 +154,14 @@ def write_terrain(config, grid, slope, aspect, table, horizons, out_dir: Path) -
             "horizon_distance_m": f"{config.radiation.horizon_distance_m:g}",
             "method": "potential clear-sky direct radiation, Hock (1999) after Oke (1987), cast shadows "
                       "by horizon sectors (Dozier and Frew 1990)"}
-    cells = np.flatnonzero(grid.valid.ravel())
-    ny, nx = grid.shape
-
-    def to_grid(values):
-        out = np.full(values.shape[:-1] + (ny * nx,), np.nan, dtype="float32")
-        out[..., cells] = values
-        return out.reshape(values.shape[:-1] + (ny, nx))
     with staged(out_dir) as st:
         write_geotiff(st.path("slope.tif"), slope, grid.transform, grid.crs,
                       ["slope angle (Horn 1981)"], "degree", tags)
         write_geotiff(st.path("aspect.tif"), aspect, grid.transform, grid.crs,
                       ["aspect, clockwise from north (NaN on flat cells)"], "degree", tags)
-        write_geotiff(st.path("radiation_monthly.tif"), to_grid(table.monthly_means()), grid.transform,
+        write_geotiff(st.path("radiation_monthly.tif"), grid.to_grid(table.monthly_means()), grid.transform,
                       grid.crs, [f"mean daily potential direct radiation, {m}" for m in MONTHS], "W m-2", tags)
-        write_geotiff(st.path("radiation_annual.tif"), to_grid(table.annual_mean()), grid.transform, grid.crs,
+        write_geotiff(st.path("radiation_annual.tif"), grid.to_grid(table.annual_mean()), grid.transform, grid.crs,
                       ["mean daily potential direct radiation over the year"], "W m-2", tags)
         if horizons is not None:
             hz = np.where(grid.valid, np.degrees(horizons), np.nan)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -9,7 +10,7 @@ import pandas as pd
 import pytest
 import rasterio
 import shapely
-import warnings
+import tomli_w
 from pyogrio import raw
 from rasterio.transform import from_origin
 
@@ -42,22 +43,7 @@ def write_station(path: Path, start="2016-10-01", end="2018-09-30", t=5.0, p=5.0
 
 
 def write_config(path: Path, sections: dict) -> Path:
-    def val(v):
-        if isinstance(v, str):
-            return f'"{v}"'
-        if isinstance(v, bool):
-            return "true" if v else "false"
-        if isinstance(v, (list, tuple)):
-            return "[" + ", ".join(val(x) for x in v) + "]"
-        if isinstance(v, dict):
-            return "{ " + ", ".join(f"{k} = {val(x)}" for k, x in v.items()) + " }"
-        return repr(v)
-    lines = []
-    for name, keys in sections.items():
-        lines.append(f"[{name}]")
-        lines += [f"{k} = {val(v)}" for k, v in keys.items()]
-        lines.append("")
-    path.write_text("\n".join(lines))
+    path.write_text(tomli_w.dumps(sections))
     return path
 
 

@@ -20,8 +20,7 @@ import pytest
 
 import firnline
 from conftest import base_sections, ramp, write_config, write_dem
-from firnline.calibrate import (DEFAULT_BOUNDS, _schema_check, build_operator, calibrate,
-                                fit_spec, modelled_values)
+from firnline.calibrate import DEFAULT_BOUNDS, build_operator, calibrate, check_value, fit_spec, modelled_values
 from firnline.cli import main
 from firnline.errors import InputError
 from firnline.model import prepare
@@ -202,7 +201,7 @@ def test_points_off_every_glacier_are_reported():
 
     from affine import Affine
 
-    from firnline.calibrate import _points_off_glacier
+    from firnline.calibrate.fit import _points_off_glacier
     from firnline.observations import check_point_balances, parse_table
 
     text = ("point_id,x,y,start_date,end_date,balance_mwe,sigma_mwe\n"
@@ -302,8 +301,8 @@ def test_cli_writes_every_file_and_calibrated_toml_runs(case, tmp_path, capsys):
 def test_default_bounds_lie_within_the_schema():
     for key, (lo, hi) in DEFAULT_BOUNDS.items():
         assert lo < hi
-        _schema_check(key, lo, key)
-        _schema_check(key, hi, key)
+        check_value(key, lo, key)
+        check_value(key, hi, key)
 
 
 # ----------------------------------------------------------------------------
@@ -417,7 +416,8 @@ BAD_KEYS = {
                         "both in [calibration] parameters and tied"),
     "ratio_out_of_range": ({"parameters": ["ddf_snow_mm_per_day_k"],
                             "ratios": {"ddf_ice_mm_per_day_k": ["ddf_snow_mm_per_day_k", 5.0]}}, {},
-                           'ratios make "ddf_ice_mm_per_day_k" = 5 x ddf_snow_mm_per_day_k, which must be a number <= 50'),
+                           'ratios make "ddf_ice_mm_per_day_k" = 5 x ddf_snow_mm_per_day_k, '
+                           'which must be a number <= 50'),
     "bad_points_crs": ({}, {"observations": {"points_crs": "EPSG:not-a-code"}}, "points_crs"),
 }
 
@@ -487,7 +487,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 def test_demo_calibrate_config_is_the_demo_config_plus_observations(tmp_path):
-    from firnline.config import tomllib   # tomllib, or tomli before Python 3.11
+    from firnline.config import tomllib  # tomllib, or tomli before Python 3.11
 
     base = tomllib.loads((REPO / "configs" / "demo.toml").read_text())
     cal = tomllib.loads((REPO / "configs" / "demo_calibrate.toml").read_text())

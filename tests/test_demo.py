@@ -252,7 +252,8 @@ def test_committed_demo_files_match_the_generator(dem, station, outlines):
     assert np.nanmax(np.abs(committed - elevation)) < 1e-3
     committed_station = pd.read_csv(REPO_DEMO / "station.csv")
     assert committed_station["date"].tolist() == station["date"].tolist()
-    assert np.allclose(committed_station[["temperature_c", "precipitation_mm"]], station[["temperature_c", "precipitation_mm"]], atol=0.051)
+    columns = ["temperature_c", "precipitation_mm"]
+    assert np.allclose(committed_station[columns], station[columns], atol=0.051)
     _, back = _read_outlines_in_dem_crs(REPO_DEMO / "glaciers.geojson")
     for name, polygon in outlines:
         assert back[name].area == pytest.approx(polygon.area, rel=1e-3), name

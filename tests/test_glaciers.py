@@ -1,16 +1,15 @@
 """Glacier outlines: reading, reprojection, exact fractional coverage, bad input."""
 
 import re
-import warnings
 
 import numpy as np
 import pyproj
 import pytest
 import rasterio.crs
 import shapely
-from conftest import write_outlines
 from rasterio.transform import from_origin
 
+from conftest import write_outlines
 from firnline.errors import InputError
 from firnline.glaciers import (
     Glaciers,
@@ -318,7 +317,8 @@ def test_self_intersecting_outline_is_repaired_with_a_warning(tmp_path):
 
 def test_overlapping_outlines_name_both(tmp_path):
     shifted = shapely.affinity.translate(RECTANGLE, xoff=0.004)
-    message = bad(tmp_path, ["North", "Seldra", "South"], [MULTI, RECTANGLE, shifted], ["'Seldra'", "'South'", "overlap"])
+    message = bad(tmp_path, ["North", "Seldra", "South"], [MULTI, RECTANGLE, shifted],
+                  ["'Seldra'", "'South'", "overlap"])
     assert "'North'" not in message
 
 

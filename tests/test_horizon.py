@@ -58,7 +58,8 @@ def test_inclined_plane_has_its_slope_as_horizon_in_every_sector():
     hz = horizon_angles(z, None, (dx, dy), 72, 1e6)
     alpha = np.deg2rad(sector_azimuths_deg(72))
     expected = np.arctan(np.maximum(0.0, a * np.sin(alpha) + b * np.cos(alpha)))
-    np.testing.assert_allclose(hz[:, 2:-2, 2:-2], np.broadcast_to(expected[:, None, None], (72, ny - 4, nx - 4)), atol=1e-6)
+    np.testing.assert_allclose(hz[:, 2:-2, 2:-2], np.broadcast_to(expected[:, None, None], (72, ny - 4, nx - 4)),
+                               atol=1e-6)
 
 
 def test_beyond_the_dem_edge_the_horizon_is_open():
@@ -128,7 +129,7 @@ def test_nodata_neither_blocks_nor_is_computed():
 def test_output_layout_and_progress():
     calls = []
     z = np.random.default_rng(3).normal(size=(12, 17)) * 20.0
-    hz = horizon_angles(z, None, 25.0, 36, 500.0, progress=lambda i, n: calls.append((i, n)))
+    hz = horizon_angles(z, None, 25.0, 36, 500.0, progress=lambda label, i, n: calls.append((i, n)))
     assert hz.shape == (36, 12, 17) and hz.dtype == np.float32
     assert np.all(hz >= 0.0) and np.all(hz < math.pi / 2)
     assert calls == [(i, 36) for i in range(1, 37)]

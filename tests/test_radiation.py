@@ -222,10 +222,11 @@ def _month_bounds():
 def test_table_covers_valid_cells_in_c_order_and_reports_progress():
     args = _relief()
     calls = []
-    table = compute_table(**args, progress=lambda i, n: calls.append((i, n)))
+    compute_table(**args, progress=lambda label, i, n: calls.append((i, n)))
     n_total = calls[-1][1]
     assert 1 <= n_total <= 48 and calls == [(i, n_total) for i in range(1, n_total + 1)]
-    everywhere = dict(args, valid=np.ones(args["valid"].shape, dtype=bool), horizon_rad=np.nan_to_num(args["horizon_rad"]))
+    everywhere = dict(args, valid=np.ones(args["valid"].shape, dtype=bool),
+                      horizon_rad=np.nan_to_num(args["horizon_rad"]))
     full = compute_days(**everywhere, doys=[150])[0]
     part = compute_days(**args, doys=[150])[0]
     np.testing.assert_array_equal(part, full[args["valid"].ravel()])
@@ -235,7 +236,9 @@ def test_bracket_day_and_means_are_consistent():
     values = np.array([[0, 100], [40, 300], [400, 0]], dtype=np.uint16)
     table = RadiationTable(doy_nodes=np.array([10, 100, 300]), values=values, scale_w_m2=0.5)
     lo, hi, w = table.bracket(55)
-    assert (lo is not None) and w == pytest.approx(0.5)
+    np.testing.assert_array_equal(lo, values[0])   # day 55 lies halfway between nodes 10 and 100
+    np.testing.assert_array_equal(hi, values[1])
+    assert w == pytest.approx(0.5)
     np.testing.assert_allclose(table.day(55), ((1 - w) * lo + w * hi) * 0.5)
     np.testing.assert_allclose(table.day(100), [20.0, 150.0])
     # wrap-around: day 5 lies between node 300 and node 10 of the next cycle

@@ -11,7 +11,7 @@ import pytest
 import rasterio
 
 from firnline.cli import main
-from firnline.kernel import KernelParams, run_kernel
+from firnline.kernel import run_kernel
 from firnline.radiation import RadiationTable
 from test_kernel import constant_record, params
 

@@ -19,9 +19,9 @@ import shapely
 import firnline
 from conftest import base_sections, ramp, write_config, write_dem, write_outlines, write_station
 from firnline.cli import main
+from firnline.metrics import BUDGET_COLUMNS, balanced_budget
 from firnline.model import prepare
-from firnline.scenarios import (BUDGET_COLUMNS, SCENARIO_COLUMNS, YEAR_COLUMNS, balanced_budget,
-                                scenario_label, scenario_list, sensitivity, sweep)
+from firnline.scenarios import SCENARIO_COLUMNS, YEAR_COLUMNS, scenario_label, scenario_list, sensitivity, sweep
 
 REPO = Path(__file__).resolve().parents[1]
 LAPSE = -0.0065   # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
@@ -313,7 +313,7 @@ def test_scenarios_command_writes_every_file_with_the_contract_columns(tmp_path,
 
 
 def test_scenarios_failure_while_writing_leaves_nothing(plane_case, tmp_path, monkeypatch):
-    import firnline.products as cli_mod
+    import firnline.scenario_products as cli_mod
 
     calls = {"n": 0}
     real = cli_mod.write_geotiff

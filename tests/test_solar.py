@@ -60,7 +60,8 @@ def test_declination_extremes_are_the_obliquity_near_the_solstices():
     dec = np.rad2deg(solar.declination_rad(jd))
     assert dec.max() == pytest.approx(23.44, abs=0.01)
     assert dec.min() == pytest.approx(-23.44, abs=0.01)
-    summer = np.datetime64("2000-01-01T12:00") + np.timedelta64(int(round((jd[dec.argmax()] - solar.J2000) * 86400)), "s")
+    seconds = int(round((jd[dec.argmax()] - solar.J2000) * 86400))
+    summer = np.datetime64("2000-01-01T12:00") + np.timedelta64(seconds, "s")
     assert pd.Timestamp(summer).strftime("%m-%d") == "06-21"
 
 

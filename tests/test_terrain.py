@@ -59,7 +59,8 @@ def test_illumination_agrees_with_matplotlib_hillshade_on_real_dem():
     z = dem["elevation"].astype("float64")
     lon0, lat0 = float(dem["xmin"]), float(dem["ymax"])
     dlon, dlat = float(dem["dx"]), float(dem["dy"])
-    import tempfile, pathlib
+    import pathlib
+    import tempfile
     with tempfile.TemporaryDirectory() as td:
         path = pathlib.Path(td) / "jacksboro.tif"
         with rasterio.open(path, "w", driver="GTiff", width=z.shape[1], height=z.shape[0], count=1,

@@ -171,3 +171,8 @@ def load_horizons(cache_dir, key: str) -> np.ndarray | None:
     """Horizon angles stored under ``key`` (float32, radians), or None if there is no usable entry."""
     data = _read_npz(_path(cache_dir, "horizon", key), key, ("horizon_rad",))
     return None if data is None else data["horizon_rad"]
+
+
+def table_path(cache_dir, key: str) -> Path:
+    """The cache file of a radiation table (``radiation-<key>.npz``)."""
+    return _path(cache_dir, "radiation", key)

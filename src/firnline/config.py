@@ -22,21 +22,12 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
+from . import parameters
 from .errors import InputError
+from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 
 REQUIRED = object()  # marker: the key has no default and must be given
 OPTIONAL = None
-
-# Lapse rates above this (K per m) are beyond any plausible mean inversion.
-MAX_INVERSION_K_PER_M = 0.01
-MIN_LAPSE_K_PER_M = -0.0125  # steeper than dry-adiabatic (-0.0098) plus margin
-
-# Hock (1999) radiation-index factors, converted to daily units (x 24 h),
-# values from memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 and a_ice 0.0008
-# mm m2 W-1 h-1 K-1 (for Storglaciaren); see DEVELOPERS.md.
-_HOCK_MF = 1.8
-_HOCK_A_SNOW_DAILY = 0.0006 * 24.0
-_HOCK_A_ICE_DAILY = 0.0008 * 24.0
 
 
 # ----------------------------------------------------------------------------
@@ -181,21 +172,10 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
         "start": (_date, OPTIONAL),
         "end": (_date, OPTIONAL),
     },
-    "downscaling": {
-        "lapse_rate_k_per_m": (_lapse, (-0.0065,)),
-        "precip_gradient_per_m": (_number(-0.002, 0.01), 0.0003),
-        "precip_factor": (_number(0.0, 10.0), 1.0),
-        "snow_rain_range_c": (_pair, (0.5, 2.5)),
-    },
+    # the model parameters: rows made from the registry (firnline.parameters)
+    "downscaling": {},
     "melt": {
-        "method": (_string(("degree-day", "radiation")), "degree-day"),
-        "threshold_c": (_number(-10.0, 10.0), 0.0),
-        "ddf_snow_mm_per_day_k": (_number(0.0, 50.0), 3.0),
-        "ddf_ice_mm_per_day_k": (_number(0.0, 50.0), 6.0),
-        "melt_factor_mm_per_day_k": (_number(0.0, 50.0), _HOCK_MF),
-        "radiation_factor_snow": (_number(0.0, 1.0), _HOCK_A_SNOW_DAILY),
-        "radiation_factor_ice": (_number(0.0, 1.0), _HOCK_A_ICE_DAILY),
-        "transmissivity": (_number(0.0, 1.0, lo_open=True), 0.75),
+        "method": (_string(parameters.METHODS), parameters.METHODS[0]),
     },
     "balance": {
         "year_start": (_month_day, "10-01"),
@@ -224,21 +204,26 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
     },
 }
 
+
+
+def _parameter_checker(p: parameters.Parameter) -> Callable:
+    """The value checker of a registry parameter (see :mod:`firnline.parameters`)."""
+    if p.kind == "monthly":
+        return _lapse
+    if p.kind == "pair":
+        return _pair
+    return _number(p.low, p.high, lo_open=p.low_open)
+
+
+for _p in parameters.PARAMETERS:
+    SCHEMA[_p.section][_p.key] = (_parameter_checker(_p), _p.default)
+del _p
+
 # sections without which a run cannot start
 REQUIRED_SECTIONS = ("dem", "climate")
 PATH_KEYS = {("dem", "path"), ("glaciers", "outlines"), ("climate", "station_file"),
              ("output", "dir"), ("radiation", "cache_dir"),
              ("observations", "glacier_balances"), ("observations", "point_balances")}
-
-
-def default(section: str, key: str) -> Any:
-    """The default value of ``[section] key`` (the one place defaults live)."""
-    return SCHEMA[section][key][1]
-
-
-def numeric_keys(section: str) -> list[str]:
-    """Keys of a section whose value is a single number (candidates for calibration)."""
-    return [k for k, (check, _) in SCHEMA[section].items() if getattr(check, "numeric", False)]
 
 
 # ----------------------------------------------------------------------------
@@ -352,7 +337,7 @@ class Config:
     raw: dict = field(default_factory=dict, repr=False)  # as written, for run.json and calibrated.toml
 
     def with_values(self, **changes: float) -> "Config":
-        """A copy with numeric keys of ``[melt]`` or ``[downscaling]`` replaced.
+        """A copy with numeric model parameters (:data:`firnline.parameters.PARAMETERS`) replaced.
 
         ``changes`` maps key names (e.g. ``ddf_snow_mm_per_day_k``) to numbers; each is
         validated like the value in a file.
@@ -361,9 +346,9 @@ class Config:
         down = dataclasses.asdict(self.downscaling)
         raw = {k: dict(v) if isinstance(v, dict) else v for k, v in self.raw.items()}
         for key, value in changes.items():
-            section = "melt" if key in melt else "downscaling" if key in down else None
-            if section is None or key not in numeric_keys(section) and key != "lapse_rate_k_per_m":
+            if key not in parameters.numeric():
                 raise InputError(f"{key} is not a numeric key of [melt] or [downscaling].")
+            section = parameters.BY_KEY[key].section
             checked = SCHEMA[section][key][0](value, f"[{section}] {key}")
             (melt if section == "melt" else down)[key] = checked
             raw.setdefault(section, {})[key] = list(checked) if isinstance(checked, tuple) else checked
@@ -425,28 +410,10 @@ def parse_config(data: dict, base_dir: Path, source: Path | None = None) -> Conf
     cl = sections["climate"]
     if cl.start and cl.end and cl.end <= cl.start:
         raise InputError(f"{label}: [climate] end ({cl.end}) must come after start ({cl.start}).")
-    _check_calibration(sections.get("calibration"), label)
+    if "calibration" in sections:
+        from .calibrate.spec import check_section  # all [calibration] checks live there
+        check_section(sections["calibration"], label)
     return Config(**sections, source=source, raw=data)
-
-
-def _check_calibration(cal: Calibration | None, label: str) -> None:
-    if cal is None:
-        return
-    allowed = set(numeric_keys("melt")) | set(numeric_keys("downscaling")) | {"lapse_rate_k_per_m"}
-    if not cal.parameters:
-        raise InputError(f"{label}: [calibration] parameters is empty; name at least one numeric key "
-                         "of [melt] or [downscaling].")
-    for p in cal.parameters:
-        if p not in allowed:
-            raise InputError(f"{label}: [calibration] parameters names \"{p}\", which is not a numeric "
-                             f"key of [melt] or [downscaling]{_suggest(p, allowed)}; allowed: "
-                             + ", ".join(sorted(allowed)) + ".")
-    for p, b in cal.bounds.items():
-        if p not in cal.parameters:
-            raise InputError(f"{label}: [calibration] bounds gives \"{p}\", which is not in parameters.")
-        if (not isinstance(b, list) or len(b) != 2
-                or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in b) or b[0] >= b[1]):
-            raise InputError(f"{label}: [calibration] bounds for \"{p}\" must be [low, high] with low < high; got {b!r}.")
 
 
 def load_config(path: str | Path) -> Config:

@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import shapely
+import tomli_w
 from affine import Affine
 from scipy import ndimage
 from shapely.geometry import Polygon
@@ -58,7 +59,6 @@ DEM_CRS = "EPSG:32632"
 STATION_ELEVATION_M = 1200.0
 """Elevation of the invented valley station "Seldra Dam", m a.s.l."""
 
-STATION_NAME = "Seldra Dam"
 SITE_NAME = "Seldra"
 
 CELL_SIZE_M = 30.0
@@ -678,28 +678,91 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
 
 
 # ----------------------------------------------------------------------------
-# the demo config: src/firnline/demo.toml (paths relative to the demo folder);
-# configs/demo.toml is the same text with paths into ../demo_dem/
+# the demo config, written from rows: the model parameters' rows come from the
+# registry (firnline.parameters), so their defaults and comments are declared once.
+# configs/demo.toml is the same text with paths into ../demo_dem/.
 # ----------------------------------------------------------------------------
 
-_CONFIG_INPUTS = ("dem.tif", "glaciers.geojson", "station.csv")
+_HEADER = ("firnline demo: the invented Seldra catchment (fictional; all data are made up).",
+           'Every key below shows its default value unless marked "demo value".',
+           "Results are model estimates; see the caution in README.md.")
+
+# (section, key, value, comment); a value already in TOML quotes ('"..."') is shown commented
+# out (an optional key); "{inputs}" and "{output_dir}" mark the values demo_config_text sets;
+# key "*": the section's model parameters from the registry.
+_ROWS = (
+    ("site", "name", "Seldra catchment", 'demo value (default "unnamed site")'),
+    ("dem", "path", "{inputs}dem.tif", "demo value (required): any raster rasterio reads, elevations in m"),
+    ("glaciers", "outlines", "{inputs}glaciers.geojson",
+     "demo value (optional section): GeoJSON, GeoPackage or Shapefile"),
+    ("glaciers", "id_field", "name", 'default "name"'),
+    ("glaciers", "layer", '"outlines"', "GeoPackage layer; default: the first layer"),
+    ("climate", "station_file", "{inputs}station.csv", "demo value (required)"),
+    ("climate", "station_elevation_m", STATION_ELEVATION_M, "demo value (required): the Seldra Dam station"),
+    ("climate", "date_column", "date", "default"),
+    ("climate", "temperature_column", "temperature_c", "default: daily mean air temperature, deg C"),
+    ("climate", "precipitation_column", "precipitation_mm", "default: daily total, mm"),
+    ("climate", "start", '"2016-10-01"', "default: the whole record"),
+    ("climate", "end", '"2024-09-30"', ""),
+    ("downscaling", "*", "", ""),
+    ("melt", "method", "degree-day", 'default; or "radiation"'),
+    ("melt", "*", "", ""),
+    ("balance", "year_start", "10-01",
+     "default: the balance year starts 1 October, labelled by the year it ends in"),
+    ("balance", "winter_end", "04-30", "default: fixed-date winter 1 October .. 30 April"),
+    ("balance", "band_width_m", 50, "default: elevation band width for profiles and the ELA"),
+    ("output", "dir", "{output_dir}", "{output_comment}"),
+    ("radiation", "time_step_minutes", 15, "default"),
+    ("radiation", "horizon_sectors", 72, "default"),
+    ("radiation", "horizon_distance_m", 20000, "default"),
+    ("radiation", "cache_dir", ".firnline_cache", "default, relative to this file"),
+    ("radiation", "write_horizons", False, "default: also write horizon.tif with `firnline terrain`"),
+)
+
+
+def _toml_value(value) -> str:
+    """One value as TOML (tomli-w), arrays on one line."""
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    return tomli_w.dumps({"v": value})[4:].strip()
+
+
+def _rows(output_dir: str | None):
+    from . import parameters
+
+    for section, key, value, comment in _ROWS:
+        if key == "*":   # the model parameters of the section, from the registry
+            for p in parameters.in_section(section):
+                default = p.default[0] if p.kind == "monthly" and len(p.default) == 1 else p.default
+                methods = "" if p.methods == parameters.ALL_METHODS else f"; {', '.join(p.methods)} method"
+                unit = f", {p.unit}" if p.unit != "1" else ""
+                yield section, p.key, default, f"default: {p.description}{unit}{methods}"
+            continue
+        if value == "{output_dir}":
+            value, comment = ((output_dir, 'demo value (default "out"), relative to this file') if output_dir
+                              else ("out", "default, relative to this file"))
+        yield section, key, value, comment
 
 
 def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> str:
     """The demo config, with ``inputs_prefix`` put before each input file name.
 
-    ``output_dir`` replaces ``[output] dir`` (marked as a demo value) when given.
+    ``output_dir`` sets ``[output] dir`` (marked as a demo value) when given.
     """
-    from importlib.resources import files
-
-    text = files("firnline").joinpath("demo.toml").read_text(encoding="utf-8")
-    for name in _CONFIG_INPUTS:
-        text = text.replace(f'"{name}"', f'"{inputs_prefix}{name}"')
-    if output_dir is not None:
-        old = 'dir = "out"                               # default, relative to this file'
-        new = f'dir = "{output_dir}"'
-        text = text.replace(old, f"{new:<42}# demo value (default \"out\"), relative to this file")
-    return text
+    lines = [f"# {h}" for h in _HEADER]
+    section = None
+    for sec, key, value, comment in _rows(output_dir):
+        if sec != section:
+            lines += ["", f"[{sec}]"]
+            section = sec
+        if isinstance(value, str) and value.startswith('"'):   # an optional key, shown commented out
+            row = f"# {key} = {value}"
+        else:
+            if isinstance(value, str):
+                value = value.replace("{inputs}", inputs_prefix)
+            row = f"{key} = {_toml_value(value)}"
+        lines.append(f"{row:<41} # {comment}" if comment else row)
+    return "\n".join(lines) + "\n"
 
 
 def write_demo(folder) -> Path:
@@ -770,8 +833,13 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
     from .calibrate import build_operator, modelled_values
     from .config import parse_config
     from .model import prepare
-    from .observations import (GEODETIC_DENSITY_KG_M3, GEODETIC_DENSITY_SIGMA_KG_M3, check_glacier_balances,
-                               check_point_balances, parse_table)
+    from .observations import (
+        GEODETIC_DENSITY_KG_M3,
+        GEODETIC_DENSITY_SIGMA_KG_M3,
+        check_glacier_balances,
+        check_point_balances,
+        parse_table,
+    )
 
     if sys.version_info >= (3, 11):
         import tomllib

@@ -1,7 +1,7 @@
-"""The one exception type that means "the user's input is wrong"."""
+"""The one exception type that means "the user's input is wrong" (a ValueError)."""
 
 
-class InputError(Exception):
+class InputError(ValueError):
     """Bad input or config.
 
     The message is one plain sentence that names the file, key or row at fault

@@ -106,7 +106,8 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
     Parameters
     ----------
     df : DataFrame
-        The table as read, all columns as text (row i is line i + 2 of the file).
+        The table as read, all columns as text; the row whose index is i is line i + 2
+        of the file (the header is line 1).
     source : str
         File name used in messages.
     date_col, t_col, p_col : str
@@ -128,7 +129,7 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
         if col not in df.columns:
             raise InputError(f"{source}: no column \"{col}\" (set [climate] {key}); the file has "
                              + ", ".join(f'"{c}"' for c in df.columns) + ".")
-    line = np.arange(len(df)) + 2  # header is line 1
+    line = df.index.to_numpy() + 2  # header is line 1
     raw_dates = df[date_col].astype("string").str.strip()
     dates = pd.to_datetime(raw_dates, format="%Y-%m-%d", errors="coerce")
     bad = dates.isna().to_numpy()
@@ -218,9 +219,12 @@ def read_station(path: Path, date_col: str, t_col: str, p_col: str, year_start: 
     """Read a station CSV (the file edge) and check it with :func:`build_forcing`."""
     path = Path(path)
     try:
-        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
+        # blank lines are kept while reading so that every row's index gives its line number
+        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True,
+                         skip_blank_lines=False)
     except FileNotFoundError:
         raise InputError(f"{path}: station file not found; check [climate] station_file.") from None
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as e:
         raise InputError(f"{path.name}: not a readable CSV table ({str(e).splitlines()[0]}).") from None
+    df = df[~(df.fillna("").apply(lambda c: c.str.strip()) == "").all(axis=1)]   # then dropped
     return build_forcing(df, path.name, date_col, t_col, p_col, year_start, winter_end, start, end)

@@ -93,8 +93,8 @@ def horizon_angles(elevation_m, valid, cell_size_m, n_sectors, max_distance_m, p
         Number of azimuth sectors (at least 1).
     max_distance_m : float
         How far the search looks, m. A point exactly at this distance counts.
-    progress : callable, optional
-        ``progress(n_done, n_total)`` called after each sector.
+    progress : callable(label, done, total), optional
+        Called after each sector, label ``"horizon sectors"`` (see :mod:`firnline.progress`).
 
     Returns
     -------
@@ -126,7 +126,7 @@ def horizon_angles(elevation_m, valid, cell_size_m, n_sectors, max_distance_m, p
         sin_az, cos_az = (0.0 if abs(v) < 1e-12 else v for v in (math.sin(az), math.cos(az)))
         _direction_horizon(z, dx, dy, sin_az, cos_az, max_distance_m, out[k])
         if progress is not None:
-            progress(k + 1, n_sectors)
+            progress("horizon sectors", k + 1, n_sectors)
     return out
 
 

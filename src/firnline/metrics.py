@@ -26,6 +26,17 @@ Rules used here
   against band-centre elevation over the bands whose centre lies below the ELA
   (all bands in an ``above_glacier`` year), in m w.e. per 100 m; it needs at
   least two such bands.
+* Balanced budget (``balanced_budget.csv``, :func:`balanced_budget`): per glacier,
+  ELA and AAR are regressed linearly on the specific annual balance B over the
+  balance years of a run, and ELA0 and AAR0 are the fitted values at B = 0 (the
+  intercepts), after Dyurgerov, Meier & Bahr (2009), J. Glaciology 55(192). Only
+  years with the flag ``ok`` are used (in the other years the ELA is undefined and
+  the AAR saturated at 0 or 1). Fewer than three usable years give empty values and
+  an ``insufficient years`` note; when B = 0 lies outside the modelled balances, the
+  note says the values are extrapolated.
+
+Every straight-line fit (gradient, balanced budget, the sensitivities of
+:mod:`firnline.scenarios`) is :func:`line_fit`.
 """
 
 from __future__ import annotations
@@ -33,8 +44,15 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 OK, BELOW, ABOVE = "ok", "below_glacier", "above_glacier"
+
+BUDGET_COLUMNS = ["glacier", "ela0_m", "aar0", "r2", "n_years", "aar_r2", "dela_db_m_per_mwe",
+                  "daar_db_per_mwe", "note"]
+
+MIN_BUDGET_YEARS = 3
+"""Fewest balance years with the ELA on the glacier for a balanced-budget regression."""
 
 
 @dataclass(frozen=True)
@@ -127,8 +145,7 @@ def ablation_gradient(profile: Profile, ela_m: float, flag: str) -> float:
     sel = np.ones(len(zc), bool) if flag == ABOVE else zc < ela_m
     if sel.sum() < 2:
         return float("nan")
-    slope = np.polyfit(zc[sel], profile.balance_mwe[sel], 1)[0]
-    return float(slope * 100.0)
+    return line_fit(zc[sel], profile.balance_mwe[sel])[1] * 100.0
 
 
 @dataclass(frozen=True)
@@ -154,3 +171,76 @@ def glacier_year(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m)
                        summer_mwe=specific_balance(summer_mwe, area_m2),
                        ela_m=ela, aar=aar(annual_mwe, area_m2, flag), ela_flag=flag,
                        gradient_mwe_per_100m=ablation_gradient(prof, ela, flag), profile=prof)
+
+
+def line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
+    """Ordinary least-squares line y = a + b x.
+
+    Parameters
+    ----------
+    x, y : ndarray (n,), n >= 2, x not all equal
+
+    Returns
+    -------
+    (a, b, r2) : intercept (unit of y), slope (unit of y per unit of x) and the
+        coefficient of determination 1 - SS_res / SS_tot (NaN when y is constant).
+    """
+    x = np.asarray(x, dtype="float64")
+    y = np.asarray(y, dtype="float64")
+    dx = x - x.mean()
+    sxx = float(np.sum(dx * dx))
+    if x.size < 2 or sxx == 0.0:
+        raise ValueError("a line fit needs at least two distinct x values")
+    b = float(np.sum(dx * (y - y.mean())) / sxx)
+    a = float(y.mean() - b * x.mean())
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    ss_res = float(np.sum((y - a - b * x) ** 2))
+    return a, b, (1.0 - ss_res / ss_tot) if ss_tot > 0 else float("nan")
+
+
+def balanced_budget(summary: pd.DataFrame) -> pd.DataFrame:
+    """Balanced-budget ELA0 and AAR0 per glacier (``balanced_budget.csv``).
+
+    ELA and AAR of the years with an ``ok`` flag are regressed on the specific annual
+    balance B by ordinary least squares, and evaluated at B = 0 (Dyurgerov, Meier &
+    Bahr, 2009, J. Glaciology 55(192), "A new index of glacier area change").
+
+    Parameters
+    ----------
+    summary : DataFrame
+        One row per glacier and year with at least ``glacier``, ``annual_balance_mwe``
+        (m w.e.), ``ela_m`` (m), ``aar`` and ``ela_flag`` (as ``summary.csv``).
+
+    Returns
+    -------
+    DataFrame with :data:`BUDGET_COLUMNS`: ``ela0_m`` (m), ``aar0`` (1), ``r2`` of the
+    ELA regression, ``n_years`` used, then ``aar_r2``, the slopes
+    ``dela_db_m_per_mwe`` (m per m w.e.) and ``daar_db_per_mwe`` (per m w.e.) and a
+    ``note``. With fewer than :data:`MIN_BUDGET_YEARS` usable years, or no spread of
+    B between them, the values are NaN and the note says why.
+    """
+    rows = []
+    for name, g in summary.groupby("glacier", sort=False):
+        u = g[(g.ela_flag == OK) & np.isfinite(g.ela_m) & np.isfinite(g.aar)
+              & np.isfinite(g.annual_balance_mwe)]
+        b = u.annual_balance_mwe.to_numpy(float)
+        n = len(u)
+        nan = float("nan")
+        if n < MIN_BUDGET_YEARS:
+            rows.append([name, nan, nan, nan, n, nan, nan, nan,
+                         f"insufficient years: {n} balance year(s) with the ELA on the glacier, "
+                         f"{MIN_BUDGET_YEARS} needed"])
+            continue
+        if np.ptp(b) == 0.0:
+            rows.append([name, nan, nan, nan, n, nan, nan, nan,
+                         "insufficient years: the specific balance does not vary between the usable "
+                         "years, so no regression"])
+            continue
+        ela0, dela, r2 = line_fit(b, u.ela_m.to_numpy(float))
+        aar0, daar, aar_r2 = line_fit(b, u.aar.to_numpy(float))
+        note = ""
+        if not b.min() <= 0.0 <= b.max():
+            note = (f"zero balance lies outside the modelled balances ({b.min():.2f} to {b.max():.2f} "
+                    "m w.e.); ELA0 and AAR0 are extrapolated")
+        rows.append([name, ela0, aar0, r2, n, aar_r2, dela, daar, note])
+    return pd.DataFrame(rows, columns=BUDGET_COLUMNS).astype({"n_years": int})

@@ -19,7 +19,7 @@ import dataclasses
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
@@ -29,9 +29,13 @@ from . import __version__
 from . import glaciers as glaciers_mod
 from .config import Config
 from .forcing import Forcing, read_station
+from .glaciers import Glaciers
 from .grid import Grid, file_checksum, read_dem
 from .kernel import KernelParams, KernelResult, run_kernel
 from .metrics import YearMetrics, glacier_year
+from .progress import Progress, stage
+from .provenance import CAUTION
+from .radiation import RadiationTable
 from .terrain import slope_aspect
 
 SUMMARY_COLUMNS = ["glacier", "balance_year", "area_km2", "annual_balance_mwe", "winter_balance_mwe",
@@ -39,47 +43,96 @@ SUMMARY_COLUMNS = ["glacier", "balance_year", "area_km2", "annual_balance_mwe", 
 PROFILE_COLUMNS = ["glacier", "balance_year", "band_bottom_m", "band_top_m", "area_km2",
                    "annual_balance_mwe"]
 
-CAUTION = ("firnline results are model estimates. Before they inform water-resource, hydropower "
-           "or hazard decisions they must be reviewed by qualified practitioners under the "
-           "regulations that apply locally.")
-
-
-@dataclass
+@dataclass(frozen=True)
 class Setup:
-    """Everything a kernel run needs, read and derived once.
+    """Everything a kernel run needs, read and derived once by :func:`prepare` (frozen).
 
-    ``cells`` are the flat (C-order) indices of the valid DEM cells; every per-cell
-    array below (``z_m``, ``glacier_mask``, the radiation table) follows that order.
-    ``glacier_pos`` gives, per glacier, the positions of its cells in that order.
+    The per-cell order rule: ``cells`` are the flat (C-order) indices of the modelled
+    DEM cells, ascending; every per-cell array (``z_m``, ``glacier_mask``, the rows of
+    ``radiation``) follows that order, and ``glacier_pos[g]`` gives the positions of
+    glacier ``g``'s cells in it (aligned with ``glaciers.fractions[g]``). A subset of
+    cells is made only by :meth:`select`, which keeps the rule.
+
+    ``config`` is the config the setup was prepared from: a run or sweep on the setup
+    may change only the model parameters of :mod:`firnline.parameters` that the kernel
+    takes (see :func:`check_config`).
     """
 
     config: Config
     grid: Grid
     slope_deg: np.ndarray
     aspect_deg: np.ndarray
-    glaciers: object
+    glaciers: Glaciers
     forcing: Forcing
     cells: np.ndarray
     z_m: np.ndarray
     glacier_mask: np.ndarray
-    glacier_pos: list
-    radiation: object | None
+    glacier_pos: tuple
+    radiation: RadiationTable | None
     checksums: dict
-    notes: list = field(default_factory=list)
+    notes: tuple = ()
     timings: dict = field(default_factory=dict)
 
+    def select(self, positions) -> "Setup":
+        """The setup restricted to some cells, given as ascending positions in ``cells`` order.
 
-ProgressFactory = Callable[[str, int], Callable[[int], None]] | None
+        The per-cell arrays and the radiation table are cut; the grid, glaciers,
+        forcing and notes are shared. ``glacier_pos`` is remapped when every glacier
+        lies wholly inside or wholly outside the selection (as for the glacier cells of
+        a sweep); otherwise it is empty, and the selection serves kernel runs only (no
+        per-glacier metrics).
+        """
+        sub = np.asarray(positions, dtype=np.int64)
+        if sub.size > 1 and np.any(np.diff(sub) <= 0):
+            raise ValueError("Setup.select takes ascending, distinct positions")
+        inside = np.zeros(self.cells.size, bool)
+        inside[sub] = True
+        whole = all(inside[pos].all() for pos in self.glacier_pos)
+        pos = tuple(np.searchsorted(sub, p) for p in self.glacier_pos) if whole else ()
+        rad = self.radiation.subset(sub) if self.radiation is not None else None
+        return dataclasses.replace(self, cells=self.cells[sub], z_m=self.z_m[sub],
+                                   glacier_mask=self.glacier_mask[sub], radiation=rad,
+                                   glacier_pos=pos)
 
 
-def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bool | None = None) -> Setup:
+def check_config(setup: Setup, config: Config | None) -> Config:
+    """The config of a call on ``setup``: ``config`` if it differs only in kernel parameters.
+
+    One config per call: everything but the model parameters the kernel takes
+    (:func:`firnline.parameters.kernel_values`) comes from the config the setup was
+    prepared from (grid, outlines, forcing, balance calendar, band width, radiation
+    settings and ``[melt] method`` and ``transmissivity``, which shape the radiation
+    table). A config that differs elsewhere is refused.
+
+    Raises
+    ------
+    ValueError
+        When ``config`` differs from ``setup.config`` outside the kernel parameters.
+    """
+    if config is None or config is setup.config:
+        return setup.config
+    ref = setup.config
+    for name in ("site", "dem", "glaciers", "climate", "balance", "radiation"):
+        if getattr(config, name) != getattr(ref, name):
+            raise ValueError(f"the config differs from the one the setup was prepared from in [{name}]; "
+                             "only model parameters may differ: prepare a setup from this config "
+                             "(firnline.model.prepare) instead")
+    for key in ("method", "transmissivity"):
+        if getattr(config.melt, key) != getattr(ref.melt, key):
+            raise ValueError(f"the config differs from the one the setup was prepared from in [melt] "
+                             f"{key}, which shapes the setup; prepare a setup from this config "
+                             "(firnline.model.prepare) instead")
+    return config
+
+
+def prepare(config: Config, progress: Progress = None, need_radiation: bool | None = None) -> Setup:
     """Read and check every input of ``config`` once.
 
     Parameters
     ----------
     config : Config
-    progress : callable(label, total) -> callable(done), optional
-        Makes a progress callback for a long step (the CLI passes tqdm bars).
+    progress : callable(label, done, total), optional
+        Progress reports of the long steps (see :mod:`firnline.progress`).
     need_radiation : bool, optional
         Build the radiation table; default: when ``[melt] method = "radiation"``.
     """
@@ -88,9 +141,7 @@ def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bo
     grid = read_dem(config.dem.path)
     notes += grid.notes
     slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
-    checksums = {"dem": grid.checksum}
-    if config.source is not None:
-        checksums["config"] = file_checksum(config.source)
+    checksums = input_checksums(config, grid)
     if config.glaciers is not None:
         gl = glaciers_mod.load_glaciers(config.glaciers.outlines, config.glaciers.id_field,
                                         config.glaciers.layer, grid.crs, grid.transform, grid.shape,
@@ -106,38 +157,32 @@ def prepare(config: Config, progress: ProgressFactory = None, need_radiation: bo
     checksums["station"] = file_checksum(cl.station_file)
     notes += forcing.notes
     cells = np.flatnonzero(grid.valid.ravel())
-    z = grid.elevation.ravel()[cells]
-    mask = gl.total_fraction.ravel()[cells] > 0
-    pos = [np.searchsorted(cells, c) for c in gl.cells]
     t1 = time.perf_counter()
-    setup = Setup(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, glaciers=gl,
-                  forcing=forcing, cells=cells, z_m=z, glacier_mask=mask, glacier_pos=pos,
-                  radiation=None, checksums=checksums, notes=notes,
-                  timings={"read_inputs_s": t1 - t0})
+    timings = {"read_inputs_s": t1 - t0}
     if need_radiation is None:
         need_radiation = config.melt.method == "radiation"
+    table = None
     if need_radiation:
-        setup.radiation, _, note = radiation_climatology(grid, slope, aspect, config, progress)
-        setup.notes.append(note)
-        setup.timings["radiation_s"] = time.perf_counter() - t1
-    return setup
+        table, _, note = radiation_climatology(grid, slope, aspect, config, progress)
+        notes.append(note)
+        timings["radiation_s"] = time.perf_counter() - t1
+    return Setup(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, glaciers=gl,
+                 forcing=forcing, cells=cells, z_m=grid.elevation.ravel()[cells],
+                 glacier_mask=gl.total_fraction.ravel()[cells] > 0,
+                 glacier_pos=tuple(np.searchsorted(cells, c) for c in gl.cells),
+                 radiation=table, checksums=checksums, notes=tuple(notes), timings=timings)
 
 
-def _bar(progress: ProgressFactory, label: str):
-    """Adapt a progress factory to the (n_done, n_total) callbacks of horizon/radiation."""
-    if progress is None:
-        return None
-    state = {}
-
-    def cb(done: int, total: int) -> None:
-        if "bar" not in state:
-            state["bar"] = progress(label, total)
-        state["bar"](done)
-    return cb
+def input_checksums(config: Config, grid: Grid) -> dict:
+    """SHA-256 of the DEM and of the config file (when it came from one)."""
+    checksums = {"dem": grid.checksum}
+    if config.source is not None:
+        checksums["config"] = file_checksum(config.source)
+    return checksums
 
 
 def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndarray, config: Config,
-                          progress: ProgressFactory = None, want_horizons: bool = False):
+                          progress: Progress = None, want_horizons: bool = False):
     """The potential direct radiation table of the valid cells, from the disk cache when it can.
 
     Horizons (Dozier & Frew 1990 sector search) and the daily climatology (Hock 1999
@@ -166,25 +211,64 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     t0 = time.perf_counter()
     table = cache.load_table(rc.cache_dir, tkey)
     if table is not None and not want_horizons:
-        return table, None, f"reused the cached radiation climatology ({rc.cache_dir / ('table-' + tkey)}.npz)."
+        return table, None, f"reused the cached radiation climatology ({cache.table_path(rc.cache_dir, tkey)})."
     horizons = cache.load_horizons(rc.cache_dir, hkey)
     if horizons is None:
         horizons = horizon_angles(grid.elevation, grid.valid, grid.cell_size_m, rc.horizon_sectors,
-                                  rc.horizon_distance_m, progress=_bar(progress, "horizon sectors"))
+                                  rc.horizon_distance_m, progress=progress)
         cache.save_horizons(rc.cache_dir, hkey, horizons)
     if table is not None:
         return table, horizons, "reused the cached radiation climatology and horizons."
     lon, lat = grid.lonlat()
     table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
-                          config.melt.transmissivity, rc.time_step_minutes,
-                          progress=_bar(progress, "radiation row bands"))
+                          config.melt.transmissivity, rc.time_step_minutes, progress=progress)
     cache.save_table(rc.cache_dir, tkey, table)
     return table, horizons, (f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "
                              f"and cached it in {rc.cache_dir}.")
 
 
+@dataclass(frozen=True)
+class TerrainResult:
+    """Result of :func:`terrain`: the DEM's slope, aspect, radiation climatology and horizons.
+
+    ``horizons`` is None unless ``[radiation] write_horizons``; ``checksums`` holds the
+    SHA-256 of the DEM and the config; ``notes`` the console notes.
+    """
+
+    config: Config
+    grid: Grid
+    slope_deg: np.ndarray
+    aspect_deg: np.ndarray
+    radiation: RadiationTable
+    horizons: np.ndarray | None
+    checksums: dict
+    notes: tuple
+
+    def write(self, out_dir: str | Path | None = None) -> list[Path]:
+        """Write the terrain products into ``out_dir`` (default: ``[output] dir``)."""
+        from .products import write_terrain
+        return write_terrain(self, Path(out_dir) if out_dir is not None else self.config.output.dir)
+
+
+def terrain(config: Config, progress: Progress = None) -> TerrainResult:
+    """Slope and aspect (Horn 1981), the radiation climatology and, if asked, the horizons.
+
+    Parameters
+    ----------
+    config : Config
+    progress : callable(label, done, total), optional
+    """
+    grid = read_dem(config.dem.path)
+    slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
+    want = config.radiation.write_horizons
+    table, horizons, note = radiation_climatology(grid, slope, aspect, config, progress, want_horizons=want)
+    return TerrainResult(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, radiation=table,
+                         horizons=horizons if want else None, checksums=input_checksums(config, grid),
+                         notes=(*grid.notes, note))
+
+
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
-             precip_change_pct: Sequence[float] = (0.0,), progress: Callable[[int], None] | None = None,
+             precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
              snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None) -> KernelResult:
     """Run the kernel on a prepared setup.
 
@@ -192,26 +276,29 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     ----------
     setup : Setup
     config : Config, optional
-        Parameters to use (default: ``setup.config``); for example a calibration trial.
+        Parameters to use (default: ``setup.config``), for example a calibration trial;
+        it may differ from ``setup.config`` only in the kernel parameters
+        (:func:`check_config`).
     warming_k, precip_change_pct : sequences of equal length
         One scenario per pair (K, %).
-    progress : callable(days_done), optional
+    progress : callable(label, done, total), optional
+        Reports the days done (label ``"days"``).
     snapshot_days : day boundaries at which to keep the cumulative balance (see kernel).
     cells : ndarray of int, optional
-        Positions (into ``setup.cells`` order) to restrict the run to.
+        Positions (into ``setup.cells`` order, ascending) to restrict the run to
+        (:meth:`Setup.select`).
     """
-    cfg = config or setup.config
+    cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
-    f = setup.forcing
-    z, mask, rad = setup.z_m, setup.glacier_mask, setup.radiation
     if cells is not None:
-        z, mask = z[cells], mask[cells]
-        rad = rad.subset(cells) if rad is not None else None
-    if params.use_radiation and rad is None:
+        setup = setup.select(cells)
+    f = setup.forcing
+    if params.use_radiation and setup.radiation is None:
         raise RuntimeError("the setup was prepared without the radiation table")
-    return run_kernel(z, mask, cfg.climate.station_elevation_m, f.temperature_c, f.precipitation_mm,
-                      f.month, f.day_of_year, f.year_index, f.winter, params, warming_k,
-                      precip_change_pct, radiation=rad, snapshot_days=snapshot_days, progress=progress)
+    return run_kernel(setup.z_m, setup.glacier_mask, cfg.climate.station_elevation_m, f.temperature_c,
+                      f.precipitation_mm, f.month, f.day_of_year, f.year_index, f.winter, params, warming_k,
+                      precip_change_pct, radiation=setup.radiation, snapshot_days=snapshot_days,
+                      progress=stage(progress, "days", f.n_days))
 
 
 # ----------------------------------------------------------------------------
@@ -327,7 +414,7 @@ def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[
 
 
 def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
-        progress: ProgressFactory = None, setup: Setup | None = None) -> RunResult:
+        progress: Progress = None, setup: Setup | None = None) -> RunResult:
     """Model every complete balance year of the record.
 
     Parameters
@@ -337,9 +424,11 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
         Uniform warming added to the station temperature, K.
     precip_change_pct : float
         Precipitation change, % (precipitation is scaled by 1 + pct/100).
-    progress : callable(label, total) -> callable(done), optional
+    progress : callable(label, done, total), optional
     setup : Setup, optional
-        A prepared setup to reuse (default: :func:`prepare` is called).
+        A prepared setup to reuse (default: :func:`prepare` is called). It must come
+        from ``config`` or from a config that differs only in the kernel parameters
+        (:func:`check_config`); otherwise ValueError.
 
     Returns
     -------
@@ -347,9 +436,9 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
     """
     if setup is None:
         setup = prepare(config, progress)
+    config = check_config(setup, config)
     t0 = time.perf_counter()
-    cb = progress("days", setup.forcing.n_days) if progress else None
-    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=cb)
+    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress)
     t1 = time.perf_counter()
     years = [int(y) for y in setup.forcing.years]
     f = cell_fields(setup, kres, 0)

@@ -89,10 +89,6 @@ class Table:
     rows: list
     lines: list
 
-    def column(self, name: str) -> list[str]:
-        i = self.columns.index(name)
-        return [r[i] for r in self.rows]
-
 
 def parse_table(text: str, source: str) -> Table:
     """Split CSV text into a :class:`Table` (blank and ``#`` lines skipped).
@@ -262,7 +258,7 @@ def _require_columns(table: Table, needed: Sequence[str], key: str) -> None:
     missing = [c for c in needed if c not in table.columns]
     if missing:
         raise InputError(f"{table.source}: missing column{'s' if len(missing) > 1 else ''} "
-                         + ", ".join(f'"{c}"' for c in missing) + f" (the header has "
+                         + ", ".join(f'"{c}"' for c in missing) + " (the header has "
                          + ", ".join(f'"{c}"' for c in table.columns)
                          + f"); [observations] {key} needs the columns " + ", ".join(needed) + ".")
 

@@ -1,4 +1,4 @@
-"""Writers: GeoTIFF, CSV and JSON, all-or-nothing.
+"""Writers: GeoTIFF, NetCDF-CF, CSV and JSON, all-or-nothing.
 
 Every command writes its files into a hidden staging folder inside the output
 folder; only when all of them are complete are they renamed into place (an

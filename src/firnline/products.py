@@ -1,23 +1,22 @@
-"""The files of a run: which products, named how, with which provenance.
+"""The files of a run and of ``firnline terrain``: which products, named how, with which provenance.
 
-``write_run`` is the single place that knows the run's output layout (see the
-contract in DESIGN.md); the generic writers live in :mod:`firnline.outputs`.
+``write_run`` and ``write_terrain`` are the single places that know those output
+layouts (see the contract in DESIGN.md); a sweep's files are
+:mod:`firnline.scenario_products`; the generic writers live in :mod:`firnline.outputs`
+and the provenance in :mod:`firnline.provenance`.
 """
 
 from __future__ import annotations
 
 import dataclasses
-import datetime as dt
 from pathlib import Path
-from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .model import CAUTION, RunResult, parameters_used
-from .scenarios import SCENARIO_COLUMNS, Sweep, balanced_budget, scenario_label
-from .scenarios import __doc__ as SCENARIO_RULES
+from . import __version__, provenance
+from .metrics import balanced_budget
+from .model import RunResult, TerrainResult, parameters_used
 from .outputs import staged, write_csv, write_geotiff, write_json, write_netcdf
 
 MAPS = [  # (variable in fields, file prefix, description)
@@ -29,20 +28,10 @@ MAPS = [  # (variable in fields, file prefix, description)
 ]
 
 
-def provenance(result: RunResult) -> dict:
+def run_tags(result: RunResult) -> dict:
     """Tags written into every GeoTIFF of a run."""
-    cfg = result.config
-    return {
-        "firnline_version": __version__,
-        "created_utc": dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "config": str(cfg.source) if cfg.source else "",
-        "config_sha256": result.setup.checksums.get("config", ""),
-        "dem_sha256": result.setup.checksums["dem"],
-        "melt_method": cfg.melt.method,
-        "warming_k": f"{result.warming_k:g}",
-        "precip_change_pct": f"{result.precip_change_pct:g}",
-        "caution": CAUTION,
-    }
+    return provenance.run_tags(result.config, result.setup.checksums, result.warming_k,
+                               result.precip_change_pct)
 
 
 def glacier_results(result: RunResult) -> dict:
@@ -85,10 +74,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
     cfg = result.config
     setup = result.setup
     return {
-        "firnline_version": __version__,
-        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-        "caution": CAUTION,
-        "config_file": cfg.source,
+        **provenance.header(cfg),
         "config": {k: (dataclasses.asdict(v) if dataclasses.is_dataclass(v) else v)
                    for k, v in ((f.name, getattr(cfg, f.name)) for f in dataclasses.fields(cfg))
                    if k not in ("raw", "source")},
@@ -114,7 +100,7 @@ def write_run(result: RunResult, out_dir: Path) -> list[Path]:
     """Write every product of a run into ``out_dir``, all or nothing."""
     setup = result.setup
     grid = setup.grid
-    tags = provenance(result)
+    tags = run_tags(result)
     ds = result.fields
     years = [int(y) for y in ds.balance_year.values]
     with staged(out_dir) as st:
@@ -143,31 +129,32 @@ MONTHS = ("January", "February", "March", "April", "May", "June", "July", "Augus
           "October", "November", "December")
 
 
-def write_terrain(config, grid, slope, aspect, table, horizons, out_dir: Path) -> list[Path]:
-    """Write the products of ``firnline terrain`` into ``out_dir``, all or nothing."""
+def write_terrain(result: TerrainResult, out_dir: Path) -> list[Path]:
+    """Write the products of ``firnline terrain`` into ``out_dir``, all or nothing.
+
+    Each file carries the provenance of what it depends on
+    (:func:`firnline.provenance.terrain_tags`).
+    """
     from .horizon import sector_azimuths_deg
 
-    tags = {"firnline_version": __version__, "dem_sha256": grid.checksum,
-            "transmissivity": f"{config.melt.transmissivity:g}",
-            "time_step_minutes": str(config.radiation.time_step_minutes),
-            "horizon_sectors": str(config.radiation.horizon_sectors),
-            "horizon_distance_m": f"{config.radiation.horizon_distance_m:g}",
-            "method": "potential clear-sky direct radiation, Hock (1999) after Oke (1987), cast shadows "
-                      "by horizon sectors (Dozier and Frew 1990)"}
+    cfg, grid, table, horizons = result.config, result.grid, result.radiation, result.horizons
+    tags = {k: provenance.terrain_tags(cfg, result.checksums, k) for k in ("slope", "radiation", "horizon")}
+
+    def tif(name, bands, descriptions, units, product):
+        write_geotiff(st.path(name), bands, grid.transform, grid.crs, descriptions, units, tags[product])
+
     with staged(out_dir) as st:
-        write_geotiff(st.path("slope.tif"), slope, grid.transform, grid.crs,
-                      ["slope angle (Horn 1981)"], "degree", tags)
-        write_geotiff(st.path("aspect.tif"), aspect, grid.transform, grid.crs,
-                      ["aspect, clockwise from north (NaN on flat cells)"], "degree", tags)
-        write_geotiff(st.path("radiation_monthly.tif"), grid.to_grid(table.monthly_means()), grid.transform,
-                      grid.crs, [f"mean daily potential direct radiation, {m}" for m in MONTHS], "W m-2", tags)
-        write_geotiff(st.path("radiation_annual.tif"), grid.to_grid(table.annual_mean()), grid.transform, grid.crs,
-                      ["mean daily potential direct radiation over the year"], "W m-2", tags)
+        tif("slope.tif", result.slope_deg, ["slope angle (Horn 1981)"], "degree", "slope")
+        tif("aspect.tif", result.aspect_deg, ["aspect, clockwise from north (NaN on flat cells)"], "degree",
+            "slope")
+        tif("radiation_monthly.tif", grid.to_grid(table.monthly_means()),
+            [f"mean daily potential direct radiation, {m}" for m in MONTHS], "W m-2", "radiation")
+        tif("radiation_annual.tif", grid.to_grid(table.annual_mean()),
+            ["mean daily potential direct radiation over the year"], "W m-2", "radiation")
         if horizons is not None:
-            hz = np.where(grid.valid, np.degrees(horizons), np.nan)
-            write_geotiff(st.path("horizon.tif"), hz, grid.transform, grid.crs,
-                          [f"horizon angle towards azimuth {a:g} deg (grid north)"
-                           for a in sector_azimuths_deg(horizons.shape[0])], "degree", tags)
+            tif("horizon.tif", np.where(grid.valid, np.degrees(horizons), np.nan),
+                [f"horizon angle towards azimuth {a:g} deg (grid north)"
+                 for a in sector_azimuths_deg(horizons.shape[0])], "degree", "horizon")
     return [Path(out_dir) / n for n in st.names]
 
 
@@ -179,90 +166,4 @@ def summary_table(summary: pd.DataFrame) -> str:
         ela = f"{r.ela_m:7.0f}" if np.isfinite(r.ela_m) else f"{'-':>7}"
         lines.append(f"{str(r.glacier)[:20]:<20} {r.balance_year:>5} {r.annual_balance_mwe:9.2f} "
                      f"{ela} {r.aar:5.2f}  {r.ela_flag}")
-    return "\n".join(lines)
-
-
-# ----------------------------------------------------------------------------
-# the files of a scenario sweep
-# ----------------------------------------------------------------------------
-
-def map_name(warming_k: float, precip_change_pct: float) -> str:
-    """File name of a scenario's mean-balance map, e.g. ``mean_annual_balance_w+1.0_p+0.tif``."""
-    return f"mean_annual_balance_{scenario_label(warming_k, precip_change_pct)}.tif"
-
-
-def write_sweep(result: Sweep, out_dir: Path) -> list[Path]:
-    """Write every product of a sweep into ``out_dir``, all or nothing."""
-    from .report import balance_figure, ela_figure, profile_figure, save_png  # matplotlib: only here
-    setup, cfg = result.setup, result.config
-    grid = setup.grid
-    years = result.years
-    site = cfg.site.name
-    with staged(Path(out_dir)) as st:
-        write_csv(st.path("scenarios.csv"), result.table[SCENARIO_COLUMNS])
-        write_csv(st.path("scenario_years.csv"), result.year_table)
-        write_csv(st.path("sensitivity.csv"), result.sensitivity)
-        write_csv(st.path("scenario_profiles.csv"), result.profiles)
-        for i, (w, p) in enumerate(result.scenarios):
-            tags = provenance(SimpleNamespace(config=cfg, setup=setup, warming_k=w, precip_change_pct=p))
-            write_geotiff(st.path(map_name(w, p)), result.mean_balance_map(i), grid.transform, grid.crs,
-                          [f"mean annual surface mass balance {years[0]}-{years[-1]}, warming {w:+g} K, "
-                           f"precipitation change {p:+g} %"], "m w.e.", tags)
-        figures = [("ela_vs_warming.png", ela_figure(result.table, result.flags, result.glaciers, years, site)),
-                   ("balance_vs_warming.png", balance_figure(result.table, result.glaciers, years, site)),
-                   ("balance_profiles.png", profile_figure(result.profiles, result.glaciers, years, site))]
-        for name, fig in figures:
-            save_png(fig, st.path(name))
-        path = st.path("scenarios.json")
-        write_json(path, sweep_json(result, list(st.names)))
-    return [Path(out_dir) / n for n in st.names]
-
-
-def sweep_json(result: Sweep, files: list[str]) -> dict:
-    """Provenance and rules of a sweep (``scenarios.json``)."""
-    setup, cfg = result.setup, result.config
-    rules = SCENARIO_RULES.split("Rules used here", 1)[1].split("\n", 2)[2]
-    return {
-        "firnline_version": __version__,
-        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-        "caution": CAUTION,
-        "config_file": cfg.source,
-        "parameters": parameters_used(cfg),
-        "input_sha256": setup.checksums,
-        "scenarios": [{"warming_k": w, "precip_change_pct": p, "map": map_name(w, p),
-                       "reference": i == result.reference} for i, (w, p) in enumerate(result.scenarios)],
-        "balance_years": result.years,
-        "rules": [r for r in (" ".join(x.replace("``", "").split()).lstrip("* ")
-                              for x in rules.strip().split("\n* ")) if not r.startswith("Balanced")],
-        "ela_flags": result.flags.to_dict(orient="records"),
-        "glaciers": result.glaciers.to_dict(orient="records"),
-        "notes": setup.notes,
-        "timings_s": result.timings,
-        "files": files,
-    }
-
-
-def sweep_table(result: Sweep) -> str:
-    """The console's closing table: one line per glacier and scenario."""
-    t = result.table.merge(result.flags, on=["glacier", "warming_k", "precip_change_pct"])
-    lines = [f"{'glacier':<20} {'warming':>7} {'precip':>6} {'balance':>9} {'ELA':>6} {'shift':>6} "
-             f"{'AAR':>5}  ELA off glacier",
-             f"{'':<20} {'K':>7} {'%':>6} {'m w.e./a':>9} {'m':>6} {'m':>6} {'':>5}"]
-
-    def num(v, fmt, width):
-        return f"{format(v, fmt):>{width}}" if np.isfinite(v) else f"{'-':>{width}}"
-    for r in t.itertuples():
-        off = r.n_years - r.n_ela_ok
-        lines.append(f"{str(r.glacier)[:20]:<20} {r.warming_k:>+7g} {r.precip_change_pct:>+6g} "
-                     f"{r.mean_annual_balance_mwe:9.2f} {num(r.ela_m, '.0f', 6)} "
-                     f"{num(r.ela_shift_m, '+.0f', 6)} {r.aar:5.2f}  "
-                     f"{f'{off} of {r.n_years} years' if off else ''}")
-    s = result.sensitivity
-    lines.append("")
-    lines.append(f"{'glacier':<20} {'dELA/dT':>9} {'dB/dT':>11}")
-    lines.append(f"{'':<20} {'m per K':>9} {'m w.e./K':>11}")
-    for r in s.itertuples():
-        lines.append(f"{str(r.glacier)[:20]:<20} {num(r.dela_dt_m_per_k, '.0f', 9)} "
-                     f"{num(r.dbalance_dt_mwe_per_k, '.3f', 11)}  {r.note}")
-    lines.append("ELA: mean over the years with the ELA on the glacier; see scenarios.json for the rules.")
     return "\n".join(lines)

@@ -321,11 +321,11 @@ def _prepare(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lo
     if valid.ndim != 2:
         raise ValueError("valid must be a 2-D array")
     if not (0.0 < float(transmissivity) <= 1.0):
-        raise InputError(f"[melt] transmissivity must be above 0 and at most 1, got {transmissivity}; "
-                         "set a value such as 0.75.")
+        raise InputError(f"the clear-sky transmissivity must be above 0 and at most 1, got "
+                         f"{transmissivity}; use a value such as 0.75.")
     if not (0.0 < float(time_step_minutes) <= 1440.0):
-        raise InputError(f"[radiation] time_step_minutes must be above 0 and at most 1440, got "
-                         f"{time_step_minutes}; set a value such as 15.")
+        raise InputError(f"the integration time_step_minutes must be above 0 and at most 1440, got "
+                         f"{time_step_minutes}; use a value such as 15.")
     elevation = _as_grid(elevation_m, shape, "elevation_m")
     slope = _as_grid(slope_deg, shape, "slope_deg")
     aspect = _as_grid(aspect_deg, shape, "aspect_deg")
@@ -572,9 +572,9 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
     time_step_minutes : float
         Step of the integration over the day, minutes (1440 / step rounded to
         whole steps per day).
-    progress : callable, optional
-        ``progress(n_done, n_total)`` called after each of about 20 bands of
-        rows (all days of a band are done together).
+    progress : callable(label, done, total), optional
+        Called after each of about 20 bands of rows (all days of a band are done
+        together), label ``"radiation row bands"`` (see :mod:`firnline.progress`).
 
     Returns
     -------
@@ -605,5 +605,5 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
         np.clip(buffer, 0.0, top, out=buffer)
         values[:, j0:j1] = buffer
         if progress is not None:
-            progress(i + 1, len(bands))
+            progress("radiation row bands", i + 1, len(bands))
     return RadiationTable(doy_nodes=nodes, values=values, scale_w_m2=STORAGE_SCALE_W_M2)

@@ -1,6 +1,7 @@
-"""Figures of a scenario sweep (matplotlib, Agg canvas, PNG).
+"""Figures of a scenario sweep and of a calibration (matplotlib, Agg canvas, PNG).
 
-Each function takes the tables of a :class:`firnline.scenarios.Sweep` and returns a
+Each function takes the tables of a :class:`firnline.scenarios.Sweep` (or a
+:class:`firnline.calibrate.CalibrationResult`) and returns a
 :class:`matplotlib.figure.Figure` on an Agg canvas (no pyplot, no global backend
 change, so it is safe inside a notebook); :func:`save_png` writes it. Every figure
 carries a caption saying that it shows model estimates, the period and what the
@@ -12,6 +13,8 @@ markers mean, so it can be read without the tables.
   precipitation change, one line per glacier plus the area-weighted mean of all.
 * :func:`profile_figure`: balance profiles of the record-mean annual balance, one
   panel per glacier, one line per scenario.
+* :func:`fit_figure`: modelled against observed balances of a calibration, with the
+  1:1 line and the observations' sigmas.
 """
 
 from __future__ import annotations
@@ -27,6 +30,8 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
+from .provenance import CAUTION
+
 MAX_PANELS = 12
 """At most this many glaciers get a panel (the largest by area); the caption says so."""
 
@@ -34,8 +39,6 @@ MAX_LINES = 10
 """At most this many glaciers get a line in :func:`balance_figure` (the largest by area)."""
 
 _STYLES = ["-", "--", ":", "-."]
-_ESTIMATE = ("Model estimates (firnline), not measurements; review by qualified practitioners "
-             "is needed before any water, hydropower or hazard decision.")
 
 
 def save_png(fig: Figure, path: str | Path, dpi: int = 150) -> None:
@@ -49,7 +52,7 @@ def _figure(n_panels: int, caption: Sequence[str], panel_w=4.2, panel_h=3.4, nco
     ncols = min(ncols_max, max(1, n_panels))
     nrows = math.ceil(n_panels / ncols)
     width = panel_w * ncols + legend_w
-    lines = [w for line in [*caption, _ESTIMATE] for w in textwrap.wrap(line, int(width * 15))]
+    lines = [w for line in [*caption, CAUTION] for w in textwrap.wrap(line, int(width * 15))]
     cap_h = 0.14 * len(lines) + 0.15
     height = panel_h * nrows + 0.5 + cap_h
     fig = Figure(figsize=(width, height), layout="constrained")
@@ -240,4 +243,42 @@ def profile_figure(profiles: pd.DataFrame, glaciers: pd.DataFrame, years: Sequen
     handles = [Line2D([], [], color=colour[w], lw=2, label=f"warming {w:+g} K") for w in warm]
     handles += [Line2D([], [], color="0.3", ls=style[p], label=f"precipitation {p:+g} %") for p in precips]
     _finish(fig, "Balance profiles per scenario", site, handles)
+    return fig
+
+
+def fit_figure(result) -> Figure:
+    """Modelled against observed balances of a calibration, 1:1 line; error bars are the sigmas.
+
+    Parameters
+    ----------
+    result : firnline.calibrate.CalibrationResult
+    """
+    rec = result.records
+    fig = Figure(figsize=(6.4, 6.8), dpi=120)
+    FigureCanvasAgg(fig)
+    ax = fig.add_axes([0.14, 0.17, 0.8, 0.75])
+    groups = [("point", rec.kind == "point", "o", "tab:blue"),
+              ("glacier-wide", (rec.kind == "glacier") & rec.dh_m.isna(), "s", "tab:green"),
+              ("glacier-wide, geodetic", (rec.kind == "glacier") & rec.dh_m.notna(), "D", "tab:red")]
+    for label, sel, marker, colour in groups:
+        if sel.any():
+            ax.errorbar(rec.observed_mwe[sel], rec.modelled_mwe[sel], xerr=rec.sigma_mwe[sel], fmt=marker,
+                        color=colour, ms=4, lw=0.8, capsize=2, label=f"{label} ({int(sel.sum())})")
+    lo = float(min((rec.observed_mwe - rec.sigma_mwe).min(), rec.modelled_mwe.min()))
+    hi = float(max((rec.observed_mwe + rec.sigma_mwe).max(), rec.modelled_mwe.max()))
+    pad = 0.05 * (hi - lo if hi > lo else 1.0)
+    lims = (lo - pad, hi + pad)
+    ax.plot(lims, lims, color="black", lw=0.8, ls="--", label="1:1")
+    ax.set_xlim(lims)
+    ax.set_ylim(lims)
+    ax.set_aspect("equal")
+    ax.set_xlabel("observed balance over the period (m w.e.)")
+    ax.set_ylabel("modelled balance over the period (m w.e.)")
+    ax.set_title(f"{result.config.site.name}: calibration fit", fontsize=11)
+    ax.legend(loc="upper left", fontsize=8)
+    ax.grid(alpha=0.3)
+    fitted = ", ".join(f"{p} = {v:.3g}" for p, v in result.value.items())
+    caption = (f"Fitted {fitted}. RMSE {result.rmse_mwe:.3f} m w.e., bias {result.bias_mwe:+.3f} m w.e., "
+               f"{result.n_obs} observations. Error bars: observation uncertainty (1 sigma). {CAUTION}")
+    fig.text(0.5, 0.02, caption, ha="center", va="bottom", fontsize=7, wrap=True)
     return fig

@@ -1,4 +1,4 @@
-"""Climate scenarios, ELA sensitivity and balanced-budget ELA0 / AAR0.
+"""Climate scenarios and the ELA sensitivity to warming.
 
 A *scenario* is a pair (uniform warming in K added to the station temperature,
 precipitation change in % scaling the station precipitation by 1 + pct/100). A
@@ -7,51 +7,47 @@ always together with the no-change reference (0 K, 0 %), in **one** kernel call:
 the scenarios are the kernel's extra axis, on one prepared :class:`~firnline.model.Setup`
 (grid, terrain, outlines, forcing and radiation read and derived once).
 
-Rules used here
----------------
-* Per balance year, each glacier's specific balance, ELA, AAR and ELA flag follow
-  the rules of firnline.metrics (the same as ``summary.csv`` of a run).
-* Mean over the record (``scenarios.csv``): the annual balance and the AAR are
-  averaged over every balance year (the AAR is 0 or 1 in a year whose ELA left the
-  glacier, which is its true value then). The ELA is averaged over the years whose
-  flag is ``ok`` only; it is empty when no year is ``ok``. How many years were
-  flagged is in ``scenarios.json`` (``ela_flags``) and the console table and, year
-  by year, in ``scenario_years.csv``. A mean ELA over fewer years than the
-  record is biased towards the years in which the ELA stayed on the glacier.
-* ELA shift: per year, the scenario's ELA minus the reference ELA of the same year
-  (empty unless both are ``ok``); over the record, the mean of those paired
-  differences. When every year is ``ok`` this equals the difference of the means.
-* Sensitivity (``sensitivity.csv``), from the scenarios at 0 % precipitation change:
-  ``dbalance_dt_mwe_per_k`` is the least-squares slope of the record-mean annual
-  balance against warming. ``dela_dt_m_per_k`` is the least-squares slope of the
-  yearly ELA against warming with one intercept per balance year (a pooled
-  within-year fit), over the (year, warming) pairs whose ELA is ``ok``; pairs whose
-  ELA left the glacier are excluded, and so is a year with fewer than two ``ok``
-  warming steps; the ``note`` column says which were left out. With every pair
-  ``ok`` this is exactly the slope of the record-mean ELA against warming.
-* Balanced budget (``balanced_budget.csv``): per glacier, ELA and AAR are regressed
-  linearly on the specific annual balance B over the balance years, and ELA0 and
-  AAR0 are the fitted values at B = 0 (the intercepts), after Dyurgerov, Meier &
-  Bahr (2009), J. Glaciology 55(192). Only years with the flag ``ok`` are used (in
-  the other years the ELA is undefined and the AAR saturated at 0 or 1). Fewer than
-  three usable years give empty values and an ``insufficient years`` note; when B = 0 lies outside the modelled balances, the note says the
-  values are extrapolated.
+The rules of the means, shifts and slopes are :data:`RULES` (written into
+``scenarios.json``); the balanced-budget ELA0 / AAR0 of a run are
+:func:`firnline.metrics.balanced_budget`.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import time
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
 
 from .config import Config
 from .errors import InputError
-from .metrics import ABOVE, BELOW, OK, band_profile
-from .model import Setup, cell_fields, glacier_metrics, simulate, tables, to_grid
+from .metrics import ABOVE, BELOW, OK, band_profile, line_fit
+from .model import Setup, cell_fields, check_config, glacier_metrics, simulate, tables, to_grid
+from .progress import Progress
+
+RULES = (
+    "Per balance year, each glacier's specific balance, ELA, AAR and ELA flag follow the rules of "
+    "firnline.metrics (the same as summary.csv of a run).",
+    "Mean over the record (scenarios.csv): the annual balance and the AAR are averaged over every "
+    "balance year (the AAR is 0 or 1 in a year whose ELA left the glacier, which is its true value "
+    "then). The ELA is averaged over the years whose flag is ok only; it is empty when no year is ok. "
+    "How many years were flagged is in scenarios.json (ela_flags) and the console table and, year by "
+    "year, in scenario_years.csv. A mean ELA over fewer years than the record is biased towards the "
+    "years in which the ELA stayed on the glacier.",
+    "ELA shift: per year, the scenario's ELA minus the reference ELA of the same year (empty unless "
+    "both are ok); over the record, the mean of those paired differences. When every year is ok this "
+    "equals the difference of the means.",
+    "Sensitivity (sensitivity.csv), from the scenarios at 0 % precipitation change: "
+    "dbalance_dt_mwe_per_k is the least-squares slope of the record-mean annual balance against "
+    "warming. dela_dt_m_per_k is the least-squares slope of the yearly ELA against warming with one "
+    "intercept per balance year (a pooled within-year fit), over the (year, warming) pairs whose ELA "
+    "is ok; pairs whose ELA left the glacier are excluded, and so is a year with fewer than two ok "
+    "warming steps; the note column says which were left out. With every pair ok this is exactly the "
+    "slope of the record-mean ELA against warming.",
+)
+"""The rules of a sweep's means, shifts and slopes, one sentence group each (``scenarios.json``)."""
 
 SCENARIO_COLUMNS = ["glacier", "warming_k", "precip_change_pct", "mean_annual_balance_mwe", "ela_m",
                     "aar", "ela_shift_m"]
@@ -59,15 +55,10 @@ YEAR_COLUMNS = ["glacier", "warming_k", "precip_change_pct", "balance_year", "an
                 "ela_m", "aar", "ela_shift_m", "ela_flag", "winter_balance_mwe", "summer_balance_mwe"]
 SENSITIVITY_COLUMNS = ["glacier", "dela_dt_m_per_k", "dbalance_dt_mwe_per_k", "n_warming_steps",
                        "n_ela_years_used", "n_ela_years_excluded", "note"]
-BUDGET_COLUMNS = ["glacier", "ela0_m", "aar0", "r2", "n_years", "aar_r2", "dela_db_m_per_mwe",
-                  "daar_db_per_mwe", "note"]
 PROFILE_COLUMNS = ["glacier", "warming_k", "precip_change_pct", "band_bottom_m", "band_top_m",
                    "area_km2", "mean_annual_balance_mwe"]
 FLAG_COLUMNS = ["glacier", "warming_k", "precip_change_pct", "n_years", "n_ela_ok", "n_above_glacier",
                 "n_below_glacier"]
-
-MIN_BUDGET_YEARS = 3
-"""Fewest balance years with the ELA on the glacier for a balanced-budget regression."""
 
 _DECIMALS = 6  # scenario values are compared after rounding to this many decimals
 
@@ -76,8 +67,8 @@ _DECIMALS = 6  # scenario values are compared after rounding to this many decima
 # the scenario list
 # ----------------------------------------------------------------------------
 
-def scenario_list(warming_k: Sequence[float],
-                  precip_change_pct: Sequence[float] = (0.0,)) -> list[tuple[float, float]]:
+def scenario_list(warming_k: Sequence[float], precip_change_pct: Sequence[float] = (0.0,),
+                  names: tuple[str, str] = ("warming_k", "precip_change_pct")) -> list[tuple[float, float]]:
     """Every (warming, precipitation change) combination, with the (0, 0) reference.
 
     Parameters
@@ -86,6 +77,9 @@ def scenario_list(warming_k: Sequence[float],
         Uniform warmings added to the station temperature, K (at least one).
     precip_change_pct : sequence of float
         Precipitation changes, % (each > -100); an empty sequence means ``[0]``.
+    names : (str, str)
+        How the caller calls the two lists, for the messages (the command line passes
+        its option names).
 
     Returns
     -------
@@ -99,15 +93,15 @@ def scenario_list(warming_k: Sequence[float],
         No warming given, a value that is not a finite number, or a precipitation
         change of -100 % or less.
     """
-    w = [_checked(v, "--warming (warming_k)") for v in warming_k]
-    p = [_checked(v, "--precip-change (precip_change_pct)") for v in precip_change_pct] or [0.0]
+    w_name, p_name = names
+    w = [_checked(v, w_name) for v in warming_k]
+    p = [_checked(v, p_name) for v in precip_change_pct] or [0.0]
     if not w:
-        raise InputError("No warming given: pass at least one with --warming K [K ...] "
-                         "(warming_k), e.g. --warming 1 2 3.")
+        raise InputError(f"No warming given: pass at least one warming in K as {w_name}, e.g. 1 2 3.")
     for v in p:
         if v <= -100.0:
-            raise InputError(f"The precipitation change {v:g} % (--precip-change, precip_change_pct) "
-                             "would remove all precipitation; give values above -100.")
+            raise InputError(f"The precipitation change {v:g} % ({p_name}) would remove all "
+                             "precipitation; give values above -100.")
     combos = {(a, b) for a in w for b in p} | {(0.0, 0.0)}
     return sorted(combos)
 
@@ -143,7 +137,7 @@ class Sweep:
     """Result of :func:`sweep`.
 
     setup : the setup restricted to the glacier cells (:func:`glacier_view`)
-    config : the parameters used
+    config : the config used (the setup's, or one differing only in kernel parameters)
     scenarios : list of (warming_k, precip_change_pct), the kernel's scenario order
     reference : index of (0, 0) in ``scenarios``
     years : balance years (labelled by the year they end in)
@@ -179,7 +173,7 @@ class Sweep:
 
 
 def sweep(setup: Setup, warming_k: Sequence[float], precip_change_pct: Sequence[float] = (0.0,),
-          config: Config | None = None, progress: Callable[[int], None] | None = None) -> Sweep:
+          config: Config | None = None, progress: Progress = None) -> Sweep:
     """Run every scenario in one kernel call and derive the per-glacier results.
 
     Parameters
@@ -192,15 +186,17 @@ def sweep(setup: Setup, warming_k: Sequence[float], precip_change_pct: Sequence[
     precip_change_pct : sequence of float
         Precipitation changes, %; precipitation is scaled by 1 + pct/100.
     config : Config, optional
-        Parameters to use (default: ``setup.config``).
-    progress : callable(days_done), optional
+        Parameters to use (default: ``setup.config``); it may differ from
+        ``setup.config`` only in the kernel parameters
+        (:func:`firnline.model.check_config`).
+    progress : callable(label, done, total), optional
 
     Returns
     -------
     Sweep
         See the module docstring for how the means, shifts and slopes are taken.
     """
-    cfg = config or setup.config
+    cfg = check_config(setup, config)
     scen = scenario_list(warming_k, precip_change_pct)
     setup = glacier_view(setup)
     t0 = time.perf_counter()
@@ -257,11 +253,7 @@ def glacier_view(setup: Setup) -> Setup:
     """
     if setup.glacier_mask.all():
         return setup
-    sub = np.flatnonzero(setup.glacier_mask)
-    rad = setup.radiation.subset(sub) if setup.radiation is not None else None
-    return dataclasses.replace(setup, cells=setup.cells[sub], z_m=setup.z_m[sub],
-                               glacier_mask=setup.glacier_mask[sub], radiation=rad,
-                               glacier_pos=[np.searchsorted(sub, pos) for pos in setup.glacier_pos])
+    return setup.select(np.flatnonzero(setup.glacier_mask))
 
 
 # ----------------------------------------------------------------------------
@@ -323,31 +315,6 @@ def flag_counts(years: pd.DataFrame) -> pd.DataFrame:
     return tmp.groupby(_KEYS, sort=False).sum().reset_index()[FLAG_COLUMNS]
 
 
-def line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
-    """Ordinary least-squares line y = a + b x.
-
-    Parameters
-    ----------
-    x, y : ndarray (n,), n >= 2, x not all equal
-
-    Returns
-    -------
-    (a, b, r2) : intercept (unit of y), slope (unit of y per unit of x) and the
-        coefficient of determination 1 - SS_res / SS_tot (NaN when y is constant).
-    """
-    x = np.asarray(x, dtype="float64")
-    y = np.asarray(y, dtype="float64")
-    dx = x - x.mean()
-    sxx = float(np.sum(dx * dx))
-    if x.size < 2 or sxx == 0.0:
-        raise ValueError("a line fit needs at least two distinct x values")
-    b = float(np.sum(dx * (y - y.mean())) / sxx)
-    a = float(y.mean() - b * x.mean())
-    ss_tot = float(np.sum((y - y.mean()) ** 2))
-    ss_res = float(np.sum((y - a - b * x) ** 2))
-    return a, b, (1.0 - ss_res / ss_tot) if ss_tot > 0 else float("nan")
-
-
 def sensitivity(years: pd.DataFrame) -> pd.DataFrame:
     """dELA/dT and dB/dT per glacier at 0 % precipitation change (``sensitivity.csv``).
 
@@ -385,10 +352,10 @@ def sensitivity(years: pd.DataFrame) -> pd.DataFrame:
             steps_in_year = ok.groupby("balance_year").warming_k.transform("nunique")
             used = ok[steps_in_year >= 2]
             n_used = len(used)
-            if n_used:
+            if n_used:   # one intercept per year: the line through the within-year deviations
                 dx = used.warming_k - used.groupby("balance_year").warming_k.transform("mean")
                 dy = used.ela_m - used.groupby("balance_year").ela_m.transform("mean")
-                dela = float(np.sum(dx * dy) / np.sum(dx * dx))
+                dela = line_fit(dx.to_numpy(), dy.to_numpy())[1]
             else:
                 notes.append("no balance year has two warming steps with the ELA on the glacier, "
                              "so dELA/dT is undefined")
@@ -411,51 +378,3 @@ def _exclusion_notes(g: pd.DataFrame, ok: pd.DataFrame, used: pd.DataFrame) -> l
         out.append(f"left out of dELA/dT: {len(lone)} year(s) with a single warming step whose ELA "
                    "stayed on the glacier")
     return out
-
-
-def balanced_budget(summary: pd.DataFrame) -> pd.DataFrame:
-    """Balanced-budget ELA0 and AAR0 per glacier (``balanced_budget.csv``).
-
-    ELA and AAR of the years with an ``ok`` flag are regressed on the specific annual
-    balance B by ordinary least squares, and evaluated at B = 0 (Dyurgerov, Meier &
-    Bahr, 2009, J. Glaciology 55(192), "A new index of glacier area change").
-
-    Parameters
-    ----------
-    summary : DataFrame
-        One row per glacier and year with at least ``glacier``, ``annual_balance_mwe``
-        (m w.e.), ``ela_m`` (m), ``aar`` and ``ela_flag`` (as ``summary.csv``).
-
-    Returns
-    -------
-    DataFrame with :data:`BUDGET_COLUMNS`: ``ela0_m`` (m), ``aar0`` (1), ``r2`` of the
-    ELA regression, ``n_years`` used, then ``aar_r2``, the slopes
-    ``dela_db_m_per_mwe`` (m per m w.e.) and ``daar_db_per_mwe`` (per m w.e.) and a
-    ``note``. With fewer than :data:`MIN_BUDGET_YEARS` usable years, or no spread of
-    B between them, the values are NaN and the note says why.
-    """
-    rows = []
-    for name, g in summary.groupby("glacier", sort=False):
-        u = g[(g.ela_flag == OK) & np.isfinite(g.ela_m) & np.isfinite(g.aar)
-              & np.isfinite(g.annual_balance_mwe)]
-        b = u.annual_balance_mwe.to_numpy(float)
-        n = len(u)
-        nan = float("nan")
-        if n < MIN_BUDGET_YEARS:
-            rows.append([name, nan, nan, nan, n, nan, nan, nan,
-                         f"insufficient years: {n} balance year(s) with the ELA on the glacier, "
-                         f"{MIN_BUDGET_YEARS} needed"])
-            continue
-        if np.ptp(b) == 0.0:
-            rows.append([name, nan, nan, nan, n, nan, nan, nan,
-                         "insufficient years: the specific balance does not vary between the usable "
-                         "years, so no regression"])
-            continue
-        ela0, dela, r2 = line_fit(b, u.ela_m.to_numpy(float))
-        aar0, daar, aar_r2 = line_fit(b, u.aar.to_numpy(float))
-        note = ""
-        if not b.min() <= 0.0 <= b.max():
-            note = (f"zero balance lies outside the modelled balances ({b.min():.2f} to {b.max():.2f} "
-                    "m w.e.); ELA0 and AAR0 are extrapolated")
-        rows.append([name, ela0, aar0, r2, n, aar_r2, dela, daar, note])
-    return pd.DataFrame(rows, columns=BUDGET_COLUMNS).astype({"n_years": int})

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, config_and_out, progress_factory, say
+from .common import add_common, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -17,10 +17,10 @@ def add_parser(sub) -> None:
 
 def main(args) -> int:
     from ..calibrate import calibrate, fit_table, write_calibration
-    from ..model import CAUTION
+    from ..provenance import CAUTION
 
     cfg, out = config_and_out(args)
-    result = calibrate(cfg, progress=progress_factory(args.quiet))
+    result = calibrate(cfg, progress=progress_bars(args.quiet))
     for note in result.notes:
         say(args, note)
     files = write_calibration(result, out)

@@ -7,6 +7,9 @@ from pathlib import Path
 
 from ..config import load_config
 
+#: How the command line names the scenario lists (for the messages of firnline.scenarios).
+SCENARIO_OPTIONS = ("--warming", "--precip-change")
+
 
 def add_common(p, out=True) -> None:
     p.add_argument("config", metavar="CONFIG", help="the run's TOML config file")
@@ -15,24 +18,27 @@ def add_common(p, out=True) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bars or notes")
 
 
-def progress_factory(quiet: bool):
-    """A factory (label, total) -> callback(done) drawing tqdm bars on a terminal, else None."""
+def progress_bars(quiet: bool):
+    """A progress callback (label, done, total) drawing one tqdm bar per label on a terminal, else None.
+
+    See :mod:`firnline.progress` for the protocol.
+    """
     if quiet or not sys.stderr.isatty():
         return None
     from tqdm import tqdm
 
-    def make(label: str, total: int):
-        bar = tqdm(total=total, desc=label, unit=label.split()[-1] if label else "it",
-                   leave=False, file=sys.stderr, dynamic_ncols=True)
-        state = {"n": 0}
+    bars: dict = {}
 
-        def update(done: int) -> None:
-            bar.update(done - state["n"])
-            state["n"] = done
-            if done >= total:
-                bar.close()
-        return update
-    return make
+    def report(label: str, done: int, total: int) -> None:
+        if label not in bars:
+            bars[label] = tqdm(total=total, desc=label, unit=label.split()[-1] if label else "it",
+                               leave=False, file=sys.stderr, dynamic_ncols=True)
+        bar = bars[label]
+        bar.update(done - bar.n)
+        if done >= total:
+            bar.close()
+            del bars[label]
+    return report
 
 
 def say(args, text: str) -> None:

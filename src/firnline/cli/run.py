@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, config_and_out, progress_factory, say
+from .common import SCENARIO_OPTIONS, add_common, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -18,15 +18,16 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    from ..model import CAUTION, run
+    from ..model import run
     from ..products import summary_table
-
+    from ..provenance import CAUTION
     from ..scenarios import scenario_list
 
-    scenario_list([args.warming], [args.precip_change])   # the same checks as a sweep: finite, > -100 %
+    # the same checks as a sweep: finite, > -100 %
+    scenario_list([args.warming], [args.precip_change], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
     result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
-                 progress=progress_factory(args.quiet))
+                 progress=progress_bars(args.quiet))
     for note in result.setup.notes:
         say(args, note)
     files = result.write(out)

@@ -12,7 +12,7 @@ no-change reference) in one kernel pass and writes, all or nothing:
 from __future__ import annotations
 
 from ..errors import InputError
-from .common import add_common, config_and_out, progress_factory, say
+from .common import SCENARIO_OPTIONS, add_common, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -33,19 +33,20 @@ def main(args) -> int:
     if not args.warming:
         raise InputError("firnline scenarios needs --warming K [K ...]: give one or more warmings in K, "
                          "e.g. --warming 1 2 3.")
-    from ..model import CAUTION, prepare
-    from ..products import sweep_table, write_sweep
+    from ..model import prepare
+    from ..provenance import CAUTION
+    from ..scenario_products import sweep_table, write_sweep
     from ..scenarios import scenario_list, sweep
 
-    scen = scenario_list(args.warming, args.precip_change or [])   # checks the values before any work
+    # checks the values before any work
+    scen = scenario_list(args.warming, args.precip_change or [], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
-    factory = progress_factory(args.quiet)
-    setup = prepare(cfg, factory)
+    progress = progress_bars(args.quiet)
+    setup = prepare(cfg, progress)
     for note in setup.notes:
         say(args, note)
     say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
-    cb = factory("days", setup.forcing.n_days) if factory else None
-    result = sweep(setup, args.warming, args.precip_change or [], progress=cb)
+    result = sweep(setup, args.warming, args.precip_change or [], progress=progress)
     files = write_sweep(result, out)
     print(sweep_table(result))
     say(args, f"wrote {len(files)} files to {out}")

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, config_and_out, progress_factory, say
+from .common import add_common, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -17,19 +17,12 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    from ..grid import read_dem
-    from ..model import radiation_climatology
-    from ..products import write_terrain
-    from ..terrain import slope_aspect
+    from ..model import terrain
 
     cfg, out = config_and_out(args)
-    grid = read_dem(cfg.dem.path)
-    for note in grid.notes:
+    result = terrain(cfg, progress_bars(args.quiet))
+    for note in result.notes:
         say(args, note)
-    slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
-    table, horizons, note = radiation_climatology(grid, slope, aspect, cfg, progress_factory(args.quiet),
-                                                  want_horizons=cfg.radiation.write_horizons)
-    say(args, note)
-    files = write_terrain(cfg, grid, slope, aspect, table, horizons if cfg.radiation.write_horizons else None, out)
+    files = result.write(out)
     say(args, f"wrote {', '.join(f.name for f in files)} to {out}")
     return 0

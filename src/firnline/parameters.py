@@ -1,0 +1,192 @@
+"""The registry of model parameters: each one declared once, here.
+
+A *model parameter* is a number (or a small fixed group of numbers) of ``[downscaling]``
+or ``[melt]`` that the kernel uses. Each :class:`Parameter` says where it lives in the
+config, its unit, the range a config may give, its default, its default calibration
+bounds (``None``: it cannot be calibrated, and ``not_calibratable`` says why), which
+melt methods use it, its published source (or "common practice"), and the name(s)
+the kernel knows it by.
+
+Everything else is derived from :data:`PARAMETERS`:
+
+* the config schema rows of these keys (:data:`firnline.config.SCHEMA`);
+* the calibration defaults (:func:`default_bounds`, :func:`calibratable`);
+* the kernel's parameter values by name (:func:`kernel_values`);
+* the commented defaults of the demo config (:mod:`firnline.demo`, which writes
+  ``configs/demo.toml``).
+
+A new parameter is one entry in :data:`PARAMETERS` (and its use in the kernel).
+
+This module knows nothing of files, of the config loader or of the kernel's code.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+#: The melt methods, in the order the config lists them; the first is the default.
+METHODS = ("degree-day", "radiation")
+ALL_METHODS = METHODS
+
+#: Lapse rates above this (K per m) are beyond any plausible mean inversion.
+MAX_INVERSION_K_PER_M = 0.01
+#: Steeper than dry-adiabatic (-0.0098 K per m) plus a margin.
+MIN_LAPSE_K_PER_M = -0.0125
+
+# Hock (1999) radiation-index factors, converted to daily units (x 24 h), values from
+# memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 and a_ice 0.0008 mm m2 W-1 h-1 K-1 (for
+# Storglaciaren); see DEVELOPERS.md.
+HOCK_1999 = ("Hock (1999), J. Glaciology 45(149), values from memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 "
+             "and a_ice 0.0008 mm m2 W-1 h-1 K-1, here in daily units (x 24 h: 0.0144, 0.0192)")
+HOCK_2003 = ("Hock (2003), J. Hydrology 282: published ranges about 2.5-11.6 (snow) and "
+             "6.6-20 (ice) mm w.e. d-1 K-1 (from memory)")
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One model parameter.
+
+    Attributes
+    ----------
+    section, key : str
+        Where it lives in the config (``[section] key``).
+    unit : str
+    low, high : float
+        The range a config may give (each value for ``monthly`` and ``pair``).
+    default : float or tuple
+    bounds : (float, float) or None
+        Default calibration bounds (inside ``low .. high``); None: not calibratable.
+    methods : tuple of str
+        Melt methods that use it.
+    source : str
+        Published source of the default, or "common practice".
+    description : str
+        One line for the demo config.
+    kernel : tuple of str
+        Name(s) the kernel knows the value(s) by: one name, or two for a ``pair``.
+    kind : str
+        ``"number"``; ``"monthly"`` (one value or twelve, January first; the kernel gets
+        twelve); ``"pair"`` (two numbers, low <= high; the kernel gets two names).
+    low_open : bool
+        ``low`` itself is not allowed.
+    not_calibratable : str
+        Why it cannot be calibrated (when ``bounds`` is None).
+    """
+
+    section: str
+    key: str
+    unit: str
+    low: float
+    high: float
+    default: Any
+    bounds: tuple[float, float] | None
+    methods: tuple[str, ...]
+    source: str
+    description: str
+    kernel: tuple[str, ...]
+    kind: str = "number"
+    low_open: bool = False
+    not_calibratable: str = ""
+
+
+PARAMETERS: tuple[Parameter, ...] = (
+    Parameter("downscaling", "lapse_rate_k_per_m", "K m-1", MIN_LAPSE_K_PER_M, MAX_INVERSION_K_PER_M,
+              (-0.0065,), (-0.0098, 0.0), ALL_METHODS,
+              "ICAO Standard Atmosphere / ISO 2533 (-0.0065 K m-1); bounds from dry-adiabatic "
+              "(-0.0098 K m-1) to isothermal",
+              "one value or twelve monthly values (January first)",
+              ("lapse_rate_k_per_m",), kind="monthly"),
+    Parameter("downscaling", "precip_gradient_per_m", "m-1", -0.002, 0.01, 0.0003, (-0.001, 0.003),
+              ALL_METHODS, "common practice",
+              "relative increase of precipitation per m above the station",
+              ("precip_gradient_per_m",)),
+    Parameter("downscaling", "precip_factor", "1", 0.0, 10.0, 1.0, (0.3, 4.0), ALL_METHODS,
+              "common practice", "gauge undercatch / correction", ("precip_factor",)),
+    Parameter("downscaling", "snow_rain_range_c", "deg C", -10.0, 10.0, (0.5, 2.5), None, ALL_METHODS,
+              "common practice", "all snow at or below, all rain at or above, linear between",
+              ("snow_c", "rain_c"), kind="pair",
+              not_calibratable="it is a pair of thresholds [snow, rain], not a single number"),
+    Parameter("melt", "threshold_c", "deg C", -10.0, 10.0, 0.0, (-3.0, 3.0), ALL_METHODS,
+              "common practice", "air temperature above which melt starts", ("threshold_c",)),
+    Parameter("melt", "ddf_snow_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 3.0, (1.0, 15.0),
+              ("degree-day",), HOCK_2003, "degree-day factor of snow", ("ddf_snow",)),
+    Parameter("melt", "ddf_ice_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 6.0, (2.0, 25.0),
+              ("degree-day",), HOCK_2003, "degree-day factor of ice", ("ddf_ice",)),
+    Parameter("melt", "melt_factor_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 1.8, (0.0, 15.0),
+              ("radiation",), HOCK_1999, "melt factor", ("melt_factor",)),
+    Parameter("melt", "radiation_factor_snow", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.0144,
+              (0.0, 0.1), ("radiation",), HOCK_1999 + "; bounds enclose it five-fold",
+              "radiation factor of snow", ("radiation_factor_snow",)),
+    Parameter("melt", "radiation_factor_ice", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.0192,
+              (0.0, 0.1), ("radiation",), HOCK_1999 + "; bounds enclose it five-fold",
+              "radiation factor of ice", ("radiation_factor_ice",)),
+    Parameter("melt", "transmissivity", "1", 0.0, 1.0, 0.75, None, ("radiation",),
+              "common practice", "clear-sky transmissivity at sea-level pressure",
+              (), low_open=True,
+              not_calibratable="it shapes the radiation table built once from the DEM; fit "
+                               "radiation_factor_snow and radiation_factor_ice instead"),
+)
+
+BY_KEY: dict[str, Parameter] = {p.key: p for p in PARAMETERS}
+
+
+def get(key: str) -> Parameter | None:
+    """The parameter of a config key, or None when the key is not a model parameter."""
+    return BY_KEY.get(key)
+
+
+def in_section(section: str) -> list[Parameter]:
+    """The parameters of one config section, in declaration order."""
+    return [p for p in PARAMETERS if p.section == section]
+
+
+def numeric() -> list[str]:
+    """Keys whose value is one number (a ``monthly`` parameter counts when it holds one)."""
+    return [p.key for p in PARAMETERS if p.kind != "pair"]
+
+
+def calibratable(method: str) -> list[str]:
+    """Keys that can be fitted under a melt method (sorted)."""
+    return sorted(p.key for p in PARAMETERS if p.bounds is not None and method in p.methods)
+
+
+def default_bounds() -> dict[str, tuple[float, float]]:
+    """Default calibration bounds of every calibratable key."""
+    return {p.key: p.bounds for p in PARAMETERS if p.bounds is not None}
+
+
+def monthly(values) -> tuple[float, ...]:
+    """Twelve monthly values (January first) from one value or twelve."""
+    values = tuple(float(v) for v in values)
+    return values * 12 if len(values) == 1 else values
+
+
+def kernel_values(cfg) -> dict[str, Any]:
+    """The kernel's parameter values by the kernel's names, from a validated config.
+
+    ``monthly`` parameters give twelve values (January first); a ``pair`` gives its two
+    names; parameters without a kernel name (``transmissivity`` shapes the radiation
+    table, not the kernel) give none. The melt method is given as ``use_radiation``.
+
+    Parameters
+    ----------
+    cfg : firnline.config.Config
+
+    Returns
+    -------
+    dict
+        For example ``{"lapse_rate_k_per_m": (-0.0065,) * 12, "snow_c": 0.5, ...,
+        "ddf_snow": 3.0, ..., "use_radiation": False}``.
+    """
+    out: dict[str, Any] = {}
+    for p in PARAMETERS:
+        value = getattr(getattr(cfg, p.section), p.key)
+        if p.kind == "monthly":
+            out[p.kernel[0]] = monthly(value)
+        elif p.kind == "pair":
+            out.update(zip(p.kernel, (float(v) for v in value)))
+        elif p.kernel:
+            out[p.kernel[0]] = float(value)
+    out["use_radiation"] = cfg.melt.method == "radiation"
+    return out

@@ -1,0 +1,93 @@
+"""The files of a scenario sweep: which products, named how, with which provenance.
+
+``write_sweep`` is the single place that knows a sweep's output layout (see the
+contract in DESIGN.md); the generic writers live in :mod:`firnline.outputs`.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from . import provenance
+from .model import parameters_used
+from .outputs import staged, write_csv, write_geotiff, write_json
+from .scenarios import RULES, SCENARIO_COLUMNS, Sweep, scenario_label
+
+
+def map_name(warming_k: float, precip_change_pct: float) -> str:
+    """File name of a scenario's mean-balance map, e.g. ``mean_annual_balance_w+1.0_p+0.tif``."""
+    return f"mean_annual_balance_{scenario_label(warming_k, precip_change_pct)}.tif"
+
+
+def write_sweep(result: Sweep, out_dir: Path) -> list[Path]:
+    """Write every product of a sweep into ``out_dir``, all or nothing."""
+    from .report import balance_figure, ela_figure, profile_figure, save_png  # matplotlib: only here
+    setup, cfg = result.setup, result.config
+    grid = setup.grid
+    years = result.years
+    site = cfg.site.name
+    with staged(Path(out_dir)) as st:
+        write_csv(st.path("scenarios.csv"), result.table[SCENARIO_COLUMNS])
+        write_csv(st.path("scenario_years.csv"), result.year_table)
+        write_csv(st.path("sensitivity.csv"), result.sensitivity)
+        write_csv(st.path("scenario_profiles.csv"), result.profiles)
+        for i, (w, p) in enumerate(result.scenarios):
+            tags = provenance.run_tags(cfg, setup.checksums, w, p)
+            write_geotiff(st.path(map_name(w, p)), result.mean_balance_map(i), grid.transform, grid.crs,
+                          [f"mean annual surface mass balance {years[0]}-{years[-1]}, warming {w:+g} K, "
+                           f"precipitation change {p:+g} %"], "m w.e.", tags)
+        figures = [("ela_vs_warming.png", ela_figure(result.table, result.flags, result.glaciers, years, site)),
+                   ("balance_vs_warming.png", balance_figure(result.table, result.glaciers, years, site)),
+                   ("balance_profiles.png", profile_figure(result.profiles, result.glaciers, years, site))]
+        for name, fig in figures:
+            save_png(fig, st.path(name))
+        path = st.path("scenarios.json")
+        write_json(path, sweep_json(result, list(st.names)))
+    return [Path(out_dir) / n for n in st.names]
+
+
+def sweep_json(result: Sweep, files: list[str]) -> dict:
+    """Provenance and rules of a sweep (``scenarios.json``)."""
+    setup, cfg = result.setup, result.config
+    return {
+        **provenance.header(cfg),
+        "parameters": parameters_used(cfg),
+        "input_sha256": setup.checksums,
+        "scenarios": [{"warming_k": w, "precip_change_pct": p, "map": map_name(w, p),
+                       "reference": i == result.reference} for i, (w, p) in enumerate(result.scenarios)],
+        "balance_years": result.years,
+        "rules": list(RULES),
+        "ela_flags": result.flags.to_dict(orient="records"),
+        "glaciers": result.glaciers.to_dict(orient="records"),
+        "notes": setup.notes,
+        "timings_s": result.timings,
+        "files": files,
+    }
+
+
+def sweep_table(result: Sweep) -> str:
+    """The console's closing table: one line per glacier and scenario."""
+    t = result.table.merge(result.flags, on=["glacier", "warming_k", "precip_change_pct"])
+    lines = [f"{'glacier':<20} {'warming':>7} {'precip':>6} {'balance':>9} {'ELA':>6} {'shift':>6} "
+             f"{'AAR':>5}  ELA off glacier",
+             f"{'':<20} {'K':>7} {'%':>6} {'m w.e./a':>9} {'m':>6} {'m':>6} {'':>5}"]
+
+    def num(v, fmt, width):
+        return f"{format(v, fmt):>{width}}" if np.isfinite(v) else f"{'-':>{width}}"
+    for r in t.itertuples():
+        off = r.n_years - r.n_ela_ok
+        lines.append(f"{str(r.glacier)[:20]:<20} {r.warming_k:>+7g} {r.precip_change_pct:>+6g} "
+                     f"{r.mean_annual_balance_mwe:9.2f} {num(r.ela_m, '.0f', 6)} "
+                     f"{num(r.ela_shift_m, '+.0f', 6)} {r.aar:5.2f}  "
+                     f"{f'{off} of {r.n_years} years' if off else ''}")
+    s = result.sensitivity
+    lines.append("")
+    lines.append(f"{'glacier':<20} {'dELA/dT':>9} {'dB/dT':>11}")
+    lines.append(f"{'':<20} {'m per K':>9} {'m w.e./K':>11}")
+    for r in s.itertuples():
+        lines.append(f"{str(r.glacier)[:20]:<20} {num(r.dela_dt_m_per_k, '.0f', 9)} "
+                     f"{num(r.dbalance_dt_mwe_per_k, '.3f', 11)}  {r.note}")
+    lines.append("ELA: mean over the years with the ELA on the glacier; see scenarios.json for the rules.")
+    return "\n".join(lines)

@@ -23,6 +23,7 @@ from conftest import base_sections, ramp, write_config, write_dem
 from firnline.calibrate import DEFAULT_BOUNDS, build_operator, calibrate, check_value, fit_spec, modelled_values
 from firnline.cli import main
 from firnline.errors import InputError
+from firnline.outdir import MANIFEST
 from firnline.model import prepare
 from firnline.observations import geodetic_balance, load_observations
 
@@ -274,8 +275,9 @@ def test_cli_writes_every_file_and_calibrated_toml_runs(case, tmp_path, capsys):
     assert main(["calibrate", str(cfg), "--out", str(out), "--quiet"]) == 0
     table = capsys.readouterr().out
     assert "ddf_snow_mm_per_day_k" in table and "RMSE" in table
-    assert sorted(p.name for p in out.iterdir()) == ["calibrated.toml", "calibration.json",
-                                                     "calibration_fit.png", "calibration_residuals.csv"]
+    assert sorted(p.name for p in out.iterdir() if p.name != MANIFEST) == [
+        "calibrated.toml", "calibration.json", "calibration_fit.png", "calibration_residuals.csv"]
+    assert (out / MANIFEST).is_file()                 # the folder's record of what was written
     info = json.loads((out / "calibration.json").read_text())
     for key in ("parameters", "rmse_mwe", "bias_mwe", "n_obs", "n_evaluations", "observations", "warnings"):
         assert key in info

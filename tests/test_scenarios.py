@@ -21,6 +21,7 @@ from conftest import base_sections, ramp, write_config, write_dem, write_outline
 from firnline.cli import main
 from firnline.metrics import BUDGET_COLUMNS, balanced_budget
 from firnline.model import prepare
+from firnline.outdir import MANIFEST
 from firnline.scenarios import SCENARIO_COLUMNS, YEAR_COLUMNS, scenario_label, scenario_list, sensitivity, sweep
 
 REPO = Path(__file__).resolve().parents[1]
@@ -285,7 +286,8 @@ def test_scenarios_command_writes_every_file_with_the_contract_columns(tmp_path,
     assert main(["scenarios", str(cfg), "--warming", "1", "2", "--precip-change", "-10", "0", "10",
                  "--out", str(out), "--quiet"]) == 0
     printed = capsys.readouterr().out
-    names = {p.name for p in out.iterdir()}
+    names = {p.name for p in out.iterdir() if p.name != MANIFEST}
+    assert (out / MANIFEST).is_file()                 # the folder's record of what was written
     scen = [(0.0, 0.0), (1.0, -10.0), (1.0, 0.0), (1.0, 10.0), (2.0, -10.0), (2.0, 0.0), (2.0, 10.0)]
     maps = {f"mean_annual_balance_{scenario_label(w, p)}.tif" for w, p in scen}
     assert "mean_annual_balance_w+1.0_p-10.tif" in maps

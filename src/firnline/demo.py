@@ -51,7 +51,8 @@ from shapely.geometry import Polygon
 from shapely.geometry.polygon import orient
 
 from .errors import InputError
-from .outputs import staged, write_csv, write_geotiff
+from .outdir import staged_beside
+from .outputs import write_csv, write_geotiff
 
 DEM_CRS = "EPSG:32632"
 """WGS 84 / UTM zone 32N (EPSG:32632), the CRS of the demo DEM."""
@@ -630,7 +631,7 @@ def _write_outlines(path: Path, outlines):
     )
 
 
-def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
+def write_demo_inputs(folder, seed: int = DEFAULT_SEED, config_text: str | None = None) -> dict[str, Path]:
     """Write the Seldra demo inputs into a folder.
 
     Files: ``dem.tif`` (GeoTIFF, float32, nodata -9999, tiled, DEFLATE,
@@ -638,8 +639,10 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
     precipitation_mm``, 2016-10-01 to 2024-09-30), ``glaciers.geojson``
     (RFC 7946 longitude/latitude polygons with a ``name`` property), and the
     invented observations ``stakes.csv`` and ``glacier_balances.csv`` (see
-    :func:`write_demo_observations`). The files are staged with
-    :func:`firnline.outputs.staged` and appear only when all are complete.
+    :func:`write_demo_observations`), and ``demo.toml`` when ``config_text`` is given.
+    The files are staged with :func:`firnline.outdir.staged_beside` and appear only
+    when all are complete; the folder's other files are left alone, and a file of one
+    of these names that is not byte-identical to firnline's demo file refuses the write.
 
     Parameters
     ----------
@@ -660,7 +663,7 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
     outlines = make_outlines(elevation, transform)
     station = make_station_record(seed)
     names = {"dem": "dem.tif", "station": "station.csv", "glaciers": "glaciers.geojson"}
-    with staged(folder) as staging:
+    with staged_beside(folder, "demo") as staging:
         write_geotiff(
             staging.path(names["dem"]), elevation, transform, DEM_CRS,
             descriptions=["surface elevation"], units="m",
@@ -674,6 +677,9 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED) -> dict[str, Path]:
         write_csv(staging.path(names["station"]), station, float_format="%.1f")
         _write_outlines(staging.path(names["glaciers"]), outlines)
         names.update(write_demo_observations(staging, seed))
+        if config_text is not None:
+            staging.path("demo.toml").write_text(config_text, encoding="utf-8")
+            names["config"] = "demo.toml"
     return {key: folder / name for key, name in names.items()}
 
 
@@ -767,13 +773,7 @@ def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> 
 
 def write_demo(folder) -> Path:
     """Write the demo inputs and ``demo.toml`` into ``folder``; return the config's path."""
-    from .outputs import staged as _staged
-
-    folder = Path(folder)
-    write_demo_inputs(folder)
-    with _staged(folder) as st:
-        st.path("demo.toml").write_text(demo_config_text(), encoding="utf-8")
-    return folder / "demo.toml"
+    return write_demo_inputs(Path(folder), config_text=demo_config_text())["config"]
 
 
 def write_repo_config(path) -> None:
@@ -815,7 +815,7 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
 
     Parameters
     ----------
-    staging : firnline.outputs.Staging
+    staging : firnline.outdir.FileStaging or Staging
         Where the two files are written (they appear when the staging commits).
     seed : int
         Seed of the stake sites, visit dates and noise.
@@ -828,7 +828,6 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
         ``{"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv"}``.
     """
     import datetime as dt
-    import sys
 
     from .calibrate import build_operator, modelled_values
     from .config import parse_config
@@ -841,10 +840,7 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
         parse_table,
     )
 
-    if sys.version_info >= (3, 11):
-        import tomllib
-    else:  # pragma: no cover
-        import tomli as tomllib
+    import tomllib
 
     folder = Path(staging.dir if inputs is None else inputs)
     config = parse_config(tomllib.loads(demo_config_text()), folder).with_values(**DEMO_TRUE_FACTORS)

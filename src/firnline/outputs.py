@@ -1,9 +1,9 @@
-"""Writers: GeoTIFF, NetCDF-CF, CSV and JSON, all-or-nothing.
+"""Writers: GeoTIFF, CSV, JSON and NetCDF-CF.
 
-Every command writes its files into a hidden staging folder inside the output
-folder; only when all of them are complete are they renamed into place (an
-``os.replace`` in the same file system each). A failure on the way removes the
-staging folder, so a failed run leaves no partial output behind.
+Every command writes its files through :func:`staged` (see :mod:`firnline.outdir`):
+the whole new set goes into a staging folder beside the output folder and is
+swapped in, all or nothing, when it is complete; a failure or an interruption on
+the way leaves the earlier set as it was.
 
 GeoTIFFs follow GDAL's conventions: float32, tiled 256 x 256, DEFLATE with the
 floating-point predictor, nodata -9999, a band description and unit, and the
@@ -12,62 +12,18 @@ run's provenance in the dataset tags.
 
 from __future__ import annotations
 
-import contextlib
 import json
 import math
-import os
-import shutil
-import tempfile
 from pathlib import Path
-from typing import Iterator, Sequence
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
 import rasterio
 
+from .outdir import Staging, staged  # noqa: F401  (the writers' entry point)
+
 NODATA = -9999.0
-
-
-class Staging:
-    """A staging folder; files written with :meth:`path` appear in ``final_dir`` on commit."""
-
-    def __init__(self, final_dir: Path):
-        self.final_dir = Path(final_dir)
-        self.final_dir.mkdir(parents=True, exist_ok=True)
-        self.dir = Path(tempfile.mkdtemp(prefix=".firnline-staging-", dir=self.final_dir))
-        self.names: list[str] = []
-
-    def path(self, name: str) -> Path:
-        """Where to write ``name`` now (inside the staging folder)."""
-        if name not in self.names:
-            self.names.append(name)
-        return self.dir / name
-
-    def commit(self) -> list[Path]:
-        done = []
-        for name in self.names:
-            src = self.dir / name
-            if src.exists():
-                dst = self.final_dir / name
-                os.replace(src, dst)
-                done.append(dst)
-        shutil.rmtree(self.dir, ignore_errors=True)
-        return done
-
-    def discard(self) -> None:
-        shutil.rmtree(self.dir, ignore_errors=True)
-
-
-@contextlib.contextmanager
-def staged(final_dir: Path) -> Iterator[Staging]:
-    """Context manager: stage files, move them into ``final_dir`` only on success."""
-    st = Staging(final_dir)
-    try:
-        yield st
-    except BaseException:
-        st.discard()
-        raise
-    st.commit()
 
 
 def write_geotiff(path: Path, bands: np.ndarray | Sequence[np.ndarray], transform, crs,

@@ -57,7 +57,12 @@ def calibrated_toml(result: CalibrationResult, out_dir: Path) -> str:
                 if result.tied else "") + ".",
              f"RMSE {result.rmse_mwe:.3f} m w.e. over {result.n_obs} observations (calibration.json).",
              "Paths are absolute. " + CAUTION]
-    text = toml_text(calibrated_config(result), "\n".join(lines))
+    data = calibrated_config(result)
+    if Path(data["output"]["dir"]).resolve() == Path(out_dir).resolve():
+        # its runs must not go into the folder that holds it (an input is never overwritten)
+        data["output"]["dir"] = str(Path(out_dir).resolve().with_name(Path(out_dir).name + "_fitted_run"))
+        lines.append("[output] dir: beside the calibration folder, so a run never writes over this file.")
+    text = toml_text(data, "\n".join(lines))
     parse_config(tomllib.loads(text), Path(out_dir).resolve())  # must run as it is
     return text
 

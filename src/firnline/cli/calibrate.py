@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, config_and_out, progress_bars, say
+from .common import add_common, claim_output, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -20,10 +20,11 @@ def main(args) -> int:
     from ..provenance import CAUTION
 
     cfg, out = config_and_out(args)
-    result = calibrate(cfg, progress=progress_bars(args.quiet))
-    for note in result.notes:
-        say(args, note)
-    files = write_calibration(result, out)
+    with claim_output(args, cfg, out, "calibrate"):
+        result = calibrate(cfg, progress=progress_bars(args.quiet))
+        for note in result.notes:
+            say(args, note)
+        files = write_calibration(result, out)
     print(fit_table(result))
     say(args, f"wrote {len(files)} files to {out}; run the fitted model with: firnline run "
               f"{out / 'calibrated.toml'}")

@@ -14,7 +14,11 @@ SCENARIO_OPTIONS = ("--warming", "--precip-change")
 def add_common(p, out=True) -> None:
     p.add_argument("config", metavar="CONFIG", help="the run's TOML config file")
     if out:
-        p.add_argument("--out", metavar="DIR", help="output folder (default: [output] dir of the config)")
+        p.add_argument("--out", metavar="DIR", help="output folder (default: [output] dir of the config); "
+                       "it must be new, empty or hold only earlier firnline outputs, which are replaced")
+        p.add_argument("--force", action="store_true",
+                       help="write into an output folder that also holds other files (they are kept; "
+                            "never overwrites an input of the run)")
     p.add_argument("--quiet", action="store_true", help="no progress bars or notes")
 
 
@@ -51,3 +55,26 @@ def config_and_out(args):
     cfg = load_config(args.config)
     out = Path(args.out) if getattr(args, "out", None) else cfg.output.dir
     return cfg, out
+
+
+def input_paths(cfg) -> list[Path]:
+    """Every input file a config names (the config itself included), for the output-folder checks."""
+    paths = [cfg.source] if cfg.source else []
+    for section in ("dem", "glaciers", "climate", "observations", "runoff"):
+        sec = getattr(cfg, section, None)
+        if sec is None:
+            continue
+        fields = getattr(sec, "__dataclass_fields__", {})
+        for name in fields:
+            value = getattr(sec, name, None)
+            if isinstance(value, Path) and name not in ("dir", "cache_dir"):
+                paths.append(value)
+    return paths
+
+
+def claim_output(args, cfg, out: Path, command: str):
+    """Check and lock the output folder before any computation (a context manager)."""
+    from ..outdir import claim
+
+    return claim(out, command, inputs=input_paths(cfg), force=getattr(args, "force", False),
+                 cache_dir=cfg.radiation.cache_dir)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import SCENARIO_OPTIONS, add_common, config_and_out, progress_bars, say
+from .common import SCENARIO_OPTIONS, add_common, claim_output, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -26,11 +26,12 @@ def main(args) -> int:
     # the same checks as a sweep: finite, > -100 %
     scenario_list([args.warming], [args.precip_change], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
-    result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
-                 progress=progress_bars(args.quiet))
-    for note in result.setup.notes:
-        say(args, note)
-    files = result.write(out)
+    with claim_output(args, cfg, out, "run"):
+        result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
+                     progress=progress_bars(args.quiet))
+        for note in result.setup.notes:
+            say(args, note)
+        files = result.write(out)
     print(summary_table(result.summary))
     say(args, f"wrote {len(files)} files to {out}")
     say(args, CAUTION)

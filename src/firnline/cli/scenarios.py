@@ -12,7 +12,7 @@ no-change reference) in one kernel pass and writes, all or nothing:
 from __future__ import annotations
 
 from ..errors import InputError
-from .common import SCENARIO_OPTIONS, add_common, config_and_out, progress_bars, say
+from .common import SCENARIO_OPTIONS, add_common, claim_output, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -41,13 +41,14 @@ def main(args) -> int:
     # checks the values before any work
     scen = scenario_list(args.warming, args.precip_change or [], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
-    progress = progress_bars(args.quiet)
-    setup = prepare(cfg, progress)
-    for note in setup.notes:
-        say(args, note)
-    say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
-    result = sweep(setup, args.warming, args.precip_change or [], progress=progress)
-    files = write_sweep(result, out)
+    with claim_output(args, cfg, out, "scenarios"):
+        progress = progress_bars(args.quiet)
+        setup = prepare(cfg, progress)
+        for note in setup.notes:
+            say(args, note)
+        say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
+        result = sweep(setup, args.warming, args.precip_change or [], progress=progress)
+        files = write_sweep(result, out)
     print(sweep_table(result))
     say(args, f"wrote {len(files)} files to {out}")
     say(args, CAUTION)

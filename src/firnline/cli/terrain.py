@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .common import add_common, config_and_out, progress_bars, say
+from .common import add_common, claim_output, config_and_out, progress_bars, say
 
 
 def add_parser(sub) -> None:
@@ -20,9 +20,10 @@ def main(args) -> int:
     from ..model import terrain
 
     cfg, out = config_and_out(args)
-    result = terrain(cfg, progress_bars(args.quiet))
-    for note in result.notes:
-        say(args, note)
-    files = result.write(out)
+    with claim_output(args, cfg, out, "terrain"):
+        result = terrain(cfg, progress_bars(args.quiet))
+        for note in result.notes:
+            say(args, note)
+        files = result.write(out)
     say(args, f"wrote {', '.join(f.name for f in files)} to {out}")
     return 0

@@ -18,7 +18,7 @@ missing = [n for n in need if not (out / n).is_file() or (out / n).stat().st_siz
 if missing:
     sys.exit(f"{out}: missing or empty: {', '.join(missing)}")
 listed = set(json.loads((out / ".firnline-manifest.json").read_text())["files"])
-unlisted = sorted(n for n in need[:-1] if n not in listed)
+unlisted = sorted(n for n in need if n not in listed and n != ".firnline-manifest.json")
 if unlisted:
     sys.exit(f"{out}: not in the manifest: {', '.join(unlisted)}")
 left = sorted(p.name for p in out.parent.iterdir() if ".firnline-" in p.name and p.name.startswith(f".{out.name}."))

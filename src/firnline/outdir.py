@@ -170,15 +170,35 @@ def _exchange(a: Path, b: Path) -> bool:
 
 @contextlib.contextmanager
 def signals_held() -> Iterator[None]:
-    """Hold SIGINT, SIGTERM and SIGHUP back inside the block; they are acted on after it."""
-    if not hasattr(signal, "pthread_sigmask"):
-        yield
+    """Hold SIGINT, SIGTERM and SIGHUP back inside the block; they are acted on after it.
+
+    The Python-level handlers are replaced by ones that only note the signal (a signal
+    may be delivered to any thread, e.g. a numba worker, so a thread's signal mask alone
+    cannot hold it back); on leaving the block the first noted signal is handed to the
+    handler that was there before (raising KeyboardInterrupt, for example).
+    """
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield                                   # Python runs signal handlers in the main thread only
         return
-    old = signal.pthread_sigmask(signal.SIG_BLOCK, SIGNALS)
+    noted: list[int] = []
+    previous = {}
+    for s in SIGNALS:
+        handler = signal.getsignal(s)
+        if handler is not signal.SIG_IGN and handler is not None:
+            previous[s] = signal.signal(s, lambda signum, frame: noted.append(signum))
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+        for s, handler in previous.items():
+            signal.signal(s, handler)
+        if noted:
+            handler = previous.get(noted[0])
+            if callable(handler):
+                handler(noted[0], None)
+            elif handler == signal.SIG_DFL:
+                os.kill(os.getpid(), noted[0])
 
 
 # ----------------------------------------------------------------------------
@@ -504,12 +524,12 @@ class OutputFolder:
         try:
             self._clear_leftovers()
             self.check()
+            _ACTIVE[str(self.path)] = self
+            STATE.update(folder=self.path, had_old=self.path.exists(), committed=False)
+            pause_point("locked")
         except BaseException:
             self.release()
             raise
-        _ACTIVE[str(self.path)] = self
-        STATE.update(folder=self.path, had_old=self.path.exists(), committed=False)
-        pause_point("locked")
         return self
 
     def _clear_leftovers(self) -> None:
@@ -591,23 +611,23 @@ class Staging:
         os.replace(tmp, self.dir / MANIFEST)
         pause_point("staged")
         old_dir = out.parent / f".{out.name}{WORK_TAG}old-{os.getpid()}-{secrets.token_hex(6)}"
-        with signals_held():
-            pause_point("swapping")
-            if not out.exists():
-                os.rename(self.dir, out)
-                leftover = None
-            elif _exchange(self.dir, out):
-                leftover = self.dir           # now holds the earlier set
-            else:
-                os.rename(out, old_dir)
-                pause_point("between_renames")
-                os.rename(self.dir, out)
-                leftover = old_dir
-            STATE.update(committed=True)
+        leftover = None
         try:
+            with signals_held():   # a signal arriving now is acted on when the swap is done
+                pause_point("swapping")
+                if not out.exists():
+                    os.rename(self.dir, out)
+                elif _exchange(self.dir, out):
+                    leftover = self.dir           # now holds the earlier set
+                else:
+                    os.rename(out, old_dir)       # a kill between these two: the next run repairs
+                    leftover = old_dir
+                    pause_point("between_renames")
+                    os.rename(self.dir, out)
+                STATE.update(committed=True)
             pause_point("swapped")
         finally:
-            if leftover is not None:
+            if leftover is not None and STATE.get("committed"):
                 shutil.rmtree(leftover, ignore_errors=True)
         return [out / n for n in written]
 

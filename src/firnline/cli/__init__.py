@@ -73,7 +73,8 @@ def main(argv: list[str] | None = None) -> int:
     for signum in (getattr(signal, "SIGTERM", None), getattr(signal, "SIGHUP", None)):
         if signum is not None:
             with contextlib.suppress(ValueError, OSError):   # not the main thread: leave as is
-                previous[signum] = signal.signal(signum, _raise_interrupted)
+                if signal.getsignal(signum) is not signal.SIG_IGN:   # nohup and the like: respected
+                    previous[signum] = signal.signal(signum, _raise_interrupted)
     try:
         return int(args.func(args) or 0)
     except InputError as e:

@@ -23,9 +23,9 @@ from conftest import base_sections, ramp, write_config, write_dem
 from firnline.calibrate import DEFAULT_BOUNDS, build_operator, calibrate, check_value, fit_spec, modelled_values
 from firnline.cli import main
 from firnline.errors import InputError
-from firnline.outdir import MANIFEST
 from firnline.model import prepare
 from firnline.observations import geodetic_balance, load_observations
+from firnline.outdir import MANIFEST
 
 TRUTH = {"ddf_snow_mm_per_day_k": 4.5, "ddf_ice_mm_per_day_k": 8.5}
 START = {"ddf_snow_mm_per_day_k": 3.0, "ddf_ice_mm_per_day_k": 6.0}
@@ -489,7 +489,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 def test_demo_calibrate_config_is_the_demo_config_plus_observations(tmp_path):
-    from firnline.config import tomllib  # tomllib, or tomli before Python 3.11
+    import tomllib
 
     base = tomllib.loads((REPO / "configs" / "demo.toml").read_text())
     cal = tomllib.loads((REPO / "configs" / "demo_calibrate.toml").read_text())

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import re
-import sys
+import tomllib  # Python 3.11+ (pyproject.toml requires it)
 from pathlib import Path
 
 import pytest
@@ -15,11 +15,6 @@ from firnline.config import SCHEMA, parse_config
 from firnline.demo import demo_config_text
 from firnline.errors import InputError
 from firnline.kernel import KernelParams
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 REPO = Path(__file__).resolve().parents[1]
 

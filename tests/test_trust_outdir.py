@@ -189,8 +189,8 @@ def test_an_input_inside_the_output_folder_is_refused_even_with_force(tmp_path, 
 
 
 def test_calibrate_never_writes_over_its_config(tmp_path, capsys):
-    cfg = case(tmp_path, observations={"glacier_balances": "gb.csv"},
-               calibration={"parameters": ["ddf_ice_mm_per_day_k"]})
+    case(tmp_path, observations={"glacier_balances": "gb.csv"},
+         calibration={"parameters": ["ddf_ice_mm_per_day_k"]})
     (tmp_path / "gb.csv").write_text("glacier,start_date,end_date,balance_mwe,sigma_mwe\n"
                                      "test plane,2015-10-01,2016-09-30,-1.0,0.2\n")
     out = tmp_path / "cal"

@@ -12,15 +12,10 @@ import dataclasses
 import datetime as _dt
 import difflib
 import math
-import sys
+import tomllib  # Python 3.11+ (pyproject.toml requires it)
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 from . import parameters
 from .errors import InputError

@@ -828,6 +828,7 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
         ``{"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv"}``.
     """
     import datetime as dt
+    import tomllib
 
     from .calibrate import build_operator, modelled_values
     from .config import parse_config
@@ -839,8 +840,6 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
         check_point_balances,
         parse_table,
     )
-
-    import tomllib
 
     folder = Path(staging.dir if inputs is None else inputs)
     config = parse_config(tomllib.loads(demo_config_text()), folder).with_values(**DEMO_TRUE_FACTORS)

@@ -7,7 +7,7 @@ console table. TOML is written with tomli-w.
 from __future__ import annotations
 
 import math
-import sys
+import tomllib  # Python 3.11+ (pyproject.toml requires it)
 from pathlib import Path
 
 import tomli_w
@@ -16,11 +16,6 @@ from .. import __version__
 from ..config import PATH_KEYS, parse_config
 from ..provenance import CAUTION
 from .fit import CalibrationResult
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 
 def toml_text(data: dict, header: str = "") -> str:

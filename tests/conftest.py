@@ -84,3 +84,16 @@ def plane_case(tmp_path):
             sec.setdefault(k, {}).update(v)
         return write_config(tmp_path / "case.toml", sec)
     return build
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory):
+    """The demo written by ``firnline demo`` and run once with the report (shared by the
+    report tests): returns (inputs folder, output folder)."""
+    from firnline.cli import main
+
+    folder = tmp_path_factory.mktemp("demo_report")
+    assert main(["demo", str(folder / "in"), "--quiet"]) == 0
+    out = folder / "out"
+    assert main(["run", str(folder / "in" / "demo.toml"), "--out", str(out), "--quiet"]) == 0
+    return folder / "in", out

@@ -46,7 +46,8 @@ def test_run_writes_every_contracted_file_on_the_dem_grid(plane_case, tmp_path):
         assert "firnline_version" in t.tags() and "caution" in t.tags()
     s = pd.read_csv(out / "summary.csv")
     assert list(s.columns) == ["glacier", "balance_year", "area_km2", "annual_balance_mwe",
-                               "winter_balance_mwe", "summer_balance_mwe", "ela_m", "aar", "ela_flag"]
+                               "winter_balance_mwe", "summer_balance_mwe", "ela_m", "aar", "ela_flag",
+                               "ablation_gradient_mwe_per_100m"]   # the extra column of issue 15
     p = pd.read_csv(out / "profiles.csv")
     assert list(p.columns) == ["glacier", "balance_year", "band_bottom_m", "band_top_m", "area_km2",
                                "annual_balance_mwe"]

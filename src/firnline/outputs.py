@@ -5,9 +5,9 @@ the whole new set goes into a staging folder beside the output folder and is
 swapped in, all or nothing, when it is complete; a failure or an interruption on
 the way leaves the earlier set as it was.
 
-GeoTIFFs follow GDAL's conventions: float32, tiled 256 x 256, DEFLATE with the
-floating-point predictor, nodata -9999, a band description and unit, and the
-run's provenance in the dataset tags.
+GeoTIFFs are cloud-optimised (COG, written by GDAL's COG driver): float32, tiled
+256 x 256, DEFLATE with the floating-point predictor, overviews, nodata -9999, a
+band description and unit, and the run's provenance in the dataset tags.
 """
 
 from __future__ import annotations
@@ -19,7 +19,6 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
-import rasterio
 
 from .outdir import Staging, staged  # noqa: F401  (the writers' entry point)
 
@@ -29,30 +28,45 @@ NODATA = -9999.0
 def write_geotiff(path: Path, bands: np.ndarray | Sequence[np.ndarray], transform, crs,
                   descriptions: Sequence[str], units: str, tags: dict | None = None,
                   dtype: str = "float32", nodata: float = NODATA) -> None:
-    """Write one or more 2D bands as a tiled, DEFLATE-compressed GeoTIFF.
+    """Write one or more 2D bands as a cloud-optimised GeoTIFF (COG).
 
     NaN becomes ``nodata``. ``descriptions`` gives one text per band; ``units`` is set
     on every band; ``tags`` (provenance) go into the dataset metadata.
+
+    The bands are first written to an in-memory GTiff (where rasterio can set band
+    descriptions, units and tags), then copied with GDAL's COG driver, which carries
+    that metadata over and lays the file out as the COG standard asks (GDAL COG driver
+    documentation; OGC Cloud Optimized GeoTIFF standard, 2023): 256 x 256 tiles,
+    DEFLATE (floating-point predictor for floats), overviews down to one tile
+    (averaged for floats, the most frequent value for integer ids), and every IFD
+    ahead of the image data.
     """
+    from rasterio.io import MemoryFile
+    from rasterio.shutil import copy as gdal_copy
+
     arr = np.asarray(bands)
     if arr.ndim == 2:
         arr = arr[None]
     count, ny, nx = arr.shape
-    profile = dict(driver="GTiff", width=nx, height=ny, count=count, dtype=dtype, crs=crs,
-                   transform=transform, nodata=nodata, compress="deflate", tiled=True,
-                   blockxsize=256, blockysize=256, BIGTIFF="IF_SAFER")
-    if np.dtype(dtype).kind == "f":
-        profile["predictor"] = 3
+    is_float = np.dtype(dtype).kind == "f"
+    if is_float:
         data = np.where(np.isfinite(arr), arr, nodata).astype(dtype)
     else:
         data = arr.astype(dtype)
-    with rasterio.open(path, "w", **profile) as dst:
-        dst.write(data)
-        for b in range(count):
-            dst.set_band_description(b + 1, descriptions[b])
-            dst.set_band_unit(b + 1, units)
-        if tags:
-            dst.update_tags(**{k: str(v) for k, v in tags.items()})
+    profile = dict(driver="GTiff", width=nx, height=ny, count=count, dtype=dtype, crs=crs,
+                   transform=transform, nodata=nodata, tiled=True, blockxsize=256, blockysize=256)
+    with MemoryFile() as mem:
+        with mem.open(**profile) as tmp:
+            tmp.write(data)
+            for b in range(count):
+                tmp.set_band_description(b + 1, descriptions[b])
+                tmp.set_band_unit(b + 1, units)
+            if tags:
+                tmp.update_tags(**{k: str(v) for k, v in tags.items()})
+        with mem.open() as src:
+            gdal_copy(src, str(path), driver="COG", COMPRESS="DEFLATE", PREDICTOR="YES",
+                      BLOCKSIZE=256, BIGTIFF="IF_SAFER",
+                      OVERVIEW_RESAMPLING="AVERAGE" if is_float else "MODE")
 
 
 def _clean(obj):
@@ -83,8 +97,27 @@ def write_json(path: Path, data: dict) -> None:
         f.write("\n")
 
 
+def plain_number(value: float, digits: int = 6) -> str:
+    """``value`` with ``digits`` significant digits in positional notation (never ``1e-05``).
+
+    The integer part is never rounded away (12345678.9 gives 12345679); trailing zeros
+    are dropped; whole numbers print without a decimal point.
+    """
+    if not math.isfinite(value):
+        return ""
+    if value == 0:
+        return "0"
+    decimals = max(0, digits - 1 - math.floor(math.log10(abs(value))))
+    text = np.format_float_positional(value, precision=decimals, unique=False, fractional=True, trim="-")
+    return "0" if text in ("-0", "0") else text
+
+
 def write_csv(path: Path, df: pd.DataFrame, float_format: str = "%.6g") -> None:
-    df.to_csv(path, index=False, float_format=float_format, na_rep="")
+    """Write a table as CSV: no index, empty cells for missing values, and floats in
+    positional notation with the significant digits of ``float_format`` ("%.Ng"), so a
+    spreadsheet or a reader pastes plain numbers (0.00012, not 1.2e-04)."""
+    digits = int(float_format.strip("%g.")) if float_format.endswith("g") else 6
+    df.to_csv(path, index=False, float_format=lambda v: plain_number(v, digits), na_rep="")
 
 
 # CF standard names where CF has one (CF Standard Name Table); balances in metres of
@@ -94,14 +127,42 @@ CF_STANDARD_NAMES = {
     "glacier_fraction": "land_ice_area_fraction",
 }
 
+CF_CONVENTIONS = "CF-1.8"
+TIME_UNITS = "days since 1970-01-01 00:00:00"
+WATER_EQUIVALENT_COMMENT = (
+    "metres of water equivalent (m w.e.): the mass per unit area divided by the density of water "
+    "(1000 kg m-3), so 1 m w.e. = 1000 kg m-2; the number is the same as in the GeoTIFFs and CSV tables")
 
-def write_netcdf(path: Path, ds, crs, attrs: dict | None = None) -> None:
-    """Write a (balance_year, y, x) Dataset as compressed NetCDF-CF (NetCDF-4 via h5netcdf).
 
-    The grid-mapping variable ``crs`` comes from pyproj's ``CRS.to_cf()`` (CF-1.8
-    conventions, with ``crs_wkt``); every data variable points at it through
-    ``grid_mapping``. Units "m w.e." (not UDUNITS) are written as ``units = "m"`` with a
-    comment that the value is metres of water equivalent.
+def write_netcdf(path: Path, ds, crs, attrs: dict | None = None, year_bounds=None,
+                 cell_methods: dict | None = None) -> None:
+    """Write a (balance_year, y, x) Dataset as compressed NetCDF-CF 1.8 (NetCDF-4 via h5netcdf).
+
+    Parameters
+    ----------
+    path : Path
+    ds : xarray.Dataset with dims (balance_year, y, x); ``balance_year`` holds the labels
+    crs : the grid's CRS (rasterio or pyproj)
+    attrs : global attributes to add
+    year_bounds : sequence of (start, end) dates per balance year, optional
+        The fixed-date balance year as a half-open interval [start, end). With it the
+        ``balance_year`` dimension gets a CF time coordinate (CF 1.8 section 4.4:
+        ``standard_name = "time"``, ``units = "days since 1970-01-01 00:00:00"``,
+        ``calendar = "standard"``, ``axis = "T"``) whose value is the last day of the
+        balance year (so its calendar year is the label), and a bounds variable
+        ``balance_year_bounds`` (section 7.1) holding the start and end.
+    cell_methods : {variable: text}, optional
+        CF ``cell_methods`` (section 7.3), e.g. ``"balance_year: sum area: mean"``.
+
+    Notes
+    -----
+    Units: "m w.e." is not a UDUNITS unit. Balances are written with ``units = "m"`` (a
+    length of water, which UDUNITS parses) and the water-equivalent meaning in
+    ``long_name`` and ``comment``; kg m-2 was not chosen because the numbers would then
+    differ by 1000 from the GeoTIFFs and tables of the same run. Coordinates and bounds
+    carry no ``_FillValue`` (CF 1.8 section 2.5.1: coordinates hold no missing data).
+    The grid-mapping variable ``crs`` comes from pyproj's ``CRS.to_cf()`` (section 5.6,
+    with ``crs_wkt``); every data variable points at it through ``grid_mapping``.
     """
     import xarray as xr
     from pyproj import CRS
@@ -109,25 +170,45 @@ def write_netcdf(path: Path, ds, crs, attrs: dict | None = None) -> None:
     pcrs = CRS.from_wkt(crs.to_wkt()) if not isinstance(crs, CRS) else crs
     out = ds.copy()
     out["crs"] = xr.DataArray(np.int32(0), attrs=pcrs.to_cf())
-    out["x"].attrs.update(standard_name="projection_x_coordinate", long_name="x coordinate of cell centre",
-                          units="m")
-    out["y"].attrs.update(standard_name="projection_y_coordinate", long_name="y coordinate of cell centre",
-                          units="m")
-    out["balance_year"].attrs.update(long_name="balance year, labelled by the calendar year it ends in",
-                                     units="1")
-    encoding = {}
+    out["x"].attrs = dict(standard_name="projection_x_coordinate", long_name="x coordinate of cell centre",
+                          units="m", axis="X")
+    out["y"].attrs = dict(standard_name="projection_y_coordinate", long_name="y coordinate of cell centre",
+                          units="m", axis="Y")
+    encoding = {"x": {"_FillValue": None}, "y": {"_FillValue": None}, "crs": {"_FillValue": None}}
+    if year_bounds is not None:
+        epoch = np.datetime64("1970-01-01", "D")
+        starts = np.array([np.datetime64(a, "D") for a, _ in year_bounds])
+        ends = np.array([np.datetime64(b, "D") for _, b in year_bounds])
+        labels = [int(v) for v in out["balance_year"].values]
+        last_day = ((ends - epoch).astype("int64") - 1).astype("float64")
+        out = out.assign_coords(balance_year=("balance_year", last_day, dict(
+            standard_name="time", long_name="balance year (fixed-date system), stamped on its last day; "
+                                            "its calendar year is the balance-year label",
+            units=TIME_UNITS, calendar="standard", axis="T", bounds="balance_year_bounds",
+            comment="balance years " + ", ".join(str(v) for v in labels) + "; each is the half-open "
+                    "interval [start, end) given by balance_year_bounds")))
+        bounds = np.stack([(starts - epoch).astype("int64"), (ends - epoch).astype("int64")], axis=1)
+        out["balance_year_bounds"] = xr.DataArray(bounds.astype("float64"), dims=("balance_year", "nv"))
+        encoding["balance_year"] = {"_FillValue": None, "dtype": "float64"}
+        encoding["balance_year_bounds"] = {"_FillValue": None, "dtype": "float64"}
+    else:
+        out["balance_year"].attrs = dict(long_name="balance year, labelled by the calendar year it ends in")
+        encoding["balance_year"] = {"_FillValue": None}
     for name, var in out.data_vars.items():
-        if name == "crs":
+        if name in ("crs", "balance_year_bounds"):
             continue
         a = dict(var.attrs)
         if a.get("units") == "m w.e.":
             a["units"] = "m"
-            a["comment"] = "metres of water equivalent (m w.e.)"
+            a["long_name"] = f"{a.get('long_name', name)}, in metres of water equivalent (m w.e.)"
+            a["comment"] = WATER_EQUIVALENT_COMMENT
         if name in CF_STANDARD_NAMES:
             a["standard_name"] = CF_STANDARD_NAMES[name]
+        if cell_methods and name in cell_methods:
+            a["cell_methods"] = cell_methods[name]
         a["grid_mapping"] = "crs"
         var.attrs = a
         encoding[name] = {"zlib": True, "complevel": 4, "dtype": "float32", "_FillValue": np.float32(NODATA)}
     out.attrs = {k: v for k, v in out.attrs.items() if k != "crs_wkt"}
-    out.attrs.update({"Conventions": "CF-1.8"}, **(attrs or {}))
+    out.attrs.update({"Conventions": CF_CONVENTIONS}, **(attrs or {}))
     out.to_netcdf(path, engine="h5netcdf", encoding=encoding)

@@ -9,6 +9,7 @@ and the provenance in :mod:`firnline.provenance`.
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -96,17 +97,79 @@ def run_json(result: RunResult, files: list[str]) -> dict:
     }
 
 
-def write_run(result: RunResult, out_dir: Path) -> list[Path]:
-    """Write every product of a run into ``out_dir``, all or nothing."""
+AGGREGATE = "all_glaciers"
+"""Name of the area-weighted rows over every glacier in summary.csv."""
+
+SUMMARY_EXTRA = ["ablation_gradient_mwe_per_100m"]
+
+
+def summary_csv(result: RunResult) -> pd.DataFrame:
+    """summary.csv: the run's summary with the ablation-area balance gradient, and one
+    ``all_glaciers`` row per balance year.
+
+    The all-glaciers row weights each glacier by its area: the balances are the
+    area-weighted means (the specific balance of the ice cover as a whole) and the AAR
+    is the accumulation area of all glaciers over their area; the ELA, its flag and the
+    gradient belong to single glaciers and stay empty.
+    """
+    from .errors import InputError
+    s = result.summary.merge(result.gradients.rename(columns={"gradient_mwe_per_100m": SUMMARY_EXTRA[0]}),
+                             on=["glacier", "balance_year"], how="left")
+    if (s.glacier.astype(str) == AGGREGATE).any():
+        raise InputError(f"A glacier is named {AGGREGATE!r}, the name summary.csv gives the rows over all "
+                         f"glaciers; rename it in the outlines' id field.")
+    rows = []
+    for year, r in s.groupby("balance_year", sort=True):
+        w = r.area_km2.to_numpy()
+        tot = float(w.sum())
+        row = {"glacier": AGGREGATE, "balance_year": int(year), "area_km2": tot}
+        for c in ("annual_balance_mwe", "winter_balance_mwe", "summer_balance_mwe", "aar"):
+            row[c] = float(np.sum(r[c].to_numpy() * w) / tot) if tot > 0 else np.nan
+        row.update(ela_m=np.nan, ela_flag="", **{SUMMARY_EXTRA[0]: np.nan})
+        rows.append(row)
+    return pd.concat([s, pd.DataFrame(rows, columns=s.columns)], ignore_index=True)
+
+
+def year_bounds(years, year_start: str) -> list[tuple]:
+    """(first day, day after the last) of each balance year (fixed-date system)."""
+    from .forcing import _year_start_date
+    return [(_year_start_date(int(y), year_start), _year_start_date(int(y) + 1, year_start)) for y in years]
+
+
+def netcdf_cell_methods(config) -> dict:
+    """CF cell_methods (CF 1.8 section 7.3) of the fields of balance.nc."""
+    b = config.balance
+    winter = f"winter of the balance year, {b.year_start} to {b.winter_end}, fixed-date system"
+    summer = f"summer of the balance year, the day after {b.winter_end} to the day before {b.year_start}"
+    return {
+        "annual_balance": "time: sum (comment: daily balances summed over the balance year) "
+                          "area: mean where land_ice",
+        "winter_balance": f"time: sum (comment: daily balances summed over the {winter}) area: mean where land_ice",
+        "summer_balance": f"time: sum (comment: daily balances summed over the {summer}) area: mean where land_ice",
+        "accumulation": "time: sum (comment: snowfall summed over the balance year) area: mean",
+        "ablation": "time: sum (comment: melt summed over the balance year) area: mean",
+    }
+
+
+def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Path]:
+    """Write every product of a run into ``out_dir``, all or nothing.
+
+    With ``report`` (the default) the maps, charts and ``report.html`` are written too.
+    """
+    import time
+
+    from . import gis
     setup = result.setup
     grid = setup.grid
     tags = run_tags(result)
     ds = result.fields
     years = [int(y) for y in ds.balance_year.values]
+    summary = summary_csv(result)
+    budget = balanced_budget(result.summary)
     with staged(out_dir) as st:
-        write_csv(st.path("summary.csv"), result.summary)
+        write_csv(st.path("summary.csv"), summary)
         write_csv(st.path("profiles.csv"), result.profiles)
-        write_csv(st.path("balanced_budget.csv"), balanced_budget(result.summary))
+        write_csv(st.path("balanced_budget.csv"), budget)
         for var, prefix, desc in MAPS:
             for i, year in enumerate(years):
                 write_geotiff(st.path(f"{prefix}_{year}.tif"), ds[var].values[i], grid.transform, grid.crs,
@@ -115,14 +178,148 @@ def write_run(result: RunResult, out_dir: Path) -> list[Path]:
         write_geotiff(st.path("mean_annual_balance.tif"), mean, grid.transform, grid.crs,
                       [f"mean annual surface mass balance {years[0]}-{years[-1]}"], "m w.e.", tags)
         write_geotiff(st.path("glacier_id.tif"), setup.glaciers.id_map, grid.transform, grid.crs,
-                      ["glacier id with the largest share of the cell (lookup in run.json)"], "1",
-                      tags, dtype="int32", nodata=0)
+                      ["glacier id with the largest share of the cell (names in glacier_id.tif.aux.xml and "
+                       "run.json)"], "1", tags, dtype="int32", nodata=0)
+        gis.write_rat_sidecar(st.path("glacier_id.tif.aux.xml"), setup.glaciers.names)
         write_netcdf(st.path("balance.nc"), ds, grid.crs,
                      {"title": f"firnline surface mass balance, {result.config.site.name}",
-                      "history": f"created by firnline {__version__}", **{k: tags[k] for k in
-                      ("dem_sha256", "config_sha256", "melt_method", "warming_k", "precip_change_pct")}})
+                      "institution": "", "source": f"firnline {__version__}, temperature-index surface mass "
+                      f"balance model ({result.config.melt.method} method)",
+                      "history": f"created by firnline {__version__}", "comment": provenance.CAUTION,
+                      **{k: tags[k] for k in
+                      ("dem_sha256", "config_sha256", "melt_method", "warming_k", "precip_change_pct")}},
+                     year_bounds=year_bounds(years, result.config.balance.year_start),
+                     cell_methods=netcdf_cell_methods(result.config))
+        outlines = gis.outline_geometries(result.config, grid, setup.glaciers)
+        lines = ela_lines_all(result, summary)
+        write_glaciers_gpkg(st.path("glaciers.gpkg"), result, summary, budget, outlines, lines)
+        if report:
+            t0 = time.perf_counter()
+            from .documents import run_document
+            figures = run_figures(result, summary, budget, outlines, lines)
+            for name, png in figures_files(figures):
+                st.path(name).write_bytes(png)
+            st.path("report.html")
+            names_after = list(st.names) + ["run.json"]
+            st.path("report.html").write_text(run_document(result, summary, budget, figures, names_after,
+                                                           provenance.CAUTION), encoding="utf-8")
+            result.timings["report_s"] = time.perf_counter() - t0
         write_json(st.path("run.json"), run_json(result, list(st.names)))
     return [Path(out_dir) / n for n in st.names]
+
+
+def ela_lines_all(result: RunResult, summary: pd.DataFrame) -> dict:
+    """ELA contour lines per (glacier, balance year) and (glacier, "mean"), map coordinates."""
+    from .gis import ela_lines
+    from .metrics import band_profile, ela_from_profile
+    setup = result.setup
+    grid = setup.grid
+    gl = setup.glaciers
+    x, y = grid.cell_centres()
+    s = summary.set_index(["glacier", "balance_year"])
+    mean = result.fields["annual_balance"].mean("balance_year").values
+    out = {}
+    for k, name in enumerate(gl.names):
+        inside = gl.id_map == k + 1
+        for year in result.fields.balance_year.values:
+            out[(name, int(year))] = ela_lines(grid.elevation, x, y, inside, float(s.ela_m.get((name, int(year)),
+                                                                                             np.nan)))
+        cells, frac = gl.cells[k], gl.fractions[k]
+        prof = band_profile(grid.elevation.ravel()[cells], mean.ravel()[cells].astype("float64"),
+                            frac * grid.cell_area_m2, result.config.balance.band_width_m)
+        ela, flag = ela_from_profile(prof)
+        out[(name, "mean")] = ela_lines(grid.elevation, x, y, inside, ela) if flag == "ok" else []
+        out[(name, "mean_ela_m")] = ela
+    return out
+
+
+def write_glaciers_gpkg(path: Path, result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame,
+                        outlines: list, lines: dict) -> None:
+    """glaciers.gpkg: layers outlines (record means), glacier_years (per year) and ela_lines."""
+    from .gis import write_geopackage
+    names = list(result.setup.glaciers.names)
+    s = summary[summary.glacier != AGGREGATE]
+    per = (s.groupby("glacier", sort=False)
+           .agg(area_km2=("area_km2", "first"), mean_annual_balance_mwe=("annual_balance_mwe", "mean"),
+                mean_winter_balance_mwe=("winter_balance_mwe", "mean"),
+                mean_summer_balance_mwe=("summer_balance_mwe", "mean"), mean_ela_m=("ela_m", "mean"),
+                mean_aar=("aar", "mean"), cumulative_balance_mwe=("annual_balance_mwe", "sum"),
+                n_years=("balance_year", "count")).reset_index())
+    per = per.merge(budget[["glacier", "ela0_m", "aar0"]], on="glacier", how="left")
+    per["glacier"] = per.glacier.astype(str)
+    yl = s.copy()
+    yl["glacier"] = yl.glacier.astype(str)
+    ela = {k: v for k, v in lines.items() if isinstance(k[1], int)}
+    write_geopackage(path, result.setup.grid.crs, list(range(1, len(names) + 1)), [str(n) for n in names],
+                     outlines, per, yl, ela)
+
+
+def run_figures(result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame, outlines: list, lines: dict):
+    """Draw the maps and charts of a run (PNG bytes); see :mod:`firnline.maps`, :mod:`firnline.charts`."""
+    from .charts import glacier_figure, overview_figure, png_bytes
+    from .documents import RunFigures
+    from .maps import BalanceMaps, MapData, colour_limit, plan_views, slug
+    from .report import MAX_PANELS
+
+    setup, cfg = result.setup, result.config
+    grid, gl = setup.grid, setup.glaciers
+    site = cfg.site.name
+    ds = result.fields
+    years = [int(y) for y in ds.balance_year.values]
+    s = summary[summary.glacier != AGGREGATE]
+    totals = summary[summary.glacier == AGGREGATE]
+    area = s.groupby("glacier", sort=False).area_km2.first()
+    names = list(gl.names)
+    # charts: the largest glaciers
+    charts = {}
+    for name in sorted(names, key=lambda n: -float(area.get(n, 0.0)))[:MAX_PANELS]:
+        b = budget[budget.glacier == name]
+        fig = glacier_figure(str(name), s[s.glacier == name], result.profiles[result.profiles.glacier == name],
+                             b.iloc[0] if len(b) else None, site)
+        charts[name] = (f"chart_{slug(name)}.png", png_bytes(fig))
+    overview = None
+    if len(names) > 1:
+        overview = ("chart_all_glaciers.png", png_bytes(overview_figure(s, totals, site)))
+    # maps
+    x, y = grid.cell_centres()
+    data = MapData(elevation=grid.elevation, id_map=gl.id_map, x=x, y=y, cell_size_m=grid.cell_size_m,
+                   crs=grid.crs, crs_label=grid.crs.to_string(), names=names, outlines=outlines)
+    views = plan_views(grid.valid, gl.id_map, names, [float(area.get(n, 0.0)) for n in names], site)
+    seasons = {v: ds[v].values for v in ("annual_balance", "winter_balance", "summer_balance")}
+    periods = years + ["mean"]
+    means = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # cells off the glaciers are NaN in every year
+        for v, a in seasons.items():
+            means[v] = np.nanmean(a, axis=0)
+    ela_text = {}
+    for p in periods:
+        if p == "mean":
+            ela_text[p] = "; dashed: the ELA of the record-mean balance profile"
+        else:
+            ela_text[p] = "; dashed: the year's ELA"
+    maps = {}
+    for view in views:
+        win = (slice(None), slice(view.r0, view.r1), slice(view.c0, view.c1))
+        vmax = colour_limit([a[win] for a in seasons.values()])
+        drawer = BalanceMaps(data, view, vmax, site)
+        for p in periods:
+            fields = {v: (means[v] if p == "mean" else seasons[v][years.index(p)]) for v in seasons}
+            ela = {k + 1: lines.get((n, p), []) for k, n in enumerate(names)}
+            label = f"mean of the balance years {years[0]}-{years[-1]}" if p == "mean" else f"balance year {p}"
+            maps[(view.key, p)] = (f"map_{view.key}_{p}.png", drawer.draw(label, fields, ela))
+        drawer.close()
+    return RunFigures(overview=overview, glacier_charts=charts, maps=maps, views=views, periods=periods,
+                      ela_text=ela_text)
+
+
+def figures_files(figures) -> list[tuple[str, bytes]]:
+    out = []
+    if figures.overview is not None:
+        out.append(figures.overview)
+    out += list(figures.glacier_charts.values())
+    out += [figures.maps[k] for k in figures.maps]
+    return out
 
 
 MONTHS = ("January", "February", "March", "April", "May", "June", "July", "August", "September",

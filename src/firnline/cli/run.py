@@ -14,12 +14,14 @@ def add_parser(sub) -> None:
                    help="uniform warming added to the station temperature, K (default 0)")
     p.add_argument("--precip-change", type=float, default=0.0, metavar="PCT",
                    help="precipitation change, %% (default 0)")
+    p.add_argument("--no-report", action="store_true",
+                   help="skip report.html and its maps and charts (map_*.png, chart_*.png)")
     p.set_defaults(func=main)
 
 
 def main(args) -> int:
     from ..model import run
-    from ..products import summary_table
+    from ..products import summary_table, write_run
     from ..provenance import CAUTION
     from ..scenarios import scenario_list
 
@@ -31,7 +33,7 @@ def main(args) -> int:
                      progress=progress_bars(args.quiet))
         for note in result.setup.notes:
             say(args, note)
-        files = result.write(out)
+        files = write_run(result, out, report=not args.no_report)
     print(summary_table(result.summary))
     say(args, f"wrote {len(files)} files to {out}")
     say(args, CAUTION)

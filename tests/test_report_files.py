@@ -143,8 +143,9 @@ CF_CALENDARS = {"standard", "gregorian", "proleptic_gregorian", "noleap", "365_d
 CF_METHODS = {"point", "sum", "maximum", "median", "mid_range", "minimum", "mean", "mode",
               "standard_deviation", "variance"}                                     # CF 1.8 Appendix E
 CF_AREA_TYPES = {"land_ice", "land", "sea", "snow", "ice_free_land"}                # CF area-type table (from memory)
+# CF standard name table (from memory): name -> canonical units
 CF_STANDARD_NAMES = {"projection_x_coordinate": "m", "projection_y_coordinate": "m", "time": None,
-                     "surface_altitude": "m", "land_ice_area_fraction": "1"}        # CF standard name table (from memory)
+                     "surface_altitude": "m", "land_ice_area_fraction": "1"}
 UDUNITS_SYMBOLS = {"m", "kg", "s", "K", "1", "W", "d", "day", "mm", "km"}
 
 
@@ -183,7 +184,8 @@ def test_balance_nc_follows_cf_1_8(demo_run):
         # the time axis of the balance years (4.4) with bounds (7.1)
         t = nc.variables["balance_year"]
         assert t.standard_name == "time" and t.axis == "T" and t.calendar in CF_CALENDARS
-        assert re.fullmatch(r"(days|hours|minutes|seconds) since \d{4}-\d{2}-\d{2}( \d{2}:\d{2}(:\d{2})?)?", t.units)
+        time_units = r"(days|hours|minutes|seconds) since \d{4}-\d{2}-\d{2}( \d{2}:\d{2}(:\d{2})?)?"
+        assert re.fullmatch(time_units, t.units)
         b = nc.variables[t.bounds]
         assert b.dimensions == ("balance_year", b.dimensions[1]) and b.shape == (8, 2)
         assert "_FillValue" not in b.ncattrs()

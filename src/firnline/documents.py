@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .config import PATH_KEYS, SCHEMA, REQUIRED, Config
+from .config import PATH_KEYS, REQUIRED, SCHEMA, Config
 from .page import Page
 
 UNIT = "m w.e."

@@ -42,7 +42,8 @@ nav ol { margin: .2rem 0; padding-left: 1.4rem; columns: 2; }
 nav a { color: var(--accent); text-decoration: none; }
 table { border-collapse: collapse; font-size: .82rem; margin: .5rem 0 1.2rem; font-variant-numeric: tabular-nums; }
 th, td { padding: .22rem .6rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top; }
-th { background: var(--band); font-weight: 600; border-bottom: 1.5px solid #aab3ba; max-width: 8.5rem; vertical-align: bottom; }
+th { background: var(--band); font-weight: 600; border-bottom: 1.5px solid #aab3ba; max-width: 8.5rem;
+     vertical-align: bottom; }
 td.num { text-align: right; white-space: nowrap; }
 th.num { text-align: right; }
 tr.total td { font-weight: 600; border-top: 1.5px solid #aab3ba; }
@@ -52,10 +53,12 @@ figure { margin: 1rem 0 1.6rem; }
 figure img { max-width: 100%; height: auto; display: block; border: 1px solid var(--rule); }
 figcaption { font-size: .82rem; color: var(--muted); margin-top: .3rem; max-width: 56rem; }
 ul.notes { font-size: .9rem; max-width: 56rem; }
-.kv { display: grid; grid-template-columns: max-content 1fr; gap: .15rem 1.2rem; font-size: .9rem; margin: .5rem 0 1rem; }
+.kv { display: grid; grid-template-columns: max-content 1fr; gap: .15rem 1.2rem; font-size: .9rem;
+      margin: .5rem 0 1rem; }
 .kv dt { color: var(--muted); }
 .kv dd { margin: 0; }
-footer { margin-top: 3rem; font-size: .8rem; color: var(--muted); border-top: 1px solid var(--rule); padding-top: .6rem; }
+footer { margin-top: 3rem; font-size: .8rem; color: var(--muted); border-top: 1px solid var(--rule);
+         padding-top: .6rem; }
 @media print {
   @page { size: A4; margin: 14mm 12mm; }
   html { font-size: 11pt; }

@@ -117,7 +117,7 @@ def test_demo_config_shows_every_default():
             if isinstance(default, str) and section in ("output", "radiation") and m.group(1).endswith("dir"):
                 continue
             assert got == default or (isinstance(default, float) and abs(got - default) < 1e-9), (section, m.group(1))
-    for section in ("site", "dem", "climate", "downscaling", "melt", "balance", "output", "radiation"):
+    for section in ("site", "dem", "climate", "downscaling", "melt", "snow", "balance", "output", "radiation"):
         for key in SCHEMA[section]:
             assert (section, key) in seen, f"configs/demo.toml does not show [{section}] {key}"
     assert cfg.site.name

@@ -29,7 +29,7 @@ def test_each_parameter_is_declared_completely():
     keys = [p.key for p in parameters.PARAMETERS]
     assert len(keys) == len(set(keys))
     for p in parameters.PARAMETERS:
-        assert p.section in ("melt", "downscaling") and p.unit and p.source and p.description
+        assert p.section in ("melt", "downscaling", "snow") and p.unit and p.source and p.description
         assert set(p.methods) <= set(parameters.METHODS) and p.methods
         assert p.kind in ("number", "monthly", "pair")
         assert (p.bounds is None) == bool(p.not_calibratable)

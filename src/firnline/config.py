@@ -21,6 +21,9 @@ from . import parameters
 from .errors import InputError
 from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 
+#: ``[snow] redistribution``: gravitational snow redistribution (firnline.snowslide) or none
+REDISTRIBUTION_CHOICES = ("gravitational", "none")
+
 REQUIRED = object()  # marker: the key has no default and must be given
 OPTIONAL = None
 
@@ -172,6 +175,9 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
     "melt": {
         "method": (_string(parameters.METHODS), parameters.METHODS[0]),
     },
+    "snow": {
+        "redistribution": (_string(REDISTRIBUTION_CHOICES), REDISTRIBUTION_CHOICES[0]),
+    },
     "balance": {
         "year_start": (_month_day, "10-01"),
         "winter_end": (_month_day, "04-30"),
@@ -279,6 +285,13 @@ class Melt:
 
 
 @dataclass(frozen=True)
+class Snow:
+    redistribution: str
+    snow_density_kg_m3: float
+    min_slide_slope_deg: float
+
+
+@dataclass(frozen=True)
 class Balance:
     year_start: str
     winter_end: str
@@ -322,6 +335,7 @@ class Config:
     climate: Climate
     downscaling: Downscaling
     melt: Melt
+    snow: Snow
     balance: Balance
     output: Output
     radiation: Radiation
@@ -337,24 +351,22 @@ class Config:
         ``changes`` maps key names (e.g. ``ddf_snow_mm_per_day_k``) to numbers; each is
         validated like the value in a file.
         """
-        melt = dataclasses.asdict(self.melt)
-        down = dataclasses.asdict(self.downscaling)
+        sections: dict[str, dict] = {}
         raw = {k: dict(v) if isinstance(v, dict) else v for k, v in self.raw.items()}
         for key, value in changes.items():
             if key not in parameters.numeric():
-                raise InputError(f"{key} is not a numeric key of [melt] or [downscaling].")
+                raise InputError(f"{key} is not a numeric model parameter (see firnline.parameters).")
             section = parameters.BY_KEY[key].section
             checked = SCHEMA[section][key][0](value, f"[{section}] {key}")
-            (melt if section == "melt" else down)[key] = checked
+            sections.setdefault(section, dataclasses.asdict(getattr(self, section)))[key] = checked
             raw.setdefault(section, {})[key] = list(checked) if isinstance(checked, tuple) else checked
-        new_down = Downscaling(**down)
-        new_melt = Melt(**melt)
-        return dataclasses.replace(self, melt=new_melt, downscaling=new_down, raw=raw)
+        new = {name: _SECTION_TYPES[name](**values) for name, values in sections.items()}
+        return dataclasses.replace(self, raw=raw, **new)
 
 
 _SECTION_TYPES = {
     "site": Site, "dem": Dem, "glaciers": GlacierOutlines, "climate": Climate,
-    "downscaling": Downscaling, "melt": Melt, "balance": Balance, "output": Output,
+    "downscaling": Downscaling, "melt": Melt, "snow": Snow, "balance": Balance, "output": Output,
     "radiation": Radiation, "observations": Observations, "calibration": Calibration,
 }
 

@@ -713,6 +713,8 @@ _ROWS = (
     ("downscaling", "*", "", ""),
     ("melt", "method", "degree-day", 'default; or "radiation"'),
     ("melt", "*", "", ""),
+    ("snow", "redistribution", "gravitational", 'default: snow slides off steep slopes; or "none"'),
+    ("snow", "*", "", ""),
     ("balance", "year_start", "10-01",
      "default: the balance year starts 1 October, labelled by the year it ends in"),
     ("balance", "winter_end", "04-30", "default: fixed-date winter 1 October .. 30 April"),

@@ -1,7 +1,8 @@
 """The registry of model parameters: each one declared once, here.
 
-A *model parameter* is a number (or a small fixed group of numbers) of ``[downscaling]``
-or ``[melt]`` that the kernel uses. Each :class:`Parameter` says where it lives in the
+A *model parameter* is a number (or a small fixed group of numbers) of ``[downscaling]``,
+``[melt]`` or ``[snow]`` that the model uses (the kernel, or a table or routing built once
+from the DEM). Each :class:`Parameter` says where it lives in the
 config, its unit, the range a config may give, its default, its default calibration
 bounds (``None``: it cannot be calibrated, and ``not_calibratable`` says why), which
 melt methods use it, its published source (or "common practice"), and the name(s)
@@ -39,6 +40,17 @@ MIN_LAPSE_K_PER_M = -0.0125
 # Storglaciaren); see DEVELOPERS.md.
 HOCK_1999 = ("Hock (1999), J. Glaciology 45(149), values from memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 "
              "and a_ice 0.0008 mm m2 W-1 h-1 K-1, here in daily units (x 24 h: 0.0144, 0.0192)")
+# Bernhardt & Schulz (2010) holding depth and the density that turns it into a mass; see
+# firnline.snowslide and DEVELOPERS.md ("Gravitational snow redistribution").
+SNOW_DENSITY_SOURCE = ("common practice (from memory: the bulk density of a settled seasonal snowpack is "
+                       "about 200-400 kg m-3 over a winter); turns the holding depth of Bernhardt & Schulz "
+                       "(2010), Geophysical Research Letters 37, L11502, into mm w.e.")
+MIN_SLIDE_SLOPE_SOURCE = ("common practice (from memory: slab avalanches rarely release on slopes gentler "
+                          "than about 25-30 deg); below it the holding depth of Bernhardt & Schulz (2010) "
+                          "exceeds 5 m and is treated as unlimited")
+ROUTING_ONLY = ("it shapes the snow-redistribution routing built once from the DEM and cached with the "
+                "terrain; set it from field knowledge")
+
 HOCK_2003 = ("Hock (2003), J. Hydrology 282: published ranges about 2.5-11.6 (snow) and "
              "6.6-20 (ice) mm w.e. d-1 K-1 (from memory)")
 
@@ -126,6 +138,12 @@ PARAMETERS: tuple[Parameter, ...] = (
               (), low_open=True,
               not_calibratable="it shapes the radiation table built once from the DEM; fit "
                                "radiation_factor_snow and radiation_factor_ice instead"),
+    Parameter("snow", "snow_density_kg_m3", "kg m-3", 50.0, 917.0, 250.0, None, ALL_METHODS,
+              SNOW_DENSITY_SOURCE, "snow density that turns the slope's holding depth into a mass",
+              (), not_calibratable=ROUTING_ONLY),
+    Parameter("snow", "min_slide_slope_deg", "deg", 0.0, 89.0, 25.0, None, ALL_METHODS,
+              MIN_SLIDE_SLOPE_SOURCE, "slopes gentler than this hold all their snow",
+              (), not_calibratable=ROUTING_ONLY),
 )
 
 BY_KEY: dict[str, Parameter] = {p.key: p for p in PARAMETERS}

@@ -15,9 +15,10 @@ shared: read the ratios, and expect noise.
     python benchmarks/snowslide.py [--size 1000] [--scheme steepest|multiple] [--scenarios 4]
 
 Numba compilation is done (or loaded from its cache) in a warm-up call, reported apart.
-The last line gives the cost of calling the step every day of a 30-year record, as a
-multiple of the same add pass, to set against the kernel's cost per cell-day
-(benchmarks/kernel.py).
+Three cases: a deep pack with every steep cell over capacity (the worst case), the pack at
+rest plus 10 mm w.e. of fresh snow everywhere (a snowfall day), and the pack at rest with
+no fresh snow (a dry day, where the step only checks). The last line gives the cost per
+call in add passes, to set against the kernel's cost per day (benchmarks/kernel.py).
 """
 
 from __future__ import annotations
@@ -75,6 +76,12 @@ def main() -> None:
     slope, _ = slope_aspect(z, CELL_M, CELL_M)
     add_s = numpy_add_seconds(n)
     print(f"{n} cells; numpy add(a, b, out=a) over {n} float32: {add_s * 1e3:.3f} ms")
+    probe = np.random.default_rng(2).permutation(n)
+    values = np.ones(n)
+    gather_s = best(lambda: values[probe], 20)
+    print(f"memory reference: one random gather of {n} float64: {gather_s * 1e3:.2f} ms "
+          f"= {gather_s / add_s:.0f} x numpy add (the transport is bound by such accesses; "
+          f"on a busy machine this ratio swings most)")
     print(f"share of cells steeper than 25 deg: {np.mean(slope >= 25.0):.2f}")
 
     t0 = time.perf_counter()
@@ -86,30 +93,39 @@ def main() -> None:
           f"({routing.recv_ptr[-1]} links, {np.isfinite(routing.holding_mm).mean():.2f} of cells release)")
 
     rng = np.random.default_rng(1)
-    base = rng.uniform(500.0, 3000.0, n)           # a deep pack: every steep cell is over capacity
+    deep = rng.uniform(500.0, 3000.0, n)           # a deep pack: every steep cell is over capacity
     t0 = time.perf_counter()
-    snowslide.redistribute(routing, base.copy())
+    snowslide.redistribute(routing, deep.copy())
     print(f"first call (compile or load from cache): {time.perf_counter() - t0:.2f} s")
+    rest = deep.copy()
+    snowslide.redistribute(routing, rest)           # the pack at rest: every cell at or below capacity
+    cases = {
+        "deep pack, every steep cell over capacity": deep,
+        "pack at rest + 10 mm w.e. of fresh snow on every cell (a snowfall day)": rest + 10.0,
+        "pack at rest, no fresh snow (a dry day: only the check)": rest,
+    }
+    per_day = {}
+    for label, start in cases.items():
+        for n_scen in sorted({1, args.scenarios}):
+            snow = np.repeat(start[None, :], n_scen, axis=0)
+            change = np.zeros_like(snow)
+            exported = np.zeros_like(snow)
+            work = snow.copy()
 
-    for n_scen in (1, args.scenarios):
-        snow = np.repeat(base[None, :], n_scen, axis=0)
-        change = np.zeros_like(snow)
-        exported = np.zeros_like(snow)
-        work = snow.copy()
+            def step():
+                work[...] = snow
+                snowslide.redistribute(routing, work, change, exported)
 
-        def step():
-            work[...] = snow
-            snowslide.redistribute(routing, work, change, exported)
-
-        copy_s = best(lambda: work.__setitem__(Ellipsis, snow), args.repeat)
-        t = max(best(step, args.repeat) - copy_s, 0.0)
-        moved = np.abs(work - snow).sum() / snow.sum()
-        print(f"transport step, {n_scen} scenario(s): {t * 1e3:.1f} ms = {t / add_s:.0f} x numpy add "
-              f"= {t / add_s / n_scen:.0f} x per scenario ({moved:.2f} of the snow mass moved or kept)")
-        if n_scen == 1:
-            per_day = t / add_s
-    print(f"called every day of a 30-year record: {30 * 365 * per_day:.3g} x numpy add over {n} cells "
-          f"(= {per_day:.0f} add passes per day; compare the kernel's cost per day in benchmarks/kernel.py)")
+            copy_s = best(lambda: work.__setitem__(Ellipsis, snow), args.repeat)
+            t = max(best(step, args.repeat) - copy_s, 0.0)
+            moved = np.abs(work - snow).sum() / 2 / snow.sum()
+            print(f"transport step, {label}, {n_scen} scenario(s): {t * 1e3:.1f} ms = {t / add_s:.0f} x "
+                  f"numpy add = {t / add_s / n_scen:.0f} x per scenario ({moved:.3f} of the mass moved)")
+            if n_scen == 1:
+                per_day[label] = t / add_s
+    deep_x, fresh_x, dry_x = per_day.values()
+    print(f"per scenario and call, in numpy add passes over {n} cells: deep {deep_x:.0f}, snowfall day "
+          f"{fresh_x:.0f}, dry day {dry_x:.1f} (compare the kernel's cost per day, benchmarks/kernel.py)")
 
 
 if __name__ == "__main__":

@@ -191,6 +191,19 @@ class Routing:
         """``holding_mm`` in processing order (float32), read sequentially by the transport."""
         return np.ascontiguousarray(self.holding_mm[self.order])
 
+    @functools.cached_property
+    def step_of(self) -> np.ndarray:
+        """Processing step of each cell (int32, cell order): the inverse of ``order``."""
+        step = np.empty(self.n_cells, dtype=np.int32)
+        step[self.order] = np.arange(self.n_cells, dtype=np.int32)
+        return step
+
+    @functools.cached_property
+    def recv_step(self) -> np.ndarray:
+        """Processing step of each receiver (int32, like ``recv_pos``), :data:`EXPORT` for exports."""
+        pos = self.recv_pos
+        return np.where(pos >= 0, self.step_of[np.maximum(pos, 0)], EXPORT).astype(np.int32)
+
     def can_release(self) -> np.ndarray:
         """Boolean (n_cells,) in cell order: cells that pass excess snow on (finite capacity)."""
         return np.isfinite(self.holding_mm)
@@ -368,57 +381,73 @@ def subset(routing: Routing, positions) -> Routing:
 # ----------------------------------------------------------------------------
 
 @njit(cache=True, nogil=True)
-def _one_pass(snow, immobile, use_immobile, order, ptr, recv, weight, holding_in_order, inflow, exported):
+def _one_pass(snow, immobile, use_immobile, order, ptr, recv_step, weight, holding,
+              holding_in_order, change, exported, accumulate):
     """Transport of one scenario (1-D arrays over cells) in place; returns the amount exported.
 
-    ``inflow`` is a zeroed work array (left zeroed); ``exported`` gets what each cell
-    sent off the DEM added. Only releasing cells are visited in elevation order (the
-    capacity is read in that order too); what reaches cells that hold any amount is
-    added in one sequential sweep at the end.
+    With ``accumulate``, ``change`` gets each cell's after - before added and ``exported``
+    what it sent off the DEM (both unused otherwise). A sequential sweep in cell
+    order looks for a cell over capacity (none: done, nothing allocated). Otherwise the
+    snow is gathered into processing order, the cells are handled highest first in one
+    sequential scan (a receiver is only slightly lower, so its slot is only a little
+    further on in that order and stays in cache), and the snow is scattered back.
     """
+    n = snow.size
+    busy = False
+    for i in range(n):
+        held = snow[i] + immobile[i] if use_immobile else snow[i]
+        if held > holding[i]:
+            busy = True
+            break
+    if not busy:
+        return 0.0
+    mass = np.empty(n)                        # snow, then snow + arrivals, by processing step
+    for k in range(n):
+        mass[k] = snow[order[k]]
     total_export = 0.0
-    for k in range(order.size):
+    for k in range(n):
         if ptr[k] == ptr[k + 1]:
-            continue             # holds any amount: what arrives is added in the last loop
-        i = order[k]
-        mass = snow[i] + inflow[i]
-        inflow[i] = 0.0
+            continue                          # holds any amount
         cap = np.float64(holding_in_order[k])
         if use_immobile:
-            cap = max(cap - immobile[i], 0.0)
-        if mass <= cap:
-            snow[i] = mass
+            cap = max(cap - immobile[order[k]], 0.0)
+        if mass[k] <= cap:
             continue
-        excess = mass - cap
-        snow[i] = cap
+        excess = mass[k] - cap
+        mass[k] = cap
         left = excess
         last = ptr[k + 1] - 1
         for j in range(ptr[k], ptr[k + 1]):
             share = left if j == last else excess * np.float64(weight[j])
             left -= share
-            r = recv[j]
+            r = recv_step[j]
             if r < 0:
-                exported[i] += share
+                if accumulate:
+                    exported[order[k]] += share
                 total_export += share
             else:
-                inflow[r] += share
-    for i in range(inflow.size):   # cells that hold any amount keep all that arrived
-        if inflow[i] != 0.0:
-            snow[i] += inflow[i]
-            inflow[i] = 0.0
+                mass[r] += share
+    for k in range(n):
+        i = order[k]
+        if mass[k] != snow[i]:
+            if accumulate:
+                change[i] += mass[k] - snow[i]
+            snow[i] = mass[k]
     return total_export
 
 
 @njit(cache=True, parallel=True)
-def _transport(snow, immobile, use_immobile, order, ptr, recv, weight, holding_in_order, exported):
+def _transport(snow, immobile, use_immobile, order, ptr, recv_step, weight, holding,
+               holding_in_order, change, exported, accumulate):
     """Scenarios in parallel, one pass each (see :func:`_one_pass`)."""
-    n_scen, n = snow.shape
+    n_scen = snow.shape[0]
     out = np.zeros(n_scen)
     for sc in prange(n_scen):
-        inflow = np.zeros(n)
         im = immobile[sc] if use_immobile else immobile[0]
-        out[sc] = _one_pass(snow[sc], im, use_immobile, order, ptr, recv, weight, holding_in_order, inflow,
-                            exported[sc])
+        ch = change[sc] if accumulate else change[0]
+        ex = exported[sc] if accumulate else exported[0]
+        out[sc] = _one_pass(snow[sc], im, use_immobile, order, ptr, recv_step, weight, holding,
+                            holding_in_order, ch, ex, accumulate)
     return out
 
 
@@ -477,12 +506,13 @@ def redistribute(routing: Routing, snow: np.ndarray, change: np.ndarray | None =
         return a2
 
     ch, ex, im = _acc(change, "change"), _acc(exported, "exported"), _acc(immobile, "immobile")
-    if ex is None:
-        ex = np.zeros(s2.shape)
-    if ch is not None:
-        ch -= s2
-    total = _transport(s2, im if im is not None else np.zeros((1, 1)), im is not None, routing.order,
-                       routing.recv_ptr, routing.recv_pos, routing.recv_weight, routing.holding_in_order, ex)
-    if ch is not None:
-        ch += s2
+    if (ch is None) != (ex is None):           # both or neither accumulate in the pass
+        ch = np.zeros(s2.shape) if ch is None else ch
+        ex = np.zeros(s2.shape) if ex is None else ex
+    accumulate = ch is not None
+    dummy = np.zeros((1, 1))
+    r = routing
+    total = _transport(s2, im if im is not None else dummy, im is not None, r.order, r.recv_ptr,
+                       r.recv_step, r.recv_weight, r.holding_mm, r.holding_in_order,
+                       ch if accumulate else dummy, ex if accumulate else dummy, accumulate)
     return float(total[0]) if one else total

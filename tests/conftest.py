@@ -97,3 +97,40 @@ def demo_run(tmp_path_factory):
     out = folder / "out"
     assert main(["run", str(folder / "in" / "demo.toml"), "--out", str(out), "--quiet"]) == 0
     return folder / "in", out
+
+
+# ----------------------------------------------------------------------------
+# kernel cases
+# ----------------------------------------------------------------------------
+
+LAPSE = -0.0065  # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
+
+
+def kernel_params(**kw):
+    """Kernel parameters of the hand-worked kernel cases (all precipitation snow below 9 C)."""
+    from firnline.kernel import KernelParams
+    base = dict(lapse_rate_k_per_m=(LAPSE,) * 12, precip_gradient_per_m=0.0, precip_factor=1.0,
+                snow_c=9.0, rain_c=10.0, threshold_c=0.0, ddf_snow=5.0, ddf_ice=8.0)
+    base.update(kw)
+    return KernelParams(**base)
+
+
+def constant_record(n_days=365, t=5.0, p=5.0, winter_days=212):
+    """One balance year of constant forcing (no leap day), winter first:
+    (T, P, month, day of year, year index, winter)."""
+    T = np.full(n_days, t)
+    P = np.full(n_days, p)
+    month = np.ones(n_days, int)
+    doy = (np.arange(n_days) % 365) + 1
+    year = np.zeros(n_days, int)
+    winter = np.arange(n_days) < winter_days
+    return T, P, month, doy, year, winter
+
+
+def station_run(z, ice, z_station, T, P, month, doy, year, winter, params, warming_k=(0.0,),
+                precip_change_pct=(0.0,), radiation=None, snapshot_days=None):
+    """The kernel in station mode from plain arrays (uniform scenarios)."""
+    from firnline.kernel import Calendar, Cells, Scenarios, StationForcing, run_kernel
+    return run_kernel(Cells(z, ice, radiation), Calendar(month, doy, year, winter),
+                      StationForcing(T, P, z_station), params,
+                      Scenarios.uniform(warming_k, precip_change_pct), snapshot_days=snapshot_days)

@@ -5,28 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from firnline.kernel import KernelParams, run_kernel
+from conftest import LAPSE, constant_record, station_run
+from conftest import kernel_params as params
 from firnline.metrics import band_profile, ela_from_profile, glacier_year
-
-LAPSE = -0.0065  # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
-
-
-def params(**kw) -> KernelParams:
-    base = dict(lapse_rate_k_per_m=(LAPSE,) * 12, precip_gradient_per_m=0.0, precip_factor=1.0,
-                snow_c=9.0, rain_c=10.0, threshold_c=0.0, ddf_snow=5.0, ddf_ice=8.0)
-    base.update(kw)
-    return KernelParams(**base)
-
-
-def constant_record(n_days=365, t=5.0, p=5.0, winter_days=212):
-    """One balance year of constant forcing (no leap day), winter first."""
-    T = np.full(n_days, t)
-    P = np.full(n_days, p)
-    month = np.ones(n_days, int)
-    doy = (np.arange(n_days) % 365) + 1
-    year = np.zeros(n_days, int)
-    winter = np.arange(n_days) < winter_days
-    return T, P, month, doy, year, winter
 
 
 def hand_balance(z, t_st=5.0, z_st=2000.0, p=5.0, ddf_s=5.0, ddf_i=8.0, days=365, warming=0.0):
@@ -47,7 +28,7 @@ def hand_balance(z, t_st=5.0, z_st=2000.0, p=5.0, ddf_s=5.0, ddf_i=8.0, days=365
 def test_planar_glacier_matches_hand_calculation():
     z = np.linspace(2000.0, 3000.0, 201)
     rec = constant_record()
-    res = run_kernel(z, np.ones_like(z, bool), 2000.0, *rec, params())
+    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params())
     annual = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
               - res.ice_melt_winter - res.ice_melt_summer)[0, 0]
     np.testing.assert_allclose(annual, hand_balance(z), rtol=1e-5, atol=1e-2)
@@ -58,7 +39,7 @@ def test_planar_glacier_ela_and_aar_by_hand():
     z = np.linspace(2000.0, 3000.0, 1001)[:-1] + 0.5
     area = np.full_like(z, 100.0)
     rec = constant_record()
-    res = run_kernel(z, np.ones_like(z, bool), 2000.0, *rec, params())
+    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params())
     b = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
          - res.ice_melt_winter - res.ice_melt_summer)[0, 0] / 1000.0
     m = glacier_year(z, area, b.astype(float), b.astype(float) * 0, b.astype(float), band_width_m=50.0)
@@ -77,7 +58,7 @@ def test_ela_shift_is_one_over_lapse_rate_per_kelvin():
     """A uniform warming dT raises the T = p/ddf_s isotherm, hence the ELA, by dT / |lapse|."""
     z = np.linspace(2000.0, 3500.0, 1501)
     rec = constant_record()
-    res = run_kernel(z, np.ones_like(z, bool), 2000.0, *rec, params(), warming_k=[0.0, 1.0, 2.0],
+    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params(), warming_k=[0.0, 1.0, 2.0],
                      precip_change_pct=[0.0, 0.0, 0.0])
     b = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
          - res.ice_melt_winter - res.ice_melt_summer)[:, 0]
@@ -101,7 +82,7 @@ def test_conservation_per_cell():
     z = np.linspace(1500, 3500, 500)
     glacier = np.arange(500) % 3 != 0
     p = params(precip_gradient_per_m=0.0004, snow_c=0.5, rain_c=2.5, ddf_snow=3.0, ddf_ice=6.0)
-    r = run_kernel(z, glacier, 1200.0, T, P, month, doy, year, winter, p)
+    r = station_run(z, glacier, 1200.0, T, P, month, doy, year, winter, p)
     acc = r.acc_winter + r.acc_summer
     smelt = r.snow_melt_winter + r.snow_melt_summer
     imelt = r.ice_melt_winter + r.ice_melt_summer
@@ -125,7 +106,7 @@ def test_precipitation_and_snow_fraction_by_hand():
     one = np.ones(1, int)
     p = params(lapse_rate_k_per_m=(0.0,) * 12, precip_gradient_per_m=0.0003, precip_factor=1.2,
                snow_c=0.5, rain_c=2.5, threshold_c=5.0)
-    r = run_kernel(z, np.ones(2, bool), 1200.0, T, P, one, one, np.zeros(1, int), np.ones(1, bool), p,
+    r = station_run(z, np.ones(2, bool), 1200.0, T, P, one, one, np.zeros(1, int), np.ones(1, bool), p,
                    precip_change_pct=[10.0])
     expect = 10.0 * 1.2 * np.array([1.0, 1.3]) * 1.1 * 0.5
     np.testing.assert_allclose(r.acc_winter[0, 0], expect, rtol=1e-6)
@@ -134,7 +115,7 @@ def test_precipitation_and_snow_fraction_by_hand():
 def test_snapshots_give_period_balances():
     rec = constant_record(t=3.0)
     z = np.linspace(2000, 3000, 11)
-    r = run_kernel(z, np.ones(11, bool), 2000.0, *rec, params(), snapshot_days=[0, 100, 365])
+    r = station_run(z, np.ones(11, bool), 2000.0, *rec, params(), snapshot_days=[0, 100, 365])
     annual = (r.acc_winter + r.acc_summer - r.snow_melt_winter - r.snow_melt_summer
               - r.ice_melt_winter - r.ice_melt_summer)[0, 0]
     np.testing.assert_allclose(r.snapshots[2, 0] - r.snapshots[0, 0], annual, rtol=1e-5, atol=1e-2)

@@ -11,9 +11,10 @@ import pytest
 import rasterio
 
 from firnline.cli import main
-from firnline.kernel import run_kernel
+from firnline.kernel import Method
 from firnline.radiation import RadiationTable
-from test_kernel import constant_record, params
+from conftest import constant_record, station_run
+from conftest import kernel_params as params
 
 
 def table(values_w_m2: np.ndarray) -> RadiationTable:
@@ -33,10 +34,10 @@ def test_radiation_method_reduces_to_degree_day():
     the radiation method (Hock 1999, J. Glaciology 45(149)) is the degree-day method."""
     z = np.linspace(2000, 3200, 61)
     rec = constant_record(t=4.0)
-    dd = run_kernel(z, np.ones(61, bool), 2000.0, *rec, params(ddf_snow=4.5, ddf_ice=4.5))
-    rad = run_kernel(z, np.ones(61, bool), 2000.0, *rec,
+    dd = station_run(z, np.ones(61, bool), 2000.0, *rec, params(ddf_snow=4.5, ddf_ice=4.5))
+    rad = station_run(z, np.ones(61, bool), 2000.0, *rec,
                      params(ddf_snow=1.0, ddf_ice=9.0, melt_factor=4.5, radiation_factor_snow=0.0,
-                            radiation_factor_ice=0.0, use_radiation=True),
+                            radiation_factor_ice=0.0, method=Method.RADIATION),
                      radiation=table(np.linspace(0, 400, 61)))
     np.testing.assert_array_equal(annual(dd), annual(rad))
 
@@ -46,8 +47,8 @@ def test_radiation_melt_by_hand():
     one = np.ones(1, int)
     I = np.array([0.0, 100.0, 250.0])
     p = params(lapse_rate_k_per_m=(0.0,) * 12, melt_factor=1.8, radiation_factor_snow=0.01,
-               radiation_factor_ice=0.02, use_radiation=True)
-    r = run_kernel(np.full(3, 2000.0), np.ones(3, bool), 2000.0, np.array([3.0]), np.array([0.0]),
+               radiation_factor_ice=0.02, method=Method.RADIATION)
+    r = station_run(np.full(3, 2000.0), np.ones(3, bool), 2000.0, np.array([3.0]), np.array([0.0]),
                    one, one, np.zeros(1, int), np.ones(1, bool), p, radiation=table(I))
     np.testing.assert_allclose(r.ice_melt_winter[0, 0], (1.8 + 0.02 * I) * 3.0, rtol=1e-6)
 

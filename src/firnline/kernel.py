@@ -1,69 +1,209 @@
-"""The daily mass-balance kernel: a pure function of arrays.
+"""The daily mass-balance kernel: named processes over chunks of cells, a pure function of arrays.
 
-Each day, for each cell ``c`` and each scenario ``s``::
+Physics
+-------
+Each day, for each cell ``c`` and each scenario ``s`` (``m`` the day's calendar month)::
 
-    T = T_station + lapse(month) * (z - z_station) + warming[s]                 [deg C]
+    T = T_station + lapse(m) * (z - z_station) + warming[s, m]                   [deg C]
     P = P_station * precip_factor * max(0, 1 + precip_gradient * (z - z_station))
-        * (1 + precip_change[s] / 100)                                          [mm w.e.]
-    snow = P * f_solid(T)   with f_solid = 1 at or below snow_c, 0 at or above rain_c,
-                            linear between
-    SWE += snow                                  (snowfall is added before melt)
+        * precip_scale[s, m]                                                     [mm w.e.]
+    snowfall = P * f_solid(T)  with f_solid = 1 at or below snow_c, 0 at or above rain_c,
+                               linear between;  rain = P - snowfall
+    snow += snowfall                              (snowfall is added before melt)
     potential snow melt = F_snow * (T - threshold)+
-    melt of snow = min(SWE, potential)
-    ice melt (glacier cells only) = F_ice * degree-days left once the snow is gone
+    snow melt = min(snow, potential)
+    ice melt (glacier ice only) = F_ice * degree-days left once the snow is gone
 
-with the melt factors of the chosen method:
+with the melt factors ``F`` of the chosen method (:class:`Method`), one small jitted
+function per published equation:
 
-* degree-day (e.g. Hock, 2003, J. Hydrology 282): F_snow = ddf_snow, F_ice = ddf_ice;
-* radiation (Hock, 1999, J. Glaciology 45(149)): F = melt_factor + radiation_factor * I,
-  I the cell's potential clear-sky direct radiation for that day of year (W m-2).
+* :func:`degree_day_factors` (e.g. Hock, 2003, J. Hydrology 282): F_snow = ddf_snow,
+  F_ice = ddf_ice;
+* :func:`hock1999_factors` (Hock, 1999, J. Glaciology 45(149)): F = melt_factor +
+  radiation_factor * I, I the cell's potential clear-sky direct radiation for that day
+  of year (W m-2).
 
-Rain is not accumulation (it runs off; no refreezing). Accumulation = snowfall,
-ablation = melt of snow plus melt of ice, balance = accumulation - ablation, all
-in mm w.e. The balance of a glacier cell is that of its glacier surface; ice-free
-ground keeps a seasonal snowpack but cannot lose ice.
+Rain is not accumulation (it runs off; no refreezing yet). Accumulation = snowfall,
+ablation = snow melt + ice melt, balance = accumulation - ablation, all mm w.e. The
+balance of a glacier cell is that of its glacier surface; ice-free ground keeps a
+seasonal snowpack but cannot lose ice.
 
-State and initial condition: the model starts with no snow on any cell at the
-first day of the record (the start of a balance year, by default 1 October, when
-the seasonal snow is at its minimum); the snowpack then carries over from one
-balance year to the next. Snow that survives a summer stays in the pack (as firn)
-and counts as accumulation of the year it fell in.
+State and initial condition: no snow on any cell at the first day of the record (the
+start of a balance year, by default 1 October); the snowpack then carries over from one
+balance year to the next. Snow that survives a summer stays in the pack and counts as
+accumulation of the year it fell in.
 
-Memory: the state is (scenarios x cells); results are (scenarios x years x cells);
-no (days x cells) array is ever made. The days are cut into blocks (at most
-``BLOCK_DAYS``, ending at year ends and snapshot days); each block is one fused,
-parallel numba pass with the cells outermost, so each cell's state stays in
-registers for the whole block.
+Names, not positions
+--------------------
+:class:`State` names the per-cell state (``SNOW`` today; ``FIRN``, ``LIQUID`` and
+``COLD_CONTENT`` are laid out and carried, zero until the processes that fill them
+arrive), :class:`Flux` the daily fluxes that are summed per season (:class:`Season`),
+:class:`Method` the melt equations. Results are indexed by these names
+(``result.season_sum(Flux.SNOWFALL, Season.WINTER)``), never by literal positions.
+
+Inputs come in groups: per cell (:class:`Cells`), per day (:class:`Calendar` and the
+forcing), per scenario (:class:`Scenarios`) and parameters (:class:`KernelParams`,
+built from a config in one place, :meth:`KernelParams.from_config`).
+
+Surfaces
+--------
+A kernel cell is one *surface column*: ``Cells.ice`` says whether its surface is glacier
+ice. Today a cell with any glacier cover is one glacier column. Partial cells as two
+surfaces (glacier share and ice-free share, issue 11) become two columns of the same
+DEM cell - the kernel loop does not change; the caller lists the cell twice (once with
+``ice=True``, once with ``ice=False``) and blends the two columns' results by share.
+
+Forcing: two modes
+------------------
+* **Station mode** (the fast path, :class:`StationForcing`): daily station temperature
+  and precipitation at a reference elevation, downscaled inside the kernel with the
+  monthly lapse rate and the per-cell orographic factor above.
+* **Cell mode**: any object with a method ``block(a, b) -> (t, p)`` returning two
+  ``(b - a, n_cells)`` float32 arrays for days ``a .. b-1``: temperature (deg C) at each
+  cell's own elevation and precipitation (mm, gauge factor and elevation gradient
+  already applied), both *before* scenario changes. The kernel pulls one block at a
+  time (at most :data:`CELL_BLOCK_BYTES` of forcing, never days x cells for the whole
+  record) and adds the scenario's warming and scales the precipitation itself; the
+  lapse rate, precipitation gradient and factor of :class:`KernelParams` are not used.
+
+Scenarios are per scenario and per calendar month (:class:`Scenarios`): warming
+``(n_scen, 12)`` K and precipitation scale ``(n_scen, 12)``; a uniform change is twelve
+equal values, bit for bit the same as a uniform step.
+
+Layout for speed
+----------------
+Cells are processed in chunks of :data:`CHUNK_CELLS`, chunks in parallel; for each chunk
+and scenario the days run in the middle and the innermost loop runs over the chunk's
+cells with branch-free arithmetic (min/max and selects), which the compiler turns into
+packed SIMD code. The chunk's state and its running per-season sums live in small local
+arrays that stay in the core's cache for the whole record. All arithmetic and the
+running sums are float64 (so results match the previous scalar kernel to rounding); the
+per-year per-season sums are stored as float32 (each is a single rounding of a float64
+sum); cumulative snapshots stay float64. In station mode each chunk runs the whole record
+in one go; in cell mode the days come in blocks and the state and running sums are carried
+between blocks.
+
+Threads: the numba threading layer defaults to OpenMP with a passive wait policy
+(``OMP_WAIT_POLICY=passive``, set only if the user has not set it), so idle workers sleep
+instead of spinning against other programs on a shared machine; ``NUMBA_THREADING_LAYER``
+and ``OMP_WAIT_POLICY`` set by the user win. Work is handed out in small dynamic pieces
+(:data:`CHUNKS_PER_TASK` chunks), so a thread slowed by a competing program does not hold
+up the others.
+
+Memory: state (states x scenarios x cells, float64) and results (seasons x fluxes x
+scenarios x years x cells, float32); no (days x cells) array is ever made in station mode,
+and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
 """
 
 from __future__ import annotations
 
+import os
+from collections import namedtuple
 from dataclasses import dataclass
-from typing import Callable, Sequence
+from enum import IntEnum
+from typing import Callable, Protocol, Sequence
 
-import numpy as np
-from numba import njit, prange
+# Threads that sleep when idle (see the module docstring); must be set before numba
+# loads its threading layer, and never overrides the user's own choice.
+os.environ.setdefault("OMP_WAIT_POLICY", "passive")
 
-# indices of the per-season accumulators
-ACC, SNOW_MELT, ICE_MELT = 0, 1, 2
-N_TERMS = 3
-# days per fused kernel call (blocks also end at year ends and snapshots)
-BLOCK_DAYS = 32
+import numba  # noqa: E402
+import numpy as np  # noqa: E402
+from numba import njit, prange  # noqa: E402
 
+def _choose_threading_layer() -> None:
+    """Prefer OpenMP (passive wait) when numba can load it, else numba's workqueue."""
+    if "NUMBA_THREADING_LAYER" in os.environ:
+        return
+    try:
+        from numba.np.ufunc import omppool  # noqa: F401
+        numba.config.THREADING_LAYER = "omp"
+    except ImportError:
+        numba.config.THREADING_LAYER = "workqueue"
+
+
+_choose_threading_layer()
+
+
+class Method(IntEnum):
+    """Melt equations (the ``[melt] method`` of the config)."""
+
+    DEGREE_DAY = 0   #: :func:`degree_day_factors`
+    RADIATION = 1    #: :func:`hock1999_factors`
+
+    @classmethod
+    def from_name(cls, name: str) -> "Method":
+        """The method of a config name (``"degree-day"``, ``"radiation"``)."""
+        return cls[name.upper().replace("-", "_")]
+
+
+class State(IntEnum):
+    """Per-cell state, mm w.e. (cold content: mm w.e. of refreezing capacity)."""
+
+    SNOW = 0          #: snow water equivalent of the pack
+    FIRN = 1          #: laid out; zero until firn is modelled (issue 11)
+    LIQUID = 2        #: laid out; zero until liquid water retention is modelled
+    COLD_CONTENT = 3  #: laid out; zero until refreezing is modelled
+
+
+class Flux(IntEnum):
+    """Daily fluxes summed per season, mm w.e.
+
+    Refreezing, redistribution, firn melt and released water are appended here when
+    their processes arrive (see DEVELOPERS.md, "How to add a kernel process").
+    """
+
+    SNOWFALL = 0   #: solid precipitation (accumulation)
+    RAIN = 1       #: liquid precipitation
+    SNOW_MELT = 2  #: melt of the snowpack
+    ICE_MELT = 3   #: melt of glacier ice (glacier surfaces only)
+
+
+class Season(IntEnum):
+    """Seasons of the fixed-date system."""
+
+    WINTER = 0
+    SUMMER = 1
+
+
+N_STATE, N_FLUX, N_SEASON = len(State), len(Flux), len(Season)
+# the same names as plain ints for compiled code (numba indexes tuples by int constants);
+# _state_rows and _flux_rows list one entry per member
+_SNOW, _FIRN, _LIQUID, _COLD_CONTENT = (int(x) for x in State)
+_SNOWFALL, _RAIN, _SNOW_MELT, _ICE_MELT = (int(x) for x in Flux)
+if (N_STATE, N_FLUX) != (4, 4):  # pragma: no cover - a reminder for whoever adds a member
+    raise ImportError("kernel: list every State and Flux member in _state_rows / _flux_rows")
+#: cells per chunk: the chunk's state and sums (~10 kB) stay in the L1/L2 cache
+CHUNK_CELLS = 256
+#: chunks handed to a thread at a time (dynamic scheduling)
+CHUNKS_PER_TASK = 4
+#: cells per parallel call in station mode (the progress step)
+GROUP_CELLS = 1 << 16
+#: upper bound of one cell-mode forcing block (t and p together), bytes
+CELL_BLOCK_BYTES = 256 << 20
+#: at most this many days per cell-mode block
+CELL_BLOCK_DAYS = 64
+
+STATION, CELL = 0, 1    # forcing modes of the compiled core
+
+
+# ----------------------------------------------------------------------------
+# grouped inputs
+# ----------------------------------------------------------------------------
 
 @dataclass(frozen=True)
 class KernelParams:
     """Model parameters in kernel units.
 
-    lapse_rate_k_per_m : 12 values (January first), K m-1
-    precip_gradient_per_m : m-1
-    precip_factor : 1
+    lapse_rate_k_per_m : 12 values (January first), K m-1 (station mode)
+    precip_gradient_per_m : m-1 (station mode)
+    precip_factor : 1 (station mode)
     snow_c, rain_c : deg C, all snow at or below snow_c, all rain at or above rain_c
     threshold_c : deg C, melt threshold
     ddf_snow, ddf_ice : mm w.e. d-1 K-1 (degree-day method)
     melt_factor : mm w.e. d-1 K-1 (radiation method)
     radiation_factor_snow, radiation_factor_ice : mm w.e. d-1 K-1 per W m-2
-    use_radiation : bool
+    method : Method
     """
 
     lapse_rate_k_per_m: tuple
@@ -77,10 +217,16 @@ class KernelParams:
     melt_factor: float = 0.0
     radiation_factor_snow: float = 0.0
     radiation_factor_ice: float = 0.0
-    use_radiation: bool = False
+    method: Method = Method.DEGREE_DAY
+
+    @property
+    def use_radiation(self) -> bool:
+        """True for the radiation method (it needs a radiation table)."""
+        return self.method == Method.RADIATION
 
     @classmethod
     def from_config(cls, cfg) -> "KernelParams":
+        """The one mapping from a config's ``[downscaling]`` and ``[melt]`` to the kernel."""
         d, m = cfg.downscaling, cfg.melt
         return cls(lapse_rate_k_per_m=d.monthly_lapse_rates(),
                    precip_gradient_per_m=d.precip_gradient_per_m, precip_factor=d.precip_factor,
@@ -89,235 +235,576 @@ class KernelParams:
                    ddf_ice=m.ddf_ice_mm_per_day_k, melt_factor=m.melt_factor_mm_per_day_k,
                    radiation_factor_snow=m.radiation_factor_snow,
                    radiation_factor_ice=m.radiation_factor_ice,
-                   use_radiation=m.method == "radiation")
+                   method=Method.from_name(m.method))
+
+
+@dataclass(frozen=True)
+class Cells:
+    """Per-cell inputs (one kernel cell = one surface column, see the module docstring).
+
+    z_m : ndarray (n_cells,) float
+        Elevation, m.
+    ice : ndarray (n_cells,) bool
+        True where the surface is glacier ice (ice melt allowed).
+    radiation : RadiationTable, optional
+        Potential direct radiation over the same cells (``values`` (n_nodes, n_cells),
+        ``scale_w_m2``, ``node_weights(doys)``; see
+        :class:`firnline.radiation.RadiationTable`); required by the radiation method.
+    """
+
+    z_m: np.ndarray
+    ice: np.ndarray
+    radiation: object | None = None
+
+    @property
+    def n(self) -> int:
+        return int(np.shape(self.z_m)[0])
+
+
+@dataclass(frozen=True)
+class Calendar:
+    """Per-day calendar (n_days,): month 1..12, day of year 1..366, balance-year index
+    0..n_years-1 (non-decreasing) and the winter season of the fixed-date system (bool)."""
+
+    month: np.ndarray
+    day_of_year: np.ndarray
+    year_index: np.ndarray
+    winter: np.ndarray
+
+    @classmethod
+    def from_forcing(cls, forcing) -> "Calendar":
+        """The calendar of a :class:`firnline.forcing.Forcing`."""
+        return cls(forcing.month, forcing.day_of_year, forcing.year_index, forcing.winter)
+
+    @property
+    def n_days(self) -> int:
+        return int(np.shape(self.month)[0])
+
+    @property
+    def n_years(self) -> int:
+        yi = np.asarray(self.year_index)
+        return int(yi.max()) + 1 if yi.size else 0
+
+
+@dataclass(frozen=True)
+class StationForcing:
+    """Station mode: daily temperature (deg C) and precipitation (mm) at ``elevation_m``."""
+
+    temperature_c: np.ndarray
+    precipitation_mm: np.ndarray
+    elevation_m: float
+
+
+class CellForcing(Protocol):
+    """Cell mode: forcing already at each cell (see the module docstring)."""
+
+    def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        """Temperature (deg C) and precipitation (mm), each (b - a, n_cells) float32."""
+
+
+@dataclass(frozen=True)
+class Scenarios:
+    """Climate changes per scenario and calendar month (January first).
+
+    warming_k : ndarray (n_scen, 12) float64, K added to the temperature
+    precip_scale : ndarray (n_scen, 12) float64, factor on the precipitation (1 + pct/100)
+    """
+
+    warming_k: np.ndarray
+    precip_scale: np.ndarray
+
+    def __post_init__(self):
+        w = np.asarray(self.warming_k, dtype="float64")
+        p = np.asarray(self.precip_scale, dtype="float64")
+        if w.ndim != 2 or w.shape[1] != 12 or p.shape != w.shape:
+            raise ValueError("scenarios need (n_scen, 12) warmings and precipitation scales")
+        if np.any(p < 0):
+            raise ValueError("a precipitation change below -100 % is impossible")
+        object.__setattr__(self, "warming_k", np.ascontiguousarray(w))
+        object.__setattr__(self, "precip_scale", np.ascontiguousarray(p))
+
+    @property
+    def n(self) -> int:
+        return int(self.warming_k.shape[0])
+
+    @classmethod
+    def uniform(cls, warming_k: Sequence[float] = (0.0,),
+                precip_change_pct: Sequence[float] = (0.0,)) -> "Scenarios":
+        """One (warming K, precipitation change %) pair per scenario, the same every month."""
+        w = np.asarray(warming_k, dtype="float64").reshape(-1)
+        pct = np.asarray(precip_change_pct, dtype="float64").reshape(-1)
+        if w.shape != pct.shape:
+            raise ValueError("warming_k and precip_change_pct need one value per scenario each")
+        return cls(np.repeat(w[:, None], 12, axis=1), np.repeat((1.0 + pct / 100.0)[:, None], 12, axis=1))
+
+    @classmethod
+    def monthly(cls, warming_k, precip_change_pct) -> "Scenarios":
+        """Twelve monthly warmings (K) and precipitation changes (%) per scenario, (n_scen, 12)."""
+        w = np.atleast_2d(np.asarray(warming_k, dtype="float64"))
+        pct = np.atleast_2d(np.asarray(precip_change_pct, dtype="float64"))
+        return cls(w, 1.0 + pct / 100.0)
 
 
 @dataclass(frozen=True)
 class KernelResult:
-    """Per-year sums, mm w.e., float32, shape (scenarios, years, cells) unless stated.
+    """Results of :func:`run_kernel`.
 
-    acc_winter, acc_summer : snowfall in each season
-    snow_melt_winter, snow_melt_summer, ice_melt_winter, ice_melt_summer : melt
-    swe_end : snow water equivalent on the last day of each balance year
-    swe_initial : (scenarios, cells) SWE before the first day (zero)
-    snapshots : (n_snapshots, scenarios, cells) float64 cumulative balance since the
-        start of the record at the requested day boundaries, or None
+    sums : ndarray (seasons, fluxes, scenarios, years, cells) float32
+        Per-season sums of each :class:`Flux`, mm w.e.; read them by name with
+        :meth:`season_sum` or the properties below.
+    snow_end : ndarray (scenarios, years, cells) float32
+        Snow water equivalent on the last day of each balance year, mm w.e.
+    state_initial, state_final : ndarray (states, scenarios, cells) float64
+        The :class:`State` before the first day and after the last.
+    snapshots : ndarray (n_snapshots, scenarios, cells) float64 or None
+        Cumulative balance since the start of the record at the requested day
+        boundaries, mm w.e.
     """
 
-    acc_winter: np.ndarray
-    acc_summer: np.ndarray
-    snow_melt_winter: np.ndarray
-    snow_melt_summer: np.ndarray
-    ice_melt_winter: np.ndarray
-    ice_melt_summer: np.ndarray
-    swe_end: np.ndarray
-    swe_initial: np.ndarray
+    sums: np.ndarray
+    snow_end: np.ndarray
+    state_initial: np.ndarray
+    state_final: np.ndarray
     snapshots: np.ndarray | None = None
 
+    def season_sum(self, flux: Flux, season: Season) -> np.ndarray:
+        """One flux summed over one season, (scenarios, years, cells) float32, mm w.e."""
+        return self.sums[season, flux]
 
-@njit(parallel=True, cache=True, fastmath=False)
-def _block(dz, orog, glacier, rad_values, rad_scale, use_rad, t_st, p_st, lapse, season,
-           rad_lo, rad_hi, rad_w, warming, pscale, snow_c, rain_c, thr,
-           f_snow0, f_ice0, a_snow, a_ice, swe, sums, cum):
-    """A block of days over all cells and scenarios (fused; see the module docstring).
+    def year_sum(self, flux: Flux) -> np.ndarray:
+        """One flux summed over the balance year, (scenarios, years, cells) float32, mm w.e."""
+        return self.sums[Season.WINTER, flux] + self.sums[Season.SUMMER, flux]
 
-    The loop runs cells outermost so each cell's state stays in registers across the
-    block; the per-day inputs (t_st, p_st, lapse, season, rad_lo/hi/w) are (n_days_block,).
+    # the names the callers have always used
+    acc_winter = property(lambda self: self.sums[Season.WINTER, Flux.SNOWFALL])
+    acc_summer = property(lambda self: self.sums[Season.SUMMER, Flux.SNOWFALL])
+    snow_melt_winter = property(lambda self: self.sums[Season.WINTER, Flux.SNOW_MELT])
+    snow_melt_summer = property(lambda self: self.sums[Season.SUMMER, Flux.SNOW_MELT])
+    ice_melt_winter = property(lambda self: self.sums[Season.WINTER, Flux.ICE_MELT])
+    ice_melt_summer = property(lambda self: self.sums[Season.SUMMER, Flux.ICE_MELT])
+    rain_winter = property(lambda self: self.sums[Season.WINTER, Flux.RAIN])
+    rain_summer = property(lambda self: self.sums[Season.SUMMER, Flux.RAIN])
+    swe_end = property(lambda self: self.snow_end)
+    swe_initial = property(lambda self: self.state_initial[State.SNOW].astype("float32"))
+
+
+# ----------------------------------------------------------------------------
+# the processes: one small jitted function per published equation
+# ----------------------------------------------------------------------------
+
+@njit(inline="always", cache=True, error_model="numpy")
+def degree_day_factors(ddf_snow, ddf_ice):
+    """Melt factors of the classical degree-day method.
+
+    Parameters
+    ----------
+    ddf_snow, ddf_ice : float
+        Degree-day factors of snow and ice, mm w.e. d-1 K-1.
+
+    Returns
+    -------
+    f_snow, f_ice : float
+        The same factors on every cell and day, mm w.e. d-1 K-1.
+
+    References
+    ----------
+    Hock, R. (2003): Temperature index melt modelling in mountain areas. J. Hydrology 282,
+    104-115.
     """
-    n = dz.shape[0]
-    ns = warming.shape[0]
-    nd = t_st.shape[0]
-    span = rain_c - snow_c
-    w_lo = (1.0 - rad_w) * rad_scale     # interpolation weights with the storage scale folded in
-    w_hi = rad_w * rad_scale
-    for c in prange(n):
-        is_glacier = glacier[c]
-        for s in range(ns):
-            w = swe[s, c]
-            acc_w = acc_s = sm_w = sm_s = im_w = im_s = 0.0
-            for d in range(nd):
-                t = t_st[d] + lapse[d] * dz[c] + warming[s]
-                p = p_st[d] * orog[c] * pscale[s]
-                if t <= snow_c:
-                    snow = p
-                elif t >= rain_c:
-                    snow = 0.0
-                else:
-                    snow = p * (rain_c - t) / span
-                w += snow
-                smelt = 0.0
-                imelt = 0.0
-                if t > thr:
-                    if use_rad:
-                        rad = w_lo[d] * rad_values[rad_lo[d], c] + w_hi[d] * rad_values[rad_hi[d], c]
-                        fs = f_snow0 + a_snow * rad
-                        fi = f_ice0 + a_ice * rad
-                    else:
-                        fs = f_snow0
-                        fi = f_ice0
-                    dd = t - thr
-                    pot = fs * dd
-                    if w <= 0.0:
-                        left = dd
-                    elif pot > w:
-                        smelt = w
-                        left = dd * (1.0 - w / pot)
-                    else:
-                        smelt = pot
-                        left = 0.0
-                    if is_glacier:
-                        imelt = fi * left
-                    w -= smelt
-                if season[d] == 0:
-                    acc_w += snow
-                    sm_w += smelt
-                    im_w += imelt
-                else:
-                    acc_s += snow
-                    sm_s += smelt
-                    im_s += imelt
-            swe[s, c] = w
-            sums[s, 0, c] += acc_w
-            sums[s, 1, c] += sm_w
-            sums[s, 2, c] += im_w
-            sums[s, 3, c] += acc_s
-            sums[s, 4, c] += sm_s
-            sums[s, 5, c] += im_s
-            cum[s, c] += acc_w + acc_s - sm_w - sm_s - im_w - im_s
+    return ddf_snow, ddf_ice
 
 
-def _block_edges(n_days: int, year_index: np.ndarray, snapshot_days, max_block: int) -> list[int]:
-    """Day boundaries at which a block must end: year ends, snapshots, and every max_block days."""
-    edges = {0, n_days}
-    edges.update(int(i) for i in np.flatnonzero(np.diff(year_index)) + 1)
-    edges.update(int(k) for k in snapshot_days if 0 <= k <= n_days)
-    out = []
-    ordered = sorted(edges)
-    for a, b in zip(ordered[:-1], ordered[1:]):
-        out.extend(range(a, b, max_block))
-    out.append(n_days)
-    return out
+@njit(inline="always", cache=True, error_model="numpy")
+def hock1999_factors(melt_factor, radiation_factor_snow, radiation_factor_ice, radiation_w_m2):
+    """Melt factors of the radiation-enhanced temperature index (Hock 1999, eq. 2).
+
+    ``F = MF + a * I``: melt = F * (T - threshold) for T above the threshold.
+
+    Parameters
+    ----------
+    melt_factor : float
+        MF, mm w.e. d-1 K-1.
+    radiation_factor_snow, radiation_factor_ice : float
+        a_snow, a_ice, mm w.e. d-1 K-1 per W m-2.
+    radiation_w_m2 : float
+        I, daily mean potential clear-sky direct radiation at the cell, W m-2.
+
+    Returns
+    -------
+    f_snow, f_ice : float
+        Melt factors of snow and of ice for that cell and day, mm w.e. d-1 K-1.
+
+    References
+    ----------
+    Hock, R. (1999): A distributed temperature-index ice- and snowmelt model including
+    potential direct solar radiation. J. Glaciology 45(149), 101-111.
+    """
+    return (melt_factor + radiation_factor_snow * radiation_w_m2,
+            melt_factor + radiation_factor_ice * radiation_w_m2)
 
 
-def run_kernel(z_m: np.ndarray, glacier: np.ndarray, z_station_m: float,
-               temperature_c: np.ndarray, precipitation_mm: np.ndarray, month: np.ndarray,
-               day_of_year: np.ndarray, year_index: np.ndarray, winter: np.ndarray,
-               params: KernelParams, warming_k: Sequence[float] = (0.0,),
-               precip_change_pct: Sequence[float] = (0.0,), radiation=None,
-               snapshot_days: Sequence[int] | None = None,
+@njit(inline="always", cache=True, error_model="numpy")
+def snowfall_fraction(t, snow_c, rain_c, inv_span):
+    """Solid share of precipitation at temperature ``t`` (deg C), linear between the thresholds.
+
+    1 at or below ``snow_c``, 0 at or above ``rain_c``; ``inv_span`` = 1 / (rain_c - snow_c)
+    (0 when the two are equal). Common practice (e.g. Hock, 1999).
+    """
+    f = (rain_c - t) * inv_span
+    f = f if t < rain_c else 0.0
+    return 1.0 if t <= snow_c else f
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def snow_then_ice(snow, t, threshold_c, f_snow, f_ice, inv_f_snow, ice):
+    """One day of melt: the snowpack first, then glacier ice with the degree-days left.
+
+    Parameters
+    ----------
+    snow : float
+        Snowpack after the day's snowfall, mm w.e.
+    t, threshold_c : float
+        Air temperature and melt threshold, deg C.
+    f_snow, f_ice : float
+        Melt factors, mm w.e. d-1 K-1 (from the method's factor function).
+    inv_f_snow : float
+        1 / f_snow.
+    ice : float
+        1.0 where the surface is glacier ice, else 0.0.
+
+    Returns
+    -------
+    snow_melt, ice_melt : float
+        mm w.e.; the degree-days left once the snow is gone are
+        ``(T - threshold) - snow / f_snow`` (common practice in temperature-index models).
+    """
+    dd = max(t - threshold_c, 0.0)
+    pot = f_snow * dd
+    smelt = min(snow, pot)
+    left = dd - snow * inv_f_snow
+    left = left if pot > snow else 0.0
+    left = dd if snow <= 0.0 else left
+    return smelt, f_ice * left * ice
+
+
+# ----------------------------------------------------------------------------
+# the compiled core
+# ----------------------------------------------------------------------------
+
+# named groups passed into the compiled core (numba compiles namedtuples of arrays)
+CellArrays = namedtuple("CellArrays", "dz orog ice rad_values")
+DayArrays = namedtuple("DayArrays", "t_station p_station lapse month season year year_end "
+                                    "snapshot rad_lo rad_hi rad_w_lo rad_w_hi")
+ScenarioArrays = namedtuple("ScenarioArrays", "warming precip_scale")
+ParamValues = namedtuple("ParamValues", "snow_c rain_c inv_span threshold_c ddf_snow ddf_ice "
+                                        "inv_ddf_snow melt_factor rad_snow rad_ice")
+Targets = namedtuple("Targets", "state running cum sums snow_end snapshots")
+
+
+@njit(parallel=True, cache=True, error_model="numpy")
+def _advance(method, mode, carry, cells, days, t_block, p_block, scen, par, c_lo, c_hi, out):
+    """Advance cells ``c_lo .. c_hi-1`` over the days of ``days`` (see the module docstring).
+
+    ``mode`` is STATION or CELL (then ``t_block``/``p_block`` are (n_days, n_cells)
+    float32); ``carry``: load and store the running sums (cell mode, blocks cut years).
+    """
+    n_chunks = (c_hi - c_lo + CHUNK_CELLS - 1) // CHUNK_CELLS
+    n_tasks = (n_chunks + CHUNKS_PER_TASK - 1) // CHUNKS_PER_TASK
+    n_scen = scen.warming.shape[0]
+    n_days = days.month.shape[0]
+    n_nodes = cells.rad_values.shape[0] if method == Method.RADIATION else 1
+    for task in prange(n_tasks):
+        state = np.empty((N_STATE, CHUNK_CELLS))
+        run = np.empty((N_SEASON, N_FLUX, CHUNK_CELLS))
+        t_cells = np.empty(CHUNK_CELLS)      # cell mode: the day's forcing of the chunk
+        p_cells = np.empty(CHUNK_CELLS)
+        rad_chunk = np.zeros((n_nodes, CHUNK_CELLS))   # float64: converted once, not every day
+        for k in range(task * CHUNKS_PER_TASK, min(n_chunks, (task + 1) * CHUNKS_PER_TASK)):
+            c0 = c_lo + k * CHUNK_CELLS
+            m = min(CHUNK_CELLS, c_hi - c0)
+            if method == Method.RADIATION:
+                # the chunk's columns of the radiation table, read at once into cache (rows lie
+                # n_cells apart; read day by day they would stall the day loop)
+                for j in range(n_nodes):
+                    for i in range(m):
+                        rad_chunk[j, i] = cells.rad_values[j, c0 + i]
+            for s in range(n_scen):
+                _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out,
+                       c0, m, s, n_days, state, run, rad_chunk, t_cells, p_cells)
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _reciprocal(x):
+    """1 / x to about 1e-14 relative: a float32 division (packed, cheap) refined by one
+    Newton step in float64 (the packed float64 division would cost a third of the kernel)."""
+    r = np.float64(np.float32(1.0) / np.float32(x))
+    return r * (2.0 - x * r)
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _cell_day(st, acc, i, t, p, f_snow, f_ice, inv_f_snow, ice, par):
+    """The processes of one cell-day after downscaling, in order: the precipitation split,
+    snowfall onto the pack, melt of snow, then of glacier ice.
+
+    ``st`` holds the chunk's state rows and ``acc`` the running-sum rows of the day's season
+    (tuples of 1-d arrays over the chunk's cells, in :class:`State` and :class:`Flux` order,
+    see :func:`_rows`); cell ``i`` is updated. Branch-free, so the loop over the chunk's
+    cells that calls it compiles to packed SIMD code. A new process goes here: read and
+    write its state rows, add its flux rows.
+    """
+    snowfall = p * snowfall_fraction(t, par.snow_c, par.rain_c, par.inv_span)
+    snow = st[_SNOW][i] + snowfall
+    snow_melt, ice_melt = snow_then_ice(snow, t, par.threshold_c, f_snow, f_ice, inv_f_snow, ice)
+    st[_SNOW][i] = snow - snow_melt
+    acc[_SNOWFALL][i] += snowfall
+    acc[_RAIN][i] += p - snowfall
+    acc[_SNOW_MELT][i] += snow_melt
+    acc[_ICE_MELT][i] += ice_melt
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _state_rows(a):
+    """The rows of a chunk's state (N_STATE, cells) as a tuple of 1-d arrays, one per
+    :class:`State` (separate rows let the compiler see that the loop's stores do not
+    overlap, which it needs to vectorise)."""
+    return (a[_SNOW], a[_FIRN], a[_LIQUID], a[_COLD_CONTENT])
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _flux_rows(a):
+    """The rows of a season's running sums (N_FLUX, cells) as a tuple, one per :class:`Flux`."""
+    return (a[_SNOWFALL], a[_RAIN], a[_SNOW_MELT], a[_ICE_MELT])
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _balance(run, i):
+    """Balance of cell ``i`` of a chunk from its running sums: accumulation - ablation, mm w.e."""
+    b = 0.0
+    for q in range(N_SEASON):
+        b += run[q, _SNOWFALL, i] - run[q, _SNOW_MELT, i] - run[q, _ICE_MELT, i]
+    return b
+
+
+@njit(cache=True, error_model="numpy")
+def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c0, m, s, n_days,
+           state, run, rad_chunk, t_cells, p_cells):
+    """One chunk of ``m`` cells from ``c0`` and one scenario over all days of the call
+    (``rad_chunk``: the chunk's columns of the radiation table)."""
+    for j in range(N_STATE):
+        for i in range(m):
+            state[j, i] = out.state[j, s, c0 + i]
+    for q in range(N_SEASON):
+        for f in range(N_FLUX):
+            for i in range(m):
+                run[q, f, i] = out.running[q, f, s, c0 + i] if carry else 0.0
+    dz = cells.dz[c0:c0 + m]
+    orog = cells.orog[c0:c0 + m]
+    ice = cells.ice[c0:c0 + m]
+    st = _state_rows(state)
+    for d in range(n_days):
+        mo = days.month[d]
+        warm = scen.warming[s, mo]
+        pscale = scen.precip_scale[s, mo]
+        q = days.season[d]
+        acc = _flux_rows(run[q])
+        if mode == STATION:
+            # T = t0 + lapse * dz + warming, P = p0 * orog * scale (see the module docstring)
+            t0, lapse, p0 = days.t_station[d], days.lapse[d], days.p_station[d]
+            x_t, x_p = dz, orog
+        else:
+            # forcing at the cells: the same expressions with t0 = 0, lapse = 1, p0 = 1 (exact)
+            t0, lapse, p0 = 0.0, 1.0, 1.0
+            for i in range(m):
+                t_cells[i] = t_block[d, c0 + i]
+                p_cells[i] = p_block[d, c0 + i]
+            x_t, x_p = t_cells, p_cells
+        if method == Method.DEGREE_DAY:
+            f_snow, f_ice = degree_day_factors(par.ddf_snow, par.ddf_ice)
+            for i in range(m):
+                t = t0 + lapse * x_t[i] + warm
+                p = p0 * x_p[i] * pscale
+                _cell_day(st, acc, i, t, p, f_snow, f_ice, par.inv_ddf_snow, ice[i], par)
+        else:
+            r_lo, r_hi = rad_chunk[days.rad_lo[d]], rad_chunk[days.rad_hi[d]]
+            w_lo, w_hi = days.rad_w_lo[d], days.rad_w_hi[d]
+            for i in range(m):
+                t = t0 + lapse * x_t[i] + warm
+                p = p0 * x_p[i] * pscale
+                f_snow, f_ice = hock1999_factors(par.melt_factor, par.rad_snow, par.rad_ice,
+                                                 w_lo * r_lo[i] + w_hi * r_hi[i])
+                _cell_day(st, acc, i, t, p, f_snow, f_ice, _reciprocal(f_snow), ice[i], par)
+        if days.year_end[d]:
+            y = days.year[d]
+            for i in range(m):
+                out.cum[s, c0 + i] += _balance(run, i)
+                out.snow_end[s, y, c0 + i] = state[_SNOW, i]
+            for qq in range(N_SEASON):
+                for f in range(N_FLUX):
+                    for i in range(m):
+                        out.sums[qq, f, s, y, c0 + i] = run[qq, f, i]
+                        run[qq, f, i] = 0.0
+        k = days.snapshot[d]
+        if k >= 0:
+            for i in range(m):
+                out.snapshots[k, s, c0 + i] = out.cum[s, c0 + i] + _balance(run, i)
+    for j in range(N_STATE):
+        for i in range(m):
+            out.state[j, s, c0 + i] = state[j, i]
+    if carry:
+        for q in range(N_SEASON):
+            for f in range(N_FLUX):
+                for i in range(m):
+                    out.running[q, f, s, c0 + i] = run[q, f, i]
+
+
+# ----------------------------------------------------------------------------
+# the driver
+# ----------------------------------------------------------------------------
+
+def _day_arrays(calendar: Calendar, params: KernelParams, station: StationForcing | None,
+                radiation, snapshot_days: list[int]) -> DayArrays:
+    n_days = calendar.n_days
+    month0 = np.asarray(calendar.month, dtype=np.int64) - 1
+    lapse = np.asarray(params.lapse_rate_k_per_m, dtype="float64")
+    if lapse.shape != (12,):
+        raise ValueError("params.lapse_rate_k_per_m needs twelve monthly values")
+    year = np.ascontiguousarray(calendar.year_index, dtype=np.int64)
+    year_end = np.ones(n_days, dtype=np.bool_)
+    if n_days > 1:
+        year_end[:-1] = year[1:] != year[:-1]
+    snap = np.full(n_days, -1, dtype=np.int64)
+    for i, k in enumerate(snapshot_days):
+        if k > 0:
+            snap[k - 1] = i
+    if station is not None:
+        t_st = np.ascontiguousarray(station.temperature_c, dtype="float64")
+        p_st = np.ascontiguousarray(station.precipitation_mm, dtype="float64")
+    else:
+        t_st = p_st = np.zeros(n_days)
+    if radiation is not None:
+        lo, hi, w = radiation.node_weights(np.asarray(calendar.day_of_year))
+        scale = float(radiation.scale_w_m2)
+        w = np.asarray(w, dtype="float64")
+        w_lo, w_hi = (1.0 - w) * scale, w * scale     # weights with the storage scale folded in
+    else:
+        lo = hi = np.zeros(n_days, dtype=np.int64)
+        w_lo = w_hi = np.zeros(n_days)
+    season = np.where(np.asarray(calendar.winter, bool), int(Season.WINTER), int(Season.SUMMER))
+    return DayArrays(t_station=t_st, p_station=p_st, lapse=np.ascontiguousarray(lapse[month0]),
+                     month=np.ascontiguousarray(month0), season=season.astype(np.int64), year=year,
+                     year_end=year_end, snapshot=snap,
+                     rad_lo=np.ascontiguousarray(lo, dtype=np.int64),
+                     rad_hi=np.ascontiguousarray(hi, dtype=np.int64),
+                     rad_w_lo=np.ascontiguousarray(w_lo), rad_w_hi=np.ascontiguousarray(w_hi))
+
+
+def _param_values(params: KernelParams) -> ParamValues:
+    span = params.rain_c - params.snow_c
+
+    def inv(x):
+        return 1.0 / x if x != 0 else np.inf
+    return ParamValues(snow_c=float(params.snow_c), rain_c=float(params.rain_c),
+                       inv_span=1.0 / span if span > 0 else 0.0,
+                       threshold_c=float(params.threshold_c), ddf_snow=float(params.ddf_snow),
+                       ddf_ice=float(params.ddf_ice), inv_ddf_snow=float(inv(params.ddf_snow)),
+                       melt_factor=float(params.melt_factor),
+                       rad_snow=float(params.radiation_factor_snow),
+                       rad_ice=float(params.radiation_factor_ice))
+
+
+def _slice_days(days: DayArrays, a: int, b: int) -> DayArrays:
+    return DayArrays(*(np.ascontiguousarray(v[a:b]) for v in days))
+
+
+def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
+               scenarios: Scenarios | None = None, snapshot_days: Sequence[int] | None = None,
                progress: Callable[[int], None] | None = None) -> KernelResult:
     """Run the daily balance over a record.
 
     Parameters
     ----------
-    z_m : ndarray (n_cells,)
-        Cell elevations, m.
-    glacier : ndarray (n_cells,) bool
-        True where the cell carries glacier ice (ice melt allowed).
-    z_station_m : float
-        Station elevation, m.
-    temperature_c, precipitation_mm : ndarray (n_days,)
-        Station daily mean temperature, deg C, and daily precipitation, mm.
-    month, day_of_year, year_index : ndarray (n_days,) int
-        Calendar month 1..12, day of year 1..366 and balance-year index 0..n_years-1.
-    winter : ndarray (n_days,) bool
-        Winter season of the fixed-date system.
+    cells : Cells
+        Per-cell inputs (elevation, glacier ice, radiation table).
+    calendar : Calendar
+        Per-day calendar.
+    forcing : StationForcing or CellForcing
+        Station mode (downscaled here) or cell mode (``block(a, b) -> (t, p)``); see the
+        module docstring.
     params : KernelParams
-    warming_k : sequence of float
-        One uniform warming (K) per scenario, added to the station temperature.
-    precip_change_pct : sequence of float
-        One precipitation change (%) per scenario, same length as ``warming_k``.
-    radiation : object with ``values`` (n_nodes, n_cells), ``scale_w_m2`` and
-        ``node_weights(doys) -> (i_lo, i_hi, w)``, optional
-        Potential direct radiation table over the same cells (see
-        :class:`firnline.radiation.RadiationTable`); required when
-        ``params.use_radiation``.
+    scenarios : Scenarios, optional
+        Default: one scenario with no change.
     snapshot_days : sequence of int, optional
-        Day boundaries k (0..n_days) at which to record the cumulative balance of
-        every cell after k days (for balances over arbitrary periods).
+        Day boundaries k (0..n_days) at which to record the cumulative balance of every
+        cell after k days (for balances over arbitrary periods).
     progress : callable, optional
-        Called with the number of days done after each block of days.
+        Called with the number of days done (in station mode, the share of cells done
+        times the number of days) after each step.
 
     Returns
     -------
     KernelResult
     """
-    z = np.ascontiguousarray(z_m, dtype="float64")
-    n = z.shape[0]
-    warming = np.asarray(warming_k, dtype="float64")
-    pscale = 1.0 + np.asarray(precip_change_pct, dtype="float64") / 100.0
-    if warming.shape != pscale.shape:
-        raise ValueError("warming_k and precip_change_pct need one value per scenario each")
-    if np.any(pscale < 0):
-        raise ValueError("a precipitation change below -100 % is impossible")
-    ns = warming.shape[0]
-    n_years = int(year_index.max()) + 1 if len(year_index) else 0
-    dz = z - z_station_m
-    orog = params.precip_factor * np.maximum(0.0, 1.0 + params.precip_gradient_per_m * dz)
-    glacier = np.ascontiguousarray(glacier, dtype=np.bool_)
-    lapse = np.asarray(params.lapse_rate_k_per_m, dtype="float64")
-    if lapse.shape != (12,):
-        raise ValueError("params.lapse_rate_k_per_m needs twelve monthly values")
-    use_rad = bool(params.use_radiation)
-    if use_rad:
-        if radiation is None:
-            raise ValueError("the radiation method needs a radiation table")
-        f_snow0 = f_ice0 = params.melt_factor
-        a_snow, a_ice = params.radiation_factor_snow, params.radiation_factor_ice
-        scale = float(radiation.scale_w_m2)
-    else:
-        f_snow0, f_ice0 = params.ddf_snow, params.ddf_ice
-        a_snow = a_ice = 0.0
-        scale = 1.0
-
-    swe = np.zeros((ns, n), dtype="float64")
-    swe_initial = swe.astype("float32")
-    sums = np.zeros((ns, 2 * N_TERMS, n), dtype="float64")
-    cum = np.zeros((ns, n), dtype="float64")
-    out = np.zeros((2 * N_TERMS, ns, n_years, n), dtype="float32")
-    swe_end = np.zeros((ns, n_years, n), dtype="float32")
-    n_days = len(temperature_c)
+    scenarios = scenarios if scenarios is not None else Scenarios.uniform()
+    n = cells.n
+    ns = scenarios.n
+    n_days = calendar.n_days
+    n_years = calendar.n_years
+    station = forcing if isinstance(forcing, StationForcing) else None
+    if station is None and not hasattr(forcing, "block"):
+        raise TypeError("forcing must be a StationForcing or have a block(a, b) method")
+    method = Method(params.method)
+    if method == Method.RADIATION and cells.radiation is None:
+        raise ValueError("the radiation method needs a radiation table")
     snaps = sorted(set(int(k) for k in snapshot_days)) if snapshot_days is not None else []
     if any(k < 0 or k > n_days for k in snaps):
         raise ValueError("snapshot days must lie within 0..n_days")
-    snap_arr = np.zeros((len(snaps), ns, n), dtype="float64") if snaps else None
-    snap_pos = {k: i for i, k in enumerate(snaps)}
 
-    t_st = np.ascontiguousarray(temperature_c, dtype="float64")
-    p_st = np.ascontiguousarray(precipitation_mm, dtype="float64")
-    lapse_d = lapse[np.asarray(month, dtype=np.int64) - 1]
-    season = np.where(np.asarray(winter, bool), 0, 1).astype(np.int64)
-    if use_rad:
-        rad_values = radiation.values             # (n_nodes, n_cells)
-        rad_lo, rad_hi, rad_w = radiation.node_weights(np.asarray(day_of_year))
+    z = np.ascontiguousarray(cells.z_m, dtype="float64")
+    if station is not None:
+        dz = z - float(station.elevation_m)
+        orog = params.precip_factor * np.maximum(0.0, 1.0 + params.precip_gradient_per_m * dz)
     else:
-        rad_values = np.zeros((1, 1), dtype="float32")
-        rad_lo = rad_hi = np.zeros(n_days, dtype=np.int64)
-        rad_w = np.zeros(n_days)
-    rad_lo = np.ascontiguousarray(rad_lo, dtype=np.int64)
-    rad_hi = np.ascontiguousarray(rad_hi, dtype=np.int64)
-    rad_w = np.ascontiguousarray(rad_w, dtype="float64")
-    edges = _block_edges(n_days, np.asarray(year_index), snaps, BLOCK_DAYS)
-    if 0 in snap_pos:
-        snap_arr[snap_pos[0]] = cum
-    for a, b in zip(edges[:-1], edges[1:]):
-        sl = slice(a, b)
-        _block(dz, orog, glacier, rad_values, scale, use_rad, t_st[sl], p_st[sl], lapse_d[sl],
-               season[sl], rad_lo[sl], rad_hi[sl], rad_w[sl], warming, pscale,
-               params.snow_c, params.rain_c, params.threshold_c, f_snow0, f_ice0, a_snow, a_ice,
-               swe, sums, cum)
-        if b in snap_pos:
-            snap_arr[snap_pos[b]] = cum
-        if b == n_days or year_index[b] != year_index[b - 1]:
-            y = int(year_index[b - 1])
-            for k in range(2 * N_TERMS):
-                out[k, :, y, :] = sums[:, k, :]
-            swe_end[:, y, :] = swe
-            sums[:] = 0.0
-        if progress is not None:
-            progress(b)
+        dz = orog = np.zeros(n)
+    rad = cells.radiation if method == Method.RADIATION else None
+    rad_values = rad.values if rad is not None else np.zeros((1, n), dtype="float32")
+    cell_arrays = CellArrays(dz=dz, orog=np.ascontiguousarray(orog),
+                             ice=np.ascontiguousarray(cells.ice, dtype=np.bool_).astype("float64"),
+                             rad_values=np.ascontiguousarray(rad_values))
+    days = _day_arrays(calendar, params, station, rad, snaps)
+    par = _param_values(params)
+    scen = ScenarioArrays(warming=scenarios.warming_k, precip_scale=scenarios.precip_scale)
 
-    return KernelResult(acc_winter=out[ACC], acc_summer=out[N_TERMS + ACC],
-                        snow_melt_winter=out[SNOW_MELT], snow_melt_summer=out[N_TERMS + SNOW_MELT],
-                        ice_melt_winter=out[ICE_MELT], ice_melt_summer=out[N_TERMS + ICE_MELT],
-                        swe_end=swe_end, swe_initial=swe_initial, snapshots=snap_arr)
+    state = np.zeros((N_STATE, ns, n), dtype="float64")
+    state_initial = state.copy()
+    carry = station is None
+    out = Targets(state=state,
+                  running=np.zeros((N_SEASON, N_FLUX, ns, n) if carry else (N_SEASON, N_FLUX, 1, 1)),
+                  cum=np.zeros((ns, n)),
+                  sums=np.zeros((N_SEASON, N_FLUX, ns, n_years, n), dtype="float32"),
+                  snow_end=np.zeros((ns, n_years, n), dtype="float32"),
+                  snapshots=np.zeros((max(len(snaps), 1), ns, n)))
+    # a snapshot at boundary 0 is the zero balance before the first day (already zero)
+    empty2 = np.zeros((1, 1), dtype="float32")
+    if n and n_days:
+        if station is not None:
+            for c_lo in range(0, n, GROUP_CELLS):
+                c_hi = min(n, c_lo + GROUP_CELLS)
+                _advance(int(method), STATION, False, cell_arrays, days, empty2, empty2, scen, par,
+                         c_lo, c_hi, out)
+                if progress is not None:
+                    progress(int(n_days * c_hi // n))
+        else:
+            step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
+            for a in range(0, n_days, step):
+                b = min(n_days, a + step)
+                t, p = forcing.block(a, b)
+                t = np.ascontiguousarray(t, dtype="float32")
+                p = np.ascontiguousarray(p, dtype="float32")
+                if t.shape != (b - a, n) or p.shape != (b - a, n):
+                    raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
+                _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen,
+                         par, 0, n, out)
+                if progress is not None:
+                    progress(b)
+    return KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
+                        state_final=out.state, snapshots=out.snapshots if snaps else None)

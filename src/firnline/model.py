@@ -31,7 +31,7 @@ from .config import Config
 from .forcing import Forcing, read_station
 from .glaciers import Glaciers
 from .grid import Grid, file_checksum, read_dem
-from .kernel import KernelParams, KernelResult, run_kernel
+from .kernel import Calendar, Cells, KernelParams, KernelResult, Scenarios, StationForcing, run_kernel
 from .metrics import YearMetrics, glacier_year
 from .progress import Progress, stage
 from .provenance import CAUTION
@@ -269,7 +269,8 @@ def terrain(config: Config, progress: Progress = None) -> TerrainResult:
 
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
              precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
-             snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None) -> KernelResult:
+             snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
+             scenarios: Scenarios | None = None) -> KernelResult:
     """Run the kernel on a prepared setup.
 
     Parameters
@@ -280,13 +281,15 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         it may differ from ``setup.config`` only in the kernel parameters
         (:func:`check_config`).
     warming_k, precip_change_pct : sequences of equal length
-        One scenario per pair (K, %).
+        One uniform scenario per pair (K, %).
     progress : callable(label, done, total), optional
         Reports the days done (label ``"days"``).
     snapshot_days : day boundaries at which to keep the cumulative balance (see kernel).
     cells : ndarray of int, optional
         Positions (into ``setup.cells`` order, ascending) to restrict the run to
         (:meth:`Setup.select`).
+    scenarios : firnline.kernel.Scenarios, optional
+        Monthly scenarios; replaces ``warming_k`` and ``precip_change_pct`` when given.
     """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
@@ -295,9 +298,11 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     f = setup.forcing
     if params.use_radiation and setup.radiation is None:
         raise RuntimeError("the setup was prepared without the radiation table")
-    return run_kernel(setup.z_m, setup.glacier_mask, cfg.climate.station_elevation_m, f.temperature_c,
-                      f.precipitation_mm, f.month, f.day_of_year, f.year_index, f.winter, params, warming_k,
-                      precip_change_pct, radiation=setup.radiation, snapshot_days=snapshot_days,
+    if scenarios is None:
+        scenarios = Scenarios.uniform(warming_k, precip_change_pct)
+    forcing = StationForcing(f.temperature_c, f.precipitation_mm, cfg.climate.station_elevation_m)
+    return run_kernel(Cells(setup.z_m, setup.glacier_mask, setup.radiation if params.use_radiation else None),
+                      Calendar.from_forcing(f), forcing, params, scenarios, snapshot_days=snapshot_days,
                       progress=stage(progress, "days", f.n_days))
 
 

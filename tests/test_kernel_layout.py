@@ -36,7 +36,7 @@ def reference(z, ice, z_station, T, P, month, doy, year, winter, p, warming_k, p
     snow_end = np.zeros((ns, n_years, n))
     cum = np.zeros((ns, n))
     snaps = {0: cum.copy()}
-    use_rad = p.method == Method.RADIATION
+    use_rad = p.code == Method.RADIATION
     if use_rad:
         lo, hi, wgt = radiation.node_weights(doy)
     for d in range(T.size):

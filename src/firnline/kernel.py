@@ -132,9 +132,14 @@ class Method(IntEnum):
     RADIATION = 1    #: :func:`hock1999_factors`
 
     @classmethod
-    def from_name(cls, name: str) -> "Method":
+    def from_name(cls, name: "str | Method") -> "Method":
         """The method of a config name (``"degree-day"``, ``"radiation"``)."""
-        return cls[name.upper().replace("-", "_")]
+        return name if isinstance(name, Method) else cls[name.upper().replace("-", "_")]
+
+    @property
+    def config_name(self) -> str:
+        """The name ``[melt] method`` gives it."""
+        return self.name.lower().replace("_", "-")
 
 
 class State(IntEnum):
@@ -203,7 +208,9 @@ class KernelParams:
     ddf_snow, ddf_ice : mm w.e. d-1 K-1 (degree-day method)
     melt_factor : mm w.e. d-1 K-1 (radiation method)
     radiation_factor_snow, radiation_factor_ice : mm w.e. d-1 K-1 per W m-2
-    method : Method
+    method : str
+        The ``[melt] method`` name (a :class:`Method` is accepted and stored by its name);
+        :attr:`code` is the :class:`Method` the kernel dispatches on.
     """
 
     lapse_rate_k_per_m: tuple
@@ -217,25 +224,27 @@ class KernelParams:
     melt_factor: float = 0.0
     radiation_factor_snow: float = 0.0
     radiation_factor_ice: float = 0.0
-    method: Method = Method.DEGREE_DAY
+    method: str = "degree-day"
+
+    def __post_init__(self):
+        object.__setattr__(self, "method", Method.from_name(self.method).config_name)
+
+    @property
+    def code(self) -> Method:
+        """The melt method the kernel dispatches on."""
+        return Method.from_name(self.method)
 
     @property
     def use_radiation(self) -> bool:
         """True for the radiation method (it needs a radiation table)."""
-        return self.method == Method.RADIATION
+        return self.code == Method.RADIATION
 
     @classmethod
     def from_config(cls, cfg) -> "KernelParams":
-        """The one mapping from a config's ``[downscaling]`` and ``[melt]`` to the kernel."""
-        d, m = cfg.downscaling, cfg.melt
-        return cls(lapse_rate_k_per_m=d.monthly_lapse_rates(),
-                   precip_gradient_per_m=d.precip_gradient_per_m, precip_factor=d.precip_factor,
-                   snow_c=d.snow_rain_range_c[0], rain_c=d.snow_rain_range_c[1],
-                   threshold_c=m.threshold_c, ddf_snow=m.ddf_snow_mm_per_day_k,
-                   ddf_ice=m.ddf_ice_mm_per_day_k, melt_factor=m.melt_factor_mm_per_day_k,
-                   radiation_factor_snow=m.radiation_factor_snow,
-                   radiation_factor_ice=m.radiation_factor_ice,
-                   method=Method.from_name(m.method))
+        """The one mapping from a config to the kernel: the parameter registry's kernel names
+        (:func:`firnline.parameters.kernel_values`)."""
+        from .parameters import kernel_values
+        return cls(**kernel_values(cfg))
 
 
 @dataclass(frozen=True)
@@ -752,7 +761,7 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     station = forcing if isinstance(forcing, StationForcing) else None
     if station is None and not hasattr(forcing, "block"):
         raise TypeError("forcing must be a StationForcing or have a block(a, b) method")
-    method = Method(params.method)
+    method = params.code
     if method == Method.RADIATION and cells.radiation is None:
         raise ValueError("the radiation method needs a radiation table")
     snaps = sorted(set(int(k) for k in snapshot_days)) if snapshot_days is not None else []

@@ -185,7 +185,7 @@ def kernel_values(cfg) -> dict[str, Any]:
 
     ``monthly`` parameters give twelve values (January first); a ``pair`` gives its two
     names; parameters without a kernel name (``transmissivity`` shapes the radiation
-    table, not the kernel) give none. The melt method is given as ``use_radiation``.
+    table, not the kernel) give none. The melt method is given by its config name as ``method``.
 
     Parameters
     ----------
@@ -195,7 +195,7 @@ def kernel_values(cfg) -> dict[str, Any]:
     -------
     dict
         For example ``{"lapse_rate_k_per_m": (-0.0065,) * 12, "snow_c": 0.5, ...,
-        "ddf_snow": 3.0, ..., "use_radiation": False}``.
+        "ddf_snow": 3.0, ..., "method": "degree-day"}``.
     """
     out: dict[str, Any] = {}
     for p in PARAMETERS:
@@ -206,5 +206,5 @@ def kernel_values(cfg) -> dict[str, Any]:
             out.update(zip(p.kernel, (float(v) for v in value)))
         elif p.kernel:
             out[p.kernel[0]] = float(value)
-    out["use_radiation"] = cfg.melt.method == "radiation"
+    out["method"] = cfg.melt.method
     return out

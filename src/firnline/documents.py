@@ -23,7 +23,9 @@ from .page import Page
 UNIT = "m w.e."
 
 INPUT_LABELS = {"dem": "DEM", "outlines": "glacier outlines", "station": "climate station record",
-                "config": "config file"}
+                "config": "config file", "point_balances": "point balances (stakes, snow probing)",
+                "glacier_balances": "glacier-wide balances", "snowlines": "snowlines",
+                "discharge": "discharge record"}
 
 
 # ----------------------------------------------------------------------------
@@ -57,16 +59,18 @@ def _show(v) -> str:
     return str(v)
 
 
-def parameter_sources(config: Config) -> pd.DataFrame:
+def parameter_sources(config: Config, fitted: set | None = None) -> pd.DataFrame:
     """Every setting of the config with its value and where it came from.
 
-    ``source`` is ``calibration`` for a key that a calibration fitted (the config is a
-    calibrated.toml), ``config`` for a key written in the config file, ``default`` for
-    a key left out (its value is the default of :data:`firnline.config.SCHEMA`). Paths
-    (listed with the inputs) and the ``[calibration]`` and ``[observations]`` sections
-    are left out.
+    ``source`` is ``calibration`` for a key that a calibration fitted (``fitted``, or
+    by default the keys named in the header of a calibrated.toml), ``config`` for a key
+    written in the config file, ``default`` for a key left out (its value is the default
+    of :data:`firnline.config.SCHEMA`). Model parameters add their unit and published
+    source from the registry (:mod:`firnline.parameters`). Paths (listed with the
+    inputs) and the ``[calibration]`` and ``[observations]`` sections are left out.
     """
-    fitted = fitted_keys(config)
+    from . import parameters as registry
+    fitted = fitted_keys(config) if fitted is None else set(fitted)
     rows = []
     for section, keys in SCHEMA.items():
         if section in ("calibration", "observations", "site"):
@@ -88,26 +92,47 @@ def parameter_sources(config: Config) -> pd.DataFrame:
             else:
                 source = "default"
             same = default is not REQUIRED and default is not None and _show(default) == _show(value)
-            rows.append([f"[{section}] {key}", _show(value), source,
+            par = registry.get(key)
+            rows.append([f"[{section}] {key}", _show(value), par.unit if par else "", source,
                          "" if default in (REQUIRED, None) else _show(default),
-                         "yes" if same else ("" if default in (REQUIRED, None) else "no")])
-    return pd.DataFrame(rows, columns=["setting", "value", "source", "default", "equals default"])
+                         "yes" if same else ("" if default in (REQUIRED, None) else "no"),
+                         par.source if par else ""])
+    return pd.DataFrame(rows, columns=["setting", "value", "unit", "source", "default", "equals default",
+                                       "published source of the default"])
 
 
 # ----------------------------------------------------------------------------
 # shared sections
 # ----------------------------------------------------------------------------
 
-def inputs_table(config: Config, checksums: dict) -> pd.DataFrame:
-    paths = {"dem": config.dem.path, "station": config.climate.station_file, "config": config.source}
+def input_paths(config: Config) -> dict:
+    """The input files the config names, by kind (DEM, outlines, station, observations, config)."""
+    paths = {"dem": config.dem.path, "station": config.climate.station_file}
     if config.glaciers is not None:
         paths["outlines"] = config.glaciers.outlines
+    obs = getattr(config, "observations", None)
+    for key in ("point_balances", "glacier_balances", "snowlines", "discharge"):
+        if obs is not None and getattr(obs, key, None):
+            paths[key] = getattr(obs, key)
+    if config.source is not None:
+        paths["config"] = config.source
+    return paths
+
+
+def inputs_table(config: Config, checksums: dict) -> pd.DataFrame:
+    paths = input_paths(config)
     rows = [[INPUT_LABELS.get(k, k), str(paths.get(k, "")), v] for k, v in checksums.items()]
     return pd.DataFrame(rows, columns=["input", "file", "SHA-256"])
 
 
+def input_checksums(config: Config) -> dict:
+    """SHA-256 of every input file the config names."""
+    from .grid import file_checksum
+    return {k: file_checksum(Path(p)) for k, p in input_paths(config).items() if p and Path(p).is_file()}
+
+
 def _common_tail(page: Page, config: Config, checksums: dict, notes: Sequence[str],
-                 warnings: Sequence[str] = ()) -> None:
+                 warnings: Sequence[str] = (), fitted: set | None = None) -> None:
     page.section("Inputs")
     page.paragraph("The files this result was computed from, with their SHA-256 checksums (a changed file "
                    "gives a different checksum).")
@@ -115,7 +140,7 @@ def _common_tail(page: Page, config: Config, checksums: dict, notes: Sequence[st
     page.section("Parameters")
     page.paragraph("Every setting in force and where it came from: written in the config file, left at "
                    "firnline's default, or fitted by a calibration (a calibrated.toml).")
-    page.table(parameter_sources(config))
+    page.table(parameter_sources(config, fitted))
     page.section("Notes and warnings")
     if warnings:
         page.subsection("Warnings")
@@ -276,7 +301,9 @@ def sweep_document(result, figures: Sequence[tuple[str, bytes, str]], files: Seq
     page.subsection("Sensitivity per glacier")
     page.table(result.sensitivity, digits={"dela_dt_m_per_k": 0, "dbalance_dt_mwe_per_k": 3},
                headers={"dela_dt_m_per_k": "dELA/dT (m per K)",
-                        "dbalance_dt_mwe_per_k": f"dB/dT ({UNIT} per K)"})
+                        "dbalance_dt_mwe_per_k": f"dB/dT ({UNIT} per K)", "n_warming_steps": "warming steps",
+                        "n_ela_years_used": "years used for dELA/dT",
+                        "n_ela_years_excluded": "years left out", "note": "note"})
     page.section("Figures")
     for name, png, caption in figures:
         page.figure(png, name, f"{name}: {caption}")
@@ -284,6 +311,7 @@ def sweep_document(result, figures: Sequence[tuple[str, bytes, str]], files: Seq
     page.table(result.table, digits={"mean_annual_balance_mwe": 2, "ela_m": 0, "aar": 2, "ela_shift_m": 0,
                                      "warming_k": 2, "precip_change_pct": 1},
                headers={"mean_annual_balance_mwe": f"mean annual balance ({UNIT})", "ela_m": "mean ELA (m)",
+                        "aar": "mean AAR",
                         "ela_shift_m": "ELA shift (m)", "warming_k": "warming (K)",
                         "precip_change_pct": "precipitation change (%)"})
     page.subsection("Rules of the means and slopes")
@@ -299,7 +327,8 @@ def sweep_document(result, figures: Sequence[tuple[str, bytes, str]], files: Seq
 # ----------------------------------------------------------------------------
 
 def calibration_document(result, fit_png: bytes | None, files: Sequence[str], caution: str) -> str:
-    """The HTML of ``calibration_report.html``."""
+    """The HTML of ``calibration_report.html``: the fit, its figure, the residuals, the
+    inputs (with the observation files), and the fitted config's parameters."""
     cfg = result.config
     page = _page(cfg, "Calibration", f"{result.n_obs} observations · {len(result.value)} fitted "
                  f"parameter{'s' if len(result.value) != 1 else ''}", caution)
@@ -325,9 +354,10 @@ def calibration_document(result, fit_png: bytes | None, files: Sequence[str], ca
     page.section("Residuals")
     rec = result.records
     page.table(rec, digits={c: 3 for c in rec.columns if rec[c].dtype.kind == "f"})
-    setup = getattr(result, "setup", None)
-    checksums = getattr(setup, "checksums", None) or {}
-    _common_tail(page, cfg, checksums, list(result.notes), warnings=list(result.warnings))
+    page.paragraph("The parameters below are those of calibrated.toml: the fitted values are marked "
+                   "calibration; the rest are as the config gave them or firnline's defaults.")
+    _common_tail(page, result.fitted, input_checksums(cfg), list(result.notes), warnings=list(result.warnings),
+                 fitted=set(result.value) | set(result.tied))
     page.section("Files")
     page.notes(sorted(files))
     return page.render()

@@ -41,6 +41,7 @@ from dataclasses import dataclass, field
 from typing import Sequence
 
 import numpy as np
+from matplotlib import patheffects
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import LineCollection
 from matplotlib.colors import LightSource, Normalize
@@ -58,6 +59,8 @@ MAX_DETAIL_VIEWS = 12
 """Most glaciers with a map of their own (the largest by area)."""
 
 CMAP = "RdBu"
+_HALO = [patheffects.withStroke(linewidth=2.5, foreground="white")]       # readable on dark relief
+_HALO_LINE = [patheffects.withStroke(linewidth=3.2, foreground="white")]
 SEASONS = (("annual_balance", "annual balance"), ("winter_balance", "winter balance"),
            ("summer_balance", "summer balance"))
 
@@ -205,10 +208,10 @@ class BalanceMaps:
         aspect_ratio = (self.extent[3] - self.extent[2]) / max(self.extent[1] - self.extent[0], 1e-9)
         panel_w = 3.6
         panel_h = min(max(panel_w * aspect_ratio, 1.8), 5.0)
-        fig_h = panel_h + 1.05
+        fig_h = panel_h + 1.15
         self.fig = Figure(figsize=(3 * panel_w + 1.2, fig_h), dpi=100)
         FigureCanvasAgg(self.fig)
-        top = 1 - 0.5 / fig_h
+        top = 1 - 0.6 / fig_h
         bottom = 0.5 / fig_h
         self.fig.subplots_adjust(left=0.075, right=0.915, top=top, bottom=bottom, wspace=0.06)
         self.axes = self.fig.subplots(1, 3, sharex=True, sharey=True)
@@ -290,10 +293,10 @@ class BalanceMaps:
         n = math.hypot(dxf, dyf) / L
         dxf, dyf = dxf / n, dyf / n
         arrow = ax.annotate("", xy=(ax_x + dxf / 2, ax_y + dyf / 2), xytext=(ax_x - dxf / 2, ax_y - dyf / 2),
-                    xycoords="axes fraction", arrowprops=dict(arrowstyle="-|>", color="black", lw=1.2),
-                    zorder=6)
+                    xycoords="axes fraction", arrowprops=dict(arrowstyle="-|>", color="black", lw=1.2,
+                                                              path_effects=_HALO_LINE), zorder=6)
         label = ax.text(ax_x + dxf / 2, ax_y + dyf / 2 + 0.02, "N", transform=ax.transAxes, ha="center",
-                        va="bottom", fontsize=8, fontweight="bold", zorder=6)
+                        va="bottom", fontsize=8, fontweight="bold", zorder=6, path_effects=_HALO)
         return [arrow, label]
 
     def draw(self, period_label: str, seasons: dict[str, np.ndarray],

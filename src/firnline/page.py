@@ -45,6 +45,7 @@ th, td { padding: .22rem .6rem; border-bottom: 1px solid var(--rule); text-align
 th { background: var(--band); font-weight: 600; border-bottom: 1.5px solid #aab3ba; max-width: 8.5rem;
      vertical-align: bottom; }
 td.num { text-align: right; white-space: nowrap; }
+td.short { white-space: nowrap; }
 th.num { text-align: right; }
 tr.total td { font-weight: 600; border-top: 1.5px solid #aab3ba; }
 td.hash { font-family: "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: .75rem; word-break: break-all; }
@@ -147,8 +148,10 @@ class Page:
             cls = ' class="total"' if total_rows is not None and total_rows[i] else ""
             cells = []
             for c, v in zip(df.columns, r):
-                klass = "num" if numeric[c] else ("hash" if c in hash_columns else "")
-                cells.append(f'<td class="{klass}">{_esc(cell_text(v, digits.get(c, 3)))}</td>')
+                text = cell_text(v, digits.get(c, 3))
+                klass = "num" if numeric[c] else ("hash" if c in hash_columns else
+                                                  ("short" if len(text) <= 24 else ""))
+                cells.append(f'<td class="{klass}">{_esc(text)}</td>')
             rows.append(f"<tr{cls}>{''.join(cells)}</tr>")
         self.parts.append(f'<div class="scroll"><table><thead><tr>{head}</tr></thead>'
                           f'<tbody>{"".join(rows)}</tbody></table></div>')

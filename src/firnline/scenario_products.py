@@ -21,9 +21,13 @@ def map_name(warming_k: float, precip_change_pct: float) -> str:
     return f"mean_annual_balance_{scenario_label(warming_k, precip_change_pct)}.tif"
 
 
-def write_sweep(result: Sweep, out_dir: Path) -> list[Path]:
-    """Write every product of a sweep into ``out_dir``, all or nothing."""
-    from .report import balance_figure, ela_figure, profile_figure, save_png  # matplotlib: only here
+def write_sweep(result: Sweep, out_dir: Path, report: bool = True) -> list[Path]:
+    """Write every product of a sweep into ``out_dir``, all or nothing.
+
+    With ``report`` (the default) ``scenarios_report.html`` is written too: the sweep's
+    tables and figures on one self-contained page (:func:`firnline.documents.sweep_document`).
+    """
+    from .report import balance_figure, ela_figure, profile_figure  # matplotlib: only here
     setup, cfg = result.setup, result.config
     grid = setup.grid
     years = result.years
@@ -41,11 +45,34 @@ def write_sweep(result: Sweep, out_dir: Path) -> list[Path]:
         figures = [("ela_vs_warming.png", ela_figure(result.table, result.flags, result.glaciers, years, site)),
                    ("balance_vs_warming.png", balance_figure(result.table, result.glaciers, years, site)),
                    ("balance_profiles.png", profile_figure(result.profiles, result.glaciers, years, site))]
+        pngs = []
         for name, fig in figures:
-            save_png(fig, st.path(name))
+            png = _png(fig)
+            st.path(name).write_bytes(png)
+            pngs.append((name, png, FIGURE_CAPTIONS[name]))
+        if report:
+            from .documents import sweep_document
+            files = list(st.names) + ["scenarios_report.html", "scenarios.json"]
+            st.path("scenarios_report.html").write_text(
+                sweep_document(result, pngs, files, provenance.CAUTION, list(RULES)), encoding="utf-8")
         path = st.path("scenarios.json")
         write_json(path, sweep_json(result, list(st.names)))
     return [Path(out_dir) / n for n in st.names]
+
+
+FIGURE_CAPTIONS = {
+    "ela_vs_warming.png": "mean ELA against warming, one panel per glacier, one line per precipitation change.",
+    "balance_vs_warming.png": "mean annual balance against warming, one panel per precipitation change.",
+    "balance_profiles.png": "balance profiles of the record-mean balance, one line per scenario.",
+}
+
+
+def _png(fig, dpi: int = 150) -> bytes:
+    """PNG bytes of a figure (the resolution :func:`firnline.report.save_png` uses)."""
+    import io
+    buf = io.BytesIO()
+    fig.savefig(buf, dpi=dpi, format="png")
+    return buf.getvalue()
 
 
 def sweep_json(result: Sweep, files: list[str]) -> dict:

@@ -85,8 +85,10 @@ def fit_table(result: CalibrationResult) -> str:
     return "\n".join(lines)
 
 
-def write_calibration(result: CalibrationResult, out_dir: str | Path) -> list[Path]:
-    """Write calibration.json, calibration_residuals.csv, calibration_fit.png and calibrated.toml.
+def write_calibration(result: CalibrationResult, out_dir: str | Path, report: bool = True) -> list[Path]:
+    """Write calibration.json, calibration_residuals.csv, calibration_fit.png and calibrated.toml,
+    and with ``report`` (the default) calibration_report.html
+    (:func:`firnline.documents.calibration_document`).
 
     All or nothing (staged); returns the written paths.
     """
@@ -99,6 +101,14 @@ def write_calibration(result: CalibrationResult, out_dir: str | Path) -> list[Pa
         write_csv(st.path("calibration_residuals.csv"), result.records, float_format="%.10g")
         save_png(fit_figure(result), st.path("calibration_fit.png"), dpi=120)
         st.path("calibrated.toml").write_text(text, encoding="utf-8")
+        if report:
+            from ..documents import calibration_document
+            from ..provenance import CAUTION
+            fit = st.path("calibration_fit.png")
+            files = list(st.names) + ["calibration_report.html", "calibration.json"]
+            st.path("calibration_report.html").write_text(
+                calibration_document(result, fit.read_bytes() if fit.exists() else None, files, CAUTION),
+                encoding="utf-8")
         write_json(st.path("calibration.json"), dict(result.to_json(), files=list(st.names)
                                                      + ["calibration.json"]))
     return [out_dir / n for n in st.names]

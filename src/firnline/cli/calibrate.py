@@ -12,6 +12,7 @@ def add_parser(sub) -> None:
                                    "calibration.json, calibration_residuals.csv, calibration_fit.png "
                                    "and calibrated.toml (the config with the fitted values).")
     add_common(p)
+    p.add_argument("--no-report", action="store_true", help="skip calibration_report.html")
     p.set_defaults(func=main)
 
 
@@ -24,7 +25,7 @@ def main(args) -> int:
         result = calibrate(cfg, progress=progress_bars(args.quiet))
         for note in result.notes:
             say(args, note)
-        files = write_calibration(result, out)
+        files = write_calibration(result, out, report=not args.no_report)
     print(fit_table(result))
     say(args, f"wrote {len(files)} files to {out}; run the fitted model with: firnline run "
               f"{out / 'calibrated.toml'}")

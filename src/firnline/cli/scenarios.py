@@ -26,6 +26,7 @@ def add_parser(sub) -> None:
                    help="uniform warmings added to the station temperature, K (one or more; required)")
     p.add_argument("--precip-change", nargs="*", metavar="PCT",
                    help="precipitation changes, %% (each above -100; default 0)")
+    p.add_argument("--no-report", action="store_true", help="skip scenarios_report.html")
     p.set_defaults(func=main)
 
 
@@ -48,7 +49,7 @@ def main(args) -> int:
             say(args, note)
         say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
         result = sweep(setup, args.warming, args.precip_change or [], progress=progress)
-        files = write_sweep(result, out)
+        files = write_sweep(result, out, report=not args.no_report)
     print(sweep_table(result))
     say(args, f"wrote {len(files)} files to {out}")
     say(args, CAUTION)

@@ -122,7 +122,7 @@ def _station_text(path):
     ("negative", "ddf_ice_mm_per_day_k must be a number >= 0"),
     ("snow_rain", "snow threshold"),
     ("lapse", "inversion"),
-    ("band", "band_width_m must be a number > 0"),
+    ("band", "band_width_m must be a number >= 1"),
     ("no_crs", "no coordinate reference system"),
     ("not_raster", "not a raster"),
     ("gap", "no row for 2016-10-30"),

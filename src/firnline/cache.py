@@ -24,8 +24,11 @@ import numpy as np
 from . import horizon, radiation
 from .radiation import RadiationTable
 
-#: Layout of the files written here; part of every key.
-FORMAT_VERSION = 1
+#: Layout of the files written here; part of every key (2: with a SHA-256 per array).
+FORMAT_VERSION = 2
+
+#: Why the last lookup of a cache file was a miss although the file exists ({path: reason}).
+MISSES: dict[str, str] = {}
 
 
 def _canonical(value):
@@ -82,12 +85,32 @@ def _path(cache_dir, kind: str, key: str) -> Path:
     return Path(cache_dir) / f"{kind}-{key}.npz"
 
 
+def _digest(a: np.ndarray) -> str:
+    return hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()
+
+
+def _shared_mode(base: int) -> int:
+    """``base`` without the bits the umask removes, but always readable (and, for folders,
+    enterable) by the group: a shared cache on a team server is normal."""
+    mask = os.umask(0)
+    os.umask(mask)
+    group = 0o050 if base & 0o100 else 0o040
+    return (base & ~mask) | group | 0o600
+
+
 def _write_npz(path: Path, arrays: dict) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".tmp", dir=path.parent)
+    if not path.parent.is_dir():
+        path.parent.mkdir(parents=True, exist_ok=True)
+        os.chmod(path.parent, _shared_mode(0o775))
+    arrays = dict(arrays)
+    for name in [n for n in arrays if n not in ("key", "format_version")]:
+        arrays[f"sha256_{name}"] = np.array(_digest(np.asarray(arrays[name])))
+    # the writer's pid in the name lets the next run remove it if this process is killed
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.pid{os.getpid()}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
             np.savez(fh, **arrays)
+        os.chmod(tmp, _shared_mode(0o664))
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
@@ -95,17 +118,39 @@ def _write_npz(path: Path, arrays: dict) -> None:
         raise
 
 
-def _read_npz(path: Path, key: str, names: tuple[str, ...]):
-    """Arrays ``names`` of an entry, or None when missing, unreadable or of another key."""
+def _read_npz(path: Path, key: str, expect: dict):
+    """Arrays of an entry, checked, or None (a miss) when missing, unreadable, of another key,
+    of another shape or dtype than ``expect`` gives, or when an array's SHA-256 differs from
+    the one stored with it; the reason of a miss of an existing file goes into :data:`MISSES`.
+
+    ``expect`` maps each array name to ``(dtype or None, check)`` where ``check(array)`` is
+    None when the array fits, else a short reason.
+    """
+    MISSES.pop(str(path), None)
     if not path.is_file():
+        return None
+
+    def miss(reason: str):
+        MISSES[str(path)] = reason
         return None
     try:
         with np.load(path, allow_pickle=False) as data:
             if str(data["key"]) != key or int(data["format_version"]) != FORMAT_VERSION:
-                return None
-            return {name: data[name] for name in names}
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile):
-        return None
+                return miss("it was written for other settings or by another version")
+            out = {}
+            for name, (dtype, check) in expect.items():
+                a = data[name]
+                if dtype is not None and a.dtype != np.dtype(dtype):
+                    return miss(f"its {name} is {a.dtype}, not {np.dtype(dtype)}")
+                reason = check(a) if check else None
+                if reason:
+                    return miss(reason)
+                if str(data[f"sha256_{name}"]) != _digest(a):
+                    return miss(f"the checksum of its {name} does not match (the file is damaged)")
+                out[name] = a
+            return out
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as e:
+        return miss(f"it cannot be read ({type(e).__name__})")
 
 
 def save_table(cache_dir, key: str, table: RadiationTable) -> Path:
@@ -136,7 +181,7 @@ def save_table(cache_dir, key: str, table: RadiationTable) -> Path:
     return path
 
 
-def load_table(cache_dir, key: str) -> RadiationTable | None:
+def load_table(cache_dir, key: str, n_cells: int | None = None) -> RadiationTable | None:
     """Radiation table stored under ``key``, or None if there is no usable entry.
 
     Parameters
@@ -145,12 +190,32 @@ def load_table(cache_dir, key: str) -> RadiationTable | None:
         Cache folder.
     key : str
         Key from :func:`cache_key`.
+    n_cells : int, optional
+        The number of valid cells the table must have (its second axis).
 
     Returns
     -------
     RadiationTable or None
+        None also when the stored table is not 2-D, has another number of cells, rows
+        other than its day nodes, or a content checksum that does not match.
     """
-    data = _read_npz(_path(cache_dir, "radiation", key), key, ("doy_nodes", "values", "scale_w_m2"))
+    def nodes_ok(a):
+        return None if a.ndim == 1 and a.size > 0 else "its day nodes are not a list of days"
+
+    def values_ok(a):
+        if a.dtype not in (np.dtype("uint16"), np.dtype("float32")):
+            return f"its table is {a.dtype}, not uint16 or float32"
+        if a.ndim != 2:
+            return f"its table has {a.ndim} dimensions, not 2"
+        if n_cells is not None and a.shape[1] != n_cells:
+            return f"its table covers {a.shape[1]} cells, not the DEM's {n_cells}"
+        return None
+    data = _read_npz(_path(cache_dir, "radiation", key), key,
+                     {"doy_nodes": (None, nodes_ok), "values": (None, values_ok),
+                      "scale_w_m2": (None, lambda a: None if a.ndim == 0 else "its scale is not a number")})
+    if data is not None and data["values"].shape[0] != data["doy_nodes"].shape[0]:
+        MISSES[str(_path(cache_dir, "radiation", key))] = "its table rows do not match its day nodes"
+        return None
     if data is None:
         return None
     return RadiationTable(doy_nodes=data["doy_nodes"], values=data["values"], scale_w_m2=float(data["scale_w_m2"]))
@@ -167,10 +232,25 @@ def save_horizons(cache_dir, key: str, horizon_rad: np.ndarray) -> Path:
     return path
 
 
-def load_horizons(cache_dir, key: str) -> np.ndarray | None:
-    """Horizon angles stored under ``key`` (float32, radians), or None if there is no usable entry."""
-    data = _read_npz(_path(cache_dir, "horizon", key), key, ("horizon_rad",))
+def load_horizons(cache_dir, key: str, shape: tuple[int, int] | None = None,
+                  n_sectors: int | None = None) -> np.ndarray | None:
+    """Horizon angles stored under ``key`` (float32, radians), or None if there is no usable entry
+    (also when they are not (n_sectors, ny, nx) of the given grid ``shape`` or their checksum differs)."""
+    def ok(a):
+        if a.ndim != 3:
+            return f"its horizons have {a.ndim} dimensions, not 3"
+        if shape is not None and tuple(a.shape[1:]) != tuple(shape):
+            return f"its horizons are {a.shape[1]} x {a.shape[2]}, not the DEM's {shape[0]} x {shape[1]}"
+        if n_sectors is not None and a.shape[0] != n_sectors:
+            return f"it has {a.shape[0]} horizon sectors, not {n_sectors}"
+        return None
+    data = _read_npz(_path(cache_dir, "horizon", key), key, {"horizon_rad": ("float32", ok)})
     return None if data is None else data["horizon_rad"]
+
+
+def horizon_path(cache_dir, key: str) -> Path:
+    """The cache file of a horizon set (``horizon-<key>.npz``)."""
+    return _path(cache_dir, "horizon", key)
 
 
 def table_path(cache_dir, key: str) -> Path:

@@ -19,6 +19,7 @@ from typing import Any, Callable
 
 from . import parameters
 from .errors import InputError
+from .files import regular_file
 from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 
 #: ``[snow] redistribution``: gravitational snow redistribution (firnline.snowslide) or none
@@ -181,7 +182,7 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
     "balance": {
         "year_start": (_month_day, "10-01"),
         "winter_end": (_month_day, "04-30"),
-        "band_width_m": (_number(0.0, 2000.0, lo_open=True), 50.0),
+        "band_width_m": (_number(1.0, 2000.0), 50.0),   # below 1 m: bands finer than any DEM's accuracy
     },
     "output": {
         "dir": (_path, "out"),
@@ -442,6 +443,8 @@ def load_config(path: str | Path) -> Config:
         type or impossible; the message names the key.
     """
     path = Path(path)
+    if path.exists():
+        regular_file(path, "config file")    # a FIFO or /dev/zero would hang or fill the memory
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:

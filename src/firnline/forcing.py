@@ -18,10 +18,14 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
+from .files import regular_file
 
 # plausible daily mean air temperature at a station, deg C (common practice; the
 # world's record daily means lie inside this range)
 T_MIN_C, T_MAX_C = -70.0, 50.0
+# largest daily precipitation accepted, mm: the world's one-day record is under 2000 mm
+# (1825 mm at Foc-Foc, La Reunion, January 1966, WMO archive; from memory), common practice
+P_MAX_MM = 2000.0
 
 
 @dataclass(frozen=True)
@@ -174,6 +178,11 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
         i = int(np.argmax(p < 0))
         raise InputError(f"{source}, line {line[i]} ({d[i]}): precipitation {p[i]:g} mm is negative; "
                          "correct the value.")
+    if (p > P_MAX_MM).any():
+        i = int(np.argmax(p > P_MAX_MM))
+        raise InputError(f"{source}, line {line[i]} ({d[i]}): precipitation {p[i]:g} mm in one day is above "
+                         f"{P_MAX_MM:g} mm, more than the world's one-day record; correct the value (a "
+                         "missing-value code such as 9999?) or check the unit (mm per day).")
 
     keep = np.ones(len(d), bool)
     if start is not None:
@@ -217,7 +226,7 @@ def _year_start_date(label: int, year_start: str) -> dt.date:
 def read_station(path: Path, date_col: str, t_col: str, p_col: str, year_start: str,
                  winter_end: str, start=None, end=None) -> Forcing:
     """Read a station CSV (the file edge) and check it with :func:`build_forcing`."""
-    path = Path(path)
+    path = regular_file(path, "station file", "[climate] station_file")
     try:
         # blank lines are kept while reading so that every row's index gives its line number
         df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True,
@@ -226,5 +235,7 @@ def read_station(path: Path, date_col: str, t_col: str, p_col: str, year_start: 
         raise InputError(f"{path}: station file not found; check [climate] station_file.") from None
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as e:
         raise InputError(f"{path.name}: not a readable CSV table ({str(e).splitlines()[0]}).") from None
+    except OSError as e:
+        raise InputError(f"{path}: cannot read the station file ({e.strerror or e}).") from None
     df = df[~(df.fillna("").apply(lambda c: c.str.strip()) == "").all(axis=1)]   # then dropped
     return build_forcing(df, path.name, date_col, t_col, p_col, year_start, winter_end, start, end)

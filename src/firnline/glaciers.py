@@ -42,6 +42,7 @@ import shapely
 from affine import Affine
 
 from firnline.errors import InputError
+from firnline.files import regular_file
 
 __all__ = [
     "Glaciers",
@@ -157,6 +158,7 @@ def read_outlines(path, id_field, layer=None):
     where = f"Glacier outlines file {os.fspath(path)}"
     if not os.path.exists(path):
         raise InputError(f"{where} does not exist; check [glaciers] outlines in the config.")
+    regular_file(path, "glacier outlines file", "[glaciers] outlines")
     layers = np.empty((0, 2), dtype=object)
     try:
         layers = pyogrio.list_layers(path)
@@ -199,9 +201,17 @@ def read_outlines(path, id_field, layer=None):
         names.append(name)
     geoms = [None if g is None else shapely.from_wkb(g) for g in wkb]
 
-    if meta.get("crs"):
-        crs = pyproj.CRS.from_user_input(meta["crs"])
-    elif info.get("driver") == "GeoJSON" or str(path).lower().endswith((".geojson", ".json")):
+    is_geojson = info.get("driver") == "GeoJSON" or str(path).lower().endswith((".geojson", ".json"))
+    member = _geojson_crs_member(path, where) if is_geojson else None
+    if member is not None:
+        crs = member
+    elif meta.get("crs"):
+        try:
+            crs = pyproj.CRS.from_user_input(meta["crs"])
+        except pyproj.exceptions.CRSError:
+            raise InputError(f"{where} declares a coordinate reference system that is not known "
+                             f"({str(meta['crs'])[:60]}); give the outlines in an EPSG CRS.") from None
+    elif is_geojson:
         crs = pyproj.CRS.from_user_input("OGC:CRS84")  # RFC 7946, section 4
     else:
         raise InputError(
@@ -209,6 +219,35 @@ def read_outlines(path, id_field, layer=None):
             "the .prj file beside it)."
         )
     return names, geoms, crs
+
+
+def _geojson_crs_member(path, where):
+    """The CRS named by a GeoJSON file's (pre-RFC 7946) ``crs`` member, or None without one.
+
+    GDAL reads an unknown name there as longitude/latitude without a word, which would
+    place outlines in metres at absurd degrees; an unknown name is refused instead.
+    """
+    import json
+
+    try:
+        with open(path, "rb") as f:
+            data = json.load(f)
+    except (OSError, ValueError):
+        return None                           # pyogrio has read it; leave the details to it
+    member = data.get("crs") if isinstance(data, dict) else None
+    if member is None:
+        return None
+    props = member.get("properties") if isinstance(member, dict) else None
+    name = props.get("name") if isinstance(props, dict) else None
+    if not isinstance(name, str) or not name.strip():
+        raise InputError(f"{where}: its \"crs\" member names no CRS ({json.dumps(member)[:80]}); give "
+                         "\"properties\": {\"name\": \"EPSG:...\"} or remove the member for longitude/latitude.")
+    try:
+        return pyproj.CRS.from_user_input(name)
+    except pyproj.exceptions.CRSError:
+        raise InputError(f"{where}: its \"crs\" member names \"{name[:60]}\", which is not a known "
+                         "coordinate reference system; name it as EPSG:<code> (for example "
+                         "urn:ogc:def:crs:EPSG::32632).") from None
 
 
 def _id_text(value):

@@ -23,6 +23,7 @@ from rasterio.errors import NotGeoreferencedWarning, RasterioIOError
 from rasterio.warp import Resampling, calculate_default_transform, reproject
 
 from .errors import InputError
+from .files import regular_file
 
 
 @dataclass(frozen=True)
@@ -146,12 +147,16 @@ def read_dem(path: str | Path) -> Grid:
     Raises
     ------
     InputError
-        The file is missing or not a raster, has no CRS, has no valid cell, or
-        its projected CRS is not in metres.
+        The file is missing, not a regular file (a folder, FIFO or device) or not
+        a raster, has no CRS, has no valid cell, has elevations outside
+        :data:`ELEVATION_RANGE_M`, or its projected CRS is not in metres. A DEM with
+        several bands is read from band 1, and a note says so.
     """
     path = Path(path)
     if not path.exists():
         raise InputError(f"{path}: DEM file not found; check [dem] path.")
+    regular_file(path, "DEM", "[dem] path")
+    notes: list[str] = []
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
@@ -160,6 +165,10 @@ def read_dem(path: str | Path) -> Grid:
             if src.crs is None:
                 raise InputError(f"{path.name}: the DEM has no coordinate reference system; "
                                  "assign one (for example with gdal_edit.py -a_srs) and run again.")
+            if src.count > 1:
+                desc = src.descriptions[0]
+                notes.append(f"{path.name} has {src.count} bands; band 1"
+                             + (f" (\"{desc}\")" if desc else "") + " is used as the elevation.")
             data = src.read(1, masked=True).astype("float64")
             elevation = data.filled(np.nan)
             transform, crs = src.transform, src.crs
@@ -169,7 +178,7 @@ def read_dem(path: str | Path) -> Grid:
         raise InputError(f"{path.name}: not a raster that rasterio can read; give a GeoTIFF or "
                          "another GDAL raster as [dem] path.") from None
     elevation[~np.isfinite(elevation)] = np.nan
-    notes: list[str] = []
+    _check_elevations(elevation, path.name)
     if crs.is_geographic:
         elevation, transform, crs, note = _to_utm(elevation, transform, crs)
         notes.append(f"{path.name}: {note}")
@@ -181,6 +190,23 @@ def read_dem(path: str | Path) -> Grid:
         raise InputError(f"{path.name}: the DEM has no valid cell (all nodata).")
     return Grid(elevation=elevation, valid=valid, transform=transform, crs=crs, path=path.resolve(),
                 checksum=file_checksum(path), notes=notes)
+
+
+#: Elevations accepted in a DEM, m: below the Dead Sea shore (about -430 m) and above Everest
+#: (8849 m) with a margin (common practice); anything outside is a void code or a unit error.
+ELEVATION_RANGE_M = (-500.0, 9000.0)
+
+
+def _check_elevations(elevation: np.ndarray, name: str) -> None:
+    """InputError naming the first cell outside :data:`ELEVATION_RANGE_M` (NaN cells are nodata)."""
+    lo, hi = ELEVATION_RANGE_M
+    with np.errstate(invalid="ignore"):
+        bad = (elevation < lo) | (elevation > hi)
+    if bad.any():
+        r, c = np.unravel_index(int(np.argmax(bad)), bad.shape)
+        raise InputError(f"{name}: {int(bad.sum())} cells have elevations outside {lo:g}..{hi:g} m (the first, row "
+                         f"{r} column {c}, is {elevation[r, c]:g}); set the DEM's nodata value to its void code "
+                         "or convert the elevations to metres.")
 
 
 def _to_utm(elevation, transform, crs):

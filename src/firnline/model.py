@@ -209,21 +209,26 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     tkey = cache.cache_key(horizon=hkey, transmissivity=config.melt.transmissivity,
                            time_step_minutes=rc.time_step_minutes)
     t0 = time.perf_counter()
-    table = cache.load_table(rc.cache_dir, tkey)
+    table = cache.load_table(rc.cache_dir, tkey, n_cells=grid.n_valid)
     if table is not None and not want_horizons:
         return table, None, f"reused the cached radiation climatology ({cache.table_path(rc.cache_dir, tkey)})."
-    horizons = cache.load_horizons(rc.cache_dir, hkey)
+    horizons = cache.load_horizons(rc.cache_dir, hkey, shape=grid.shape, n_sectors=rc.horizon_sectors)
+    damaged = [f"the cached {what} {path.name} was not used ({cache.MISSES[str(path)]}) and is recomputed"
+               for what, path in (("radiation table", cache.table_path(rc.cache_dir, tkey)),
+                                  ("horizons", cache.horizon_path(rc.cache_dir, hkey)))
+               if str(path) in cache.MISSES]
     if horizons is None:
         horizons = horizon_angles(grid.elevation, grid.valid, grid.cell_size_m, rc.horizon_sectors,
                                   rc.horizon_distance_m, progress=progress)
         cache.save_horizons(rc.cache_dir, hkey, horizons)
     if table is not None:
-        return table, horizons, "reused the cached radiation climatology and horizons."
+        return table, horizons, "; ".join(damaged + ["reused the cached radiation climatology and horizons."])
     lon, lat = grid.lonlat()
     table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
                           config.melt.transmissivity, rc.time_step_minutes, progress=progress)
     cache.save_table(rc.cache_dir, tkey, table)
-    return table, horizons, (f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "
+    return table, horizons, ("; ".join(damaged + [""]) +
+                             f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "
                              f"and cached it in {rc.cache_dir}.")
 
 

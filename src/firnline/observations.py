@@ -52,6 +52,7 @@ from typing import Sequence
 import numpy as np
 
 from .errors import InputError
+from .files import regular_file
 
 POINT_COLUMNS = ("point_id", "x", "y", "start_date", "end_date", "balance_mwe", "sigma_mwe")
 GLACIER_COLUMNS = ("glacier", "start_date", "end_date", "balance_mwe", "sigma_mwe")
@@ -134,6 +135,8 @@ def read_table(path: str | Path, key: str) -> Table:
         The ``[observations]`` key that names the file (for messages).
     """
     path = Path(path)
+    if path.exists():
+        regular_file(path, "observation file", f"[observations] {key}")   # a FIFO would hang
     try:
         text = path.read_text(encoding="utf-8-sig")
     except FileNotFoundError:

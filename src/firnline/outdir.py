@@ -47,6 +47,8 @@ import shutil
 import signal
 import socket
 import stat
+import sys
+import tempfile
 from pathlib import Path
 from typing import Iterable, Iterator
 
@@ -112,7 +114,7 @@ def _is_no_space(exc: BaseException) -> bool:
     if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, getattr(errno, "EDQUOT", -1)):
         return True
     text = str(exc).lower()
-    return "no space left" in text or "disk quota exceeded" in text
+    return any(t in text for t in ("no space left", "disk quota exceeded", "free disk space available"))
 
 
 def no_space_error(where: Path, out: Path, had_old: bool) -> InputError:
@@ -336,9 +338,13 @@ class OutputFolder:
 
     def _check_names(self, p: Path) -> None:
         parts = p.parts[1:]
-        limit = 255
-        existing = p
-        while not existing.exists() and existing != existing.parent:
+        existing = p.parent
+        while existing != existing.parent:
+            try:
+                if existing.exists():
+                    break
+            except OSError:
+                pass
             existing = existing.parent
         limit = _name_max(existing)
         for part in parts:
@@ -687,6 +693,39 @@ def claim(path, command: str, inputs: Iterable = (), force: bool = False, cache_
 
 
 @contextlib.contextmanager
+def library_messages_held() -> Iterator[dict]:
+    """Collect what C libraries (GDAL, libtiff, HDF5) print on stderr inside the block.
+
+    On leaving, the collected text is printed after all, unless the block set
+    ``state["drop"]`` (a full disk: libtiff then prints one line per failed write, and
+    the command says it in one sentence instead).
+    """
+    state = {"drop": False}
+    try:
+        sys.stderr.flush()
+        saved = os.dup(2)
+        tmp = tempfile.TemporaryFile()
+    except (OSError, ValueError, AttributeError):
+        yield state
+        return
+    os.dup2(tmp.fileno(), 2)
+    try:
+        yield state
+    finally:
+        with contextlib.suppress(OSError, ValueError, AttributeError):
+            sys.stderr.flush()
+        os.dup2(saved, 2)
+        os.close(saved)
+        if not state["drop"]:
+            with contextlib.suppress(OSError):
+                tmp.seek(0)
+                text = tmp.read()
+                if text:
+                    os.write(2, text)
+        tmp.close()
+
+
+@contextlib.contextmanager
 def staged(final_dir) -> Iterator[Staging]:
     """Stage files; on success they replace the folder's earlier firnline set in one swap.
 
@@ -701,7 +740,12 @@ def staged(final_dir) -> Iterator[Staging]:
     try:
         st = owner.stage()
         try:
-            yield st
+            with library_messages_held() as messages:
+                try:
+                    yield st
+                except BaseException as exc:
+                    messages["drop"] = _is_no_space(exc)
+                    raise
             st.commit()
         except BaseException as exc:
             if not STATE.get("committed"):

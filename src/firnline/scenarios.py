@@ -67,6 +67,14 @@ _DECIMALS = 6  # scenario values are compared after rounding to this many decima
 # the scenario list
 # ----------------------------------------------------------------------------
 
+#: Warmings a sweep accepts, K: far beyond projected end-of-century changes (IPCC AR6 ranges lie
+#: within about -2..+10 K regionally; from memory), so only typing errors are refused.
+WARMING_RANGE_K = (-20.0, 20.0)
+#: Largest precipitation change a sweep accepts, % (a factor of 4; larger values are typing errors,
+#: for example a factor given as a percent).
+MAX_PRECIP_CHANGE_PCT = 300.0
+
+
 def scenario_list(warming_k: Sequence[float], precip_change_pct: Sequence[float] = (0.0,),
                   names: tuple[str, str] = ("warming_k", "precip_change_pct")) -> list[tuple[float, float]]:
     """Every (warming, precipitation change) combination, with the (0, 0) reference.
@@ -90,18 +98,28 @@ def scenario_list(warming_k: Sequence[float], precip_change_pct: Sequence[float]
     Raises
     ------
     InputError
-        No warming given, a value that is not a finite number, or a precipitation
-        change of -100 % or less.
+        No warming given, a value that is not a finite number, a warming outside
+        :data:`WARMING_RANGE_K`, or a precipitation change of -100 % or less or above
+        :data:`MAX_PRECIP_CHANGE_PCT`.
     """
     w_name, p_name = names
     w = [_checked(v, w_name) for v in warming_k]
     p = [_checked(v, p_name) for v in precip_change_pct] or [0.0]
     if not w:
         raise InputError(f"No warming given: pass at least one warming in K as {w_name}, e.g. 1 2 3.")
+    for v in w:
+        if not WARMING_RANGE_K[0] <= v <= WARMING_RANGE_K[1]:
+            raise InputError(f"The warming {v:g} K ({w_name}) lies outside {WARMING_RANGE_K[0]:g}..+"
+                             f"{WARMING_RANGE_K[1]:g} K, beyond any climate scenario a temperature-index "
+                             "model can stand for; give a value inside that range.")
     for v in p:
         if v <= -100.0:
             raise InputError(f"The precipitation change {v:g} % ({p_name}) would remove all "
                              "precipitation; give values above -100.")
+        if v > MAX_PRECIP_CHANGE_PCT:
+            raise InputError(f"The precipitation change {v:g} % ({p_name}) is above +{MAX_PRECIP_CHANGE_PCT:g} % "
+                             f"(precipitation times {1 + MAX_PRECIP_CHANGE_PCT / 100:g}); give a change of "
+                             "at most that (a percent, not a factor).")
     combos = {(a, b) for a in w for b in p} | {(0.0, 0.0)}
     return sorted(combos)
 

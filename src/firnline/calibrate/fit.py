@@ -40,6 +40,7 @@ from scipy.optimize import least_squares
 
 from .. import provenance
 from ..config import Config
+from ..errors import InputError
 from ..model import Setup, prepare
 from ..observations import PointBalances, load_observations
 from ..progress import Progress, stage
@@ -240,6 +241,7 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
 
     u0 = spec.to_internal(spec.initial)
     initial_model = model_at(u0)
+    _check_finite(table, initial_model, observed, sigma)
     res = least_squares(residuals, u0, bounds=(np.ones(n_par), 2.0 * np.ones(n_par)), method="trf",
                         diff_step=DIFF_STEP, xtol=X_TOLERANCE, ftol=F_TOLERANCE, max_nfev=max_nfev)
     if bar:
@@ -272,6 +274,24 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
         rmse_initial_mwe=rmse0, chi_square_reduced=chi2_red, n_obs=n_obs,
         n_evaluations=count["n"], dof=dof, converged=bool(res.status > 0), message=str(res.message),
         warnings=warnings, notes=list(setup.notes), elapsed_s=time.perf_counter() - t0)
+
+
+def _check_finite(table, modelled: np.ndarray, observed: np.ndarray, sigma: np.ndarray) -> None:
+    """InputError naming the first observation whose weighted residual, or its square, is not finite.
+
+    An observation of 1e308 m w.e. or a sigma of 1e-300 m w.e. passes each value's own check
+    but makes the least-squares cost infinite; the row is named instead of fitting nonsense.
+    """
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        r = (modelled - observed) / sigma
+        bad = ~np.isfinite(r) | ~np.isfinite(r * r)
+    if not bad.any():
+        return
+    i = int(np.argmax(bad))
+    row = table.iloc[i]
+    raise InputError(f"{row['file']}, line {row['line']} ({row['id']}): the weighted residual (modelled - observed) "
+                     f"/ sigma is not a finite number (observed {observed[i]:g} m w.e., sigma {sigma[i]:g} m w.e.); "
+                     "correct the balance or give a realistic uncertainty (for example 0.1 m w.e.).")
 
 
 def _warnings(spec: FitSpec, x, res, corr, undetermined, jac, n_obs, dof) -> list[str]:

@@ -72,9 +72,19 @@ def input_paths(cfg) -> list[Path]:
     return paths
 
 
-def claim_output(args, cfg, out: Path, command: str):
-    """Check and lock the output folder before any computation (a context manager)."""
+def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1):
+    """Check the inputs, the memory and the output folder, then lock it; all before any computation.
+
+    Returns the claimed :class:`firnline.outdir.OutputFolder` (a context manager).
+    """
+    from .. import budget
+    from ..files import regular_file
     from ..outdir import claim
 
-    return claim(out, command, inputs=input_paths(cfg), force=getattr(args, "force", False),
+    inputs = input_paths(cfg)
+    for p in inputs:
+        if p.exists():            # a missing file is named by its reader, with its key
+            regular_file(p, "input file")
+    budget.check(budget.estimate_for(cfg, scenarios))
+    return claim(out, command, inputs=inputs, force=getattr(args, "force", False),
                  cache_dir=cfg.radiation.cache_dir)

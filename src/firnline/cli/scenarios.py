@@ -42,7 +42,7 @@ def main(args) -> int:
     # checks the values before any work
     scen = scenario_list(args.warming, args.precip_change or [], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
-    with claim_output(args, cfg, out, "scenarios"):
+    with claim_output(args, cfg, out, "scenarios", scenarios=len(scen)):
         progress = progress_bars(args.quiet)
         setup = prepare(cfg, progress)
         for note in setup.notes:

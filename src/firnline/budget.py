@@ -1,0 +1,156 @@
+"""Memory a run will need, estimated before anything large is allocated, against what is free.
+
+The estimate counts the arrays a run holds at its peak, from sizes known before the
+inputs are read: the DEM's cell count (from the raster header), the number of balance
+years (from the station file's line count and the configured period), the number of
+scenarios, the band width (profile rows) and, for the radiation method, the horizon
+sectors and the radiation table. It is deliberately generous (float64 working copies,
+the per-year fields of every scenario, the writers' temporaries); a run it refuses would
+at best have swapped for hours.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import InputError
+
+# bytes per valid cell that do not grow with years: DEM float64, valid mask, slope and
+# aspect float64, per-cell copies (elevation, mask, indices), kernel state per scenario
+_BYTES_PER_CELL = 8 + 1 + 8 + 8 + 8 + 1 + 8
+_STATE_BYTES_PER_CELL_SCENARIO = 8 * (1 + 1) + 8 * 16      # snowpack, cumulative, running sums
+# bytes per cell, scenario and year: kernel results (16 terms, float32, as the kernel keeps
+# them) plus the per-year fields (5 maps float32 on the cells and on the grid)
+_BYTES_PER_CELL_SCENARIO_YEAR = 4 * 16 + 4 * 5 * 2
+_BYTES_PER_PROFILE_ROW = 200                                 # a pandas row of the profile tables
+_GLACIER_RELIEF_M = 5000.0                                  # upper bound of one glacier's relief
+_FIXED_BYTES = 300 * 2**20                                  # interpreter, numba, GDAL, pandas
+
+
+@dataclass(frozen=True)
+class Estimate:
+    bytes: int
+    cells: int
+    shape: tuple[int, int]
+    years: int
+    scenarios: int
+    band_width_m: float
+    glaciers: int
+
+
+def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_m: float = 50.0,
+             glaciers: int = 1, radiation_sectors: int | None = None) -> Estimate:
+    """Peak memory of a run, bytes (see the module docstring for what is counted)."""
+    ny, nx = shape
+    cells = ny * nx
+    b = _FIXED_BYTES + cells * _BYTES_PER_CELL
+    b += cells * scenarios * _STATE_BYTES_PER_CELL_SCENARIO
+    b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
+    bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
+    b += bands * max(years, 1) * glaciers * scenarios * _BYTES_PER_PROFILE_ROW
+    if radiation_sectors:
+        b += cells * (radiation_sectors * 4 + 4 * 4)          # horizons float32, slope/aspect trig
+        b += cells * (366 // 4 + 1) * (2 + 4)                 # table uint16 and a float32 row band
+    return Estimate(int(b), cells, (ny, nx), years, scenarios, band_width_m, glaciers)
+
+
+def available_bytes() -> int | None:
+    """Memory this process may still use: the smaller of MemAvailable and a cgroup limit; None if unknown."""
+    found = []
+    try:
+        for line in Path("/proc/meminfo").read_text().splitlines():
+            if line.startswith("MemAvailable:"):
+                found.append(int(line.split()[1]) * 1024)
+                break
+    except (OSError, ValueError, IndexError):
+        pass
+    if not found:
+        try:
+            found.append(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+        except (ValueError, OSError, AttributeError):
+            pass
+    for limit_file, usage_file in (("/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory.current"),
+                                   ("/sys/fs/cgroup/memory/memory.limit_in_bytes",
+                                    "/sys/fs/cgroup/memory/memory.usage_in_bytes")):
+        try:
+            text = Path(limit_file).read_text().strip()
+            if text != "max" and int(text) < 2**60:
+                used = int(Path(usage_file).read_text().strip())
+                found.append(max(int(text) - used, 0))
+            break
+        except (OSError, ValueError):
+            continue
+    return min(found) if found else None
+
+
+def _gb(n: int) -> str:
+    return f"{n / 2**30:.1f} GB" if n >= 2**30 else f"{n / 2**20:.0f} MB"
+
+
+def check(est: Estimate, available: int | None = None) -> None:
+    """InputError when the estimate exceeds the available memory (nothing happens when unknown)."""
+    avail = available_bytes() if available is None else available
+    if avail is None or est.bytes <= avail:
+        return
+    ny, nx = est.shape
+    raise InputError(
+        f"This run needs about {_gb(est.bytes)} of memory (DEM {ny} x {nx} cells, {est.years} balance years, "
+        f"{est.scenarios} scenario{'s' if est.scenarios != 1 else ''}, band width {est.band_width_m:g} m), "
+        f"more than the {_gb(avail)} available; use a coarser DEM (or a smaller window of it), fewer years "
+        "([climate] start and end), fewer scenarios, or a tiled run once tiling exists.")
+
+
+def count_lines(path: Path, limit: int = 2**31) -> int:
+    """Number of lines of a text file (read in blocks, never whole)."""
+    n = 0
+    with open(path, "rb") as f:
+        while True:
+            block = f.read(1 << 20)
+            if not block:
+                return n
+            n += block.count(b"\n")
+            if n > limit:
+                return n
+
+
+def estimate_for(config, scenarios: int = 1) -> Estimate:
+    """The estimate of a run of ``config`` from file headers only (no input is read whole)."""
+
+    import rasterio
+    from rasterio.errors import RasterioIOError
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")        # the reader warns and names problems later
+            src = rasterio.open(config.dem.path)   # the header only
+        with src:
+            shape = (src.height, src.width)
+            if src.crs is not None and src.crs.is_geographic:
+                shape = (int(src.height * 1.5), int(src.width * 1.5))   # the UTM grid is somewhat larger
+    except (RasterioIOError, OSError):
+        shape = (1, 1)              # the reader will name the problem
+    years = 1
+    cl = config.climate
+    station = getattr(cl, "station_file", None)
+    try:
+        if station is not None:
+            # complete balance years have at least 365 days; the first line is the header
+            years = max(1, (count_lines(Path(station)) - 1) // 365)
+    except OSError:
+        pass
+    if cl.start and cl.end:
+        years = min(years, max(1, ((cl.end - cl.start).days + 1) // 365))
+    glaciers = 1
+    gl = getattr(config, "glaciers", None)
+    if gl is not None:
+        try:
+            import pyogrio
+            glaciers = max(1, int(pyogrio.read_info(gl.outlines, layer=gl.layer).get("features", 1)))
+        except Exception:           # the reader will name the problem
+            glaciers = 1
+    sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
+    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors)

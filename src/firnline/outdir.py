@@ -117,6 +117,19 @@ def _is_no_space(exc: BaseException) -> bool:
     return any(t in text for t in ("no space left", "disk quota exceeded", "free disk space available"))
 
 
+def _device_full(folder: Path) -> bool:
+    """True when the file system of ``folder`` has (almost) no free space for this user.
+
+    Libraries do not always say "no space" when a write fails on a full disk (libtiff
+    reports an I/O error writing tag data), so a failure is also judged by the disk.
+    """
+    try:
+        st = os.statvfs(folder)
+    except (OSError, AttributeError):
+        return False
+    return st.f_bavail * st.f_frsize < 1 << 20
+
+
 def no_space_error(where: Path, out: Path, had_old: bool) -> InputError:
     kept = (f"{out} still holds the earlier outputs, unchanged" if had_old
             else f"nothing was written to {out}")
@@ -743,14 +756,18 @@ def staged(final_dir) -> Iterator[Staging]:
             with library_messages_held() as messages:
                 try:
                     yield st
-                except BaseException as exc:
-                    messages["drop"] = _is_no_space(exc)
+                except Exception as exc:
+                    messages["drop"] = full = _is_no_space(exc) or _device_full(st.dir)
+                    if full and not isinstance(exc, InputError):
+                        raise no_space_error(path.parent, path, bool(STATE.get("had_old"))) from None
                     raise
             st.commit()
         except BaseException as exc:
+            full = (isinstance(exc, Exception) and not isinstance(exc, InputError)
+                    and (_is_no_space(exc) or _device_full(path.parent)))
             if not STATE.get("committed"):
                 st.discard()
-            if _is_no_space(exc) and not isinstance(exc, InputError):
+            if full:
                 raise no_space_error(path.parent, path, bool(STATE.get("had_old"))) from None
             raise
     finally:

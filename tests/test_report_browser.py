@@ -96,10 +96,18 @@ def test_demo_report_in_chromium(demo_run, tmp_path):
     assert shot.exists(), r.stderr[-2000:]
     png = shot.read_bytes()
     assert png_size(png) == (1280, 2200) and len(png) > 50_000     # a drawn page, not a blank one
+    # printed to PDF (the print style sheet: A4, figures kept whole): a multi-page document
+    pdf = tmp_path / "report.pdf"
+    r = _run(["--no-pdf-header-footer", f"--print-to-pdf={pdf}", (out / "report.html").as_uri()], tmp_path)
+    assert pdf.exists(), r.stderr[-2000:]
+    data = pdf.read_bytes()
+    pages = len(re.findall(rb"/Type\s*/Page[^s]", data))
+    assert data[:5] == b"%PDF-" and pages >= 5, pages
     if os.environ.get("FIRNLINE_ARTIFACTS"):
         dest = Path(os.environ["FIRNLINE_ARTIFACTS"])
         dest.mkdir(parents=True, exist_ok=True)
         shutil.copy(shot, dest / "report_screenshot.png")
+        shutil.copy(pdf, dest / "report.pdf")
 
 
 def test_browser_check_catches_a_broken_image_and_a_console_error(tmp_path):

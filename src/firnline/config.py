@@ -163,8 +163,13 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
         "layer": (_string(), OPTIONAL),
     },
     "climate": {
-        "station_file": (_path, REQUIRED),
-        "station_elevation_m": (_number(-500.0, 9000.0), REQUIRED),
+        "station_file": (_path, OPTIONAL),        # exactly one of station_file, stations, grid_file
+        "station_elevation_m": (_number(-500.0, 9000.0), OPTIONAL),   # required with station_file
+        "stations": (_path, OPTIONAL),
+        "stations_crs": (_string(), OPTIONAL),
+        "idw_power": (_number(0.0, 10.0, lo_open=True), 2.0),
+        "lapse_rate_from_stations": (_boolean, False),
+        "grid_file": (_path, OPTIONAL),
         "date_column": (_string(), "date"),
         "temperature_column": (_string(), "temperature_c"),
         "precipitation_column": (_string(), "precipitation_mm"),
@@ -224,6 +229,7 @@ del _p
 # sections without which a run cannot start
 REQUIRED_SECTIONS = ("dem", "climate")
 PATH_KEYS = {("dem", "path"), ("glaciers", "outlines"), ("climate", "station_file"),
+             ("climate", "stations"), ("climate", "grid_file"),
              ("output", "dir"), ("radiation", "cache_dir"),
              ("observations", "glacier_balances"), ("observations", "point_balances")}
 
@@ -251,13 +257,23 @@ class GlacierOutlines:
 
 @dataclass(frozen=True)
 class Climate:
-    station_file: Path
-    station_elevation_m: float
+    station_file: Path | None
+    station_elevation_m: float | None
     date_column: str
     temperature_column: str
     precipitation_column: str
     start: _dt.date | None
     end: _dt.date | None
+    stations: Path | None = None
+    stations_crs: str | None = None
+    idw_power: float = 2.0
+    lapse_rate_from_stations: bool = False
+    grid_file: Path | None = None
+
+    @property
+    def mode(self) -> str:
+        """Which forcing is given: ``"station"``, ``"stations"`` or ``"grid"``."""
+        return "stations" if self.stations else "grid" if self.grid_file else "station"
 
 
 @dataclass(frozen=True)
@@ -416,12 +432,34 @@ def parse_config(data: dict, base_dir: Path, source: Path | None = None) -> Conf
         sections[name] = _SECTION_TYPES[name](**values)
 
     cl = sections["climate"]
+    _check_climate(cl, data.get("climate", {}), label)
     if cl.start and cl.end and cl.end <= cl.start:
         raise InputError(f"{label}: [climate] end ({cl.end}) must come after start ({cl.start}).")
     if "calibration" in sections:
         from .calibrate.spec import check_section  # all [calibration] checks live there
         check_section(sections["calibration"], label)
     return Config(**sections, source=source, raw=data)
+
+
+def _check_climate(cl: Climate, given: dict, label: str) -> None:
+    """Exactly one forcing source; the keys that belong to it only."""
+    chosen = [k for k in ("station_file", "stations", "grid_file") if getattr(cl, k) is not None]
+    if len(chosen) != 1:
+        what = "none" if not chosen else " and ".join(chosen)
+        raise InputError(f"{label}: [climate] needs exactly one of station_file (one station), stations "
+                         f"(a table of several) or grid_file (NetCDF-CF); it has {what}.")
+    if cl.station_file is not None and cl.station_elevation_m is None:
+        raise InputError(f"{label}: [climate] needs the key \"station_elevation_m\" with station_file; "
+                         "add the station's elevation in m (see configs/demo.toml).")
+    if cl.station_file is None and "station_elevation_m" in given:
+        raise InputError(f"{label}: [climate] station_elevation_m belongs to station_file; with "
+                         f"{chosen[0]} the elevations come from the {'table' if cl.stations else 'file'}; "
+                         "remove it.")
+    if cl.stations is None:
+        for k in ("stations_crs", "idw_power", "lapse_rate_from_stations"):
+            if k in given:
+                raise InputError(f"{label}: [climate] {k} applies to stations only; remove it or give "
+                                 "[climate] stations.")
 
 
 def load_config(path: str | Path) -> Config:

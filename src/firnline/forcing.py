@@ -47,6 +47,11 @@ class Forcing:
         For each day, True in the winter season of the fixed-date system.
     notes : list of str
         Console notes (for example a partial year that was skipped).
+    cells_source : object, optional
+        With several stations or a gridded file: the source of per-cell daily
+        forcing (:class:`firnline.stations.StationNetwork` or
+        :class:`firnline.gridded.GriddedForcing`); ``temperature_c`` and
+        ``precipitation_mm`` then hold NaN and the kernel runs in cell mode.
     """
 
     dates: np.ndarray
@@ -56,6 +61,7 @@ class Forcing:
     year_index: np.ndarray
     winter: np.ndarray
     notes: list = field(default_factory=list)
+    cells_source: object | None = None
 
     @property
     def n_days(self) -> int:
@@ -128,6 +134,18 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
         missing dates, kelvin-like or implausible temperatures, negative
         precipitation, or no complete balance year; the message names the line or date.
     """
+    d, t, p = check_table(df, source, date_col, t_col, p_col)
+    return calendar(d, source, year_start, winter_end, start, end, t, p)
+
+
+def check_table(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_col: str,
+                allow_gaps: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Check the dates and values of a daily station table.
+
+    Returns ``(dates, temperature_c, precipitation_mm)`` as datetime64[D] and float64
+    arrays. With ``allow_gaps`` (a station of a network), empty values become NaN and
+    days may be missing; otherwise both are errors naming the line or the date.
+    """
     for col, key in ((date_col, "date_column"), (t_col, "temperature_column"),
                      (p_col, "precipitation_column")):
         if col not in df.columns:
@@ -145,7 +163,10 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
     for col, what in ((t_col, "temperature"), (p_col, "precipitation")):
         raw = df[col].astype("string").str.strip()
         num = pd.to_numeric(raw, errors="coerce")
+        empty = (raw.isna() | (raw == "")).fillna(True).to_numpy(dtype=bool)
         badv = (num.isna() | ~np.isfinite(num.astype("float64").fillna(np.nan))).to_numpy()
+        if allow_gaps:
+            badv = badv & ~empty
         if badv.any():
             i = int(np.argmax(badv))
             shown = "empty" if (raw.iloc[i] is pd.NA or raw.iloc[i] == "") else f"{raw.iloc[i]!r}, not a number"
@@ -161,13 +182,13 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
         i = int(np.argmax(step < 0)) + 1
         raise InputError(f"{source}, line {line[i]}: the date {d[i]} comes after {d[i - 1]}; "
                          "sort the rows by date.")
-    if (step > 1).any():
+    if (step > 1).any() and not allow_gaps:
         i = int(np.argmax(step > 1))
         raise InputError(f"{source}: no row for {d[i] + 1} (between lines {line[i]} and {line[i + 1]}); "
                          "the record must have every day; fill the gap.")
     t, p = values["temperature"], values["precipitation"]
     if np.nanmedian(t) > 150:
-        raise InputError(f"{source}: the temperatures look like kelvin (median {np.median(t):.1f}); "
+        raise InputError(f"{source}: the temperatures look like kelvin (median {np.nanmedian(t):.1f}); "
                          "give them in deg C.")
     out = (t < T_MIN_C) | (t > T_MAX_C)
     if out.any():
@@ -184,12 +205,23 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
                          f"{P_MAX_MM:g} mm, more than the world's one-day record; correct the value (a "
                          "missing-value code such as 9999?) or check the unit (mm per day).")
 
+    return d, t, p
+
+
+def calendar(d: np.ndarray, source: str, year_start: str, winter_end: str, start=None, end=None,
+             *series: np.ndarray) -> Forcing:
+    """Clip gap-free dates (and day-first ``series``) to ``start..end`` and cut to complete balance years.
+
+    The first two ``series`` become the Forcing's ``temperature_c`` and
+    ``precipitation_mm`` (any shape with days first; NaN-filled when not given).
+    """
+    series = list(series) or [np.full(len(d), np.nan), np.full(len(d), np.nan)]
     keep = np.ones(len(d), bool)
     if start is not None:
         keep &= d >= np.datetime64(start, "D")
     if end is not None:
         keep &= d <= np.datetime64(end, "D")
-    d, t, p = d[keep], t[keep], p[keep]
+    d, series = d[keep], [v[keep] for v in series]
     if len(d) == 0:
         raise InputError(f"{source}: no day of the record lies between [climate] start and end.")
 
@@ -211,7 +243,8 @@ def build_forcing(df: pd.DataFrame, source: str, date_col: str, t_col: str, p_co
     if not years:
         raise InputError(f"{source}: the record holds no complete balance year (starting "
                          f"{year_start}); give at least one full year.")
-    d, t, p, label = d[keep], t[keep], p[keep], label[keep]
+    d, label = d[keep], label[keep]
+    t, p = (v[keep] for v in series[:2])
     years_arr = np.array(years)
     return Forcing(dates=d, temperature_c=t, precipitation_mm=p, years=years_arr,
                    year_index=np.searchsorted(years_arr, label),
@@ -227,15 +260,26 @@ def read_station(path: Path, date_col: str, t_col: str, p_col: str, year_start: 
                  winter_end: str, start=None, end=None) -> Forcing:
     """Read a station CSV (the file edge) and check it with :func:`build_forcing`."""
     path = regular_file(path, "station file", "[climate] station_file")
+    df = read_text_table(path, f"{path}: station file not found; check [climate] station_file.",
+                         what="station file")
+    return build_forcing(df, path.name, date_col, t_col, p_col, year_start, winter_end, start, end)
+
+
+def read_text_table(path: Path, not_found: str, label: str | None = None, what: str = "file") -> pd.DataFrame:
+    """A CSV file with every column as text; ``not_found`` is the message when it is missing.
+
+    Blank lines are dropped after reading, so that the index of each row gives its line
+    number (index i is line i + 2).
+    """
     try:
         # blank lines are kept while reading so that every row's index gives its line number
         df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True,
                          skip_blank_lines=False)
     except FileNotFoundError:
-        raise InputError(f"{path}: station file not found; check [climate] station_file.") from None
+        raise InputError(not_found) from None
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as e:
-        raise InputError(f"{path.name}: not a readable CSV table ({str(e).splitlines()[0]}).") from None
+        raise InputError(f"{label or Path(path).name}: not a readable CSV table "
+                         f"({str(e).splitlines()[0]}).") from None
     except OSError as e:
-        raise InputError(f"{path}: cannot read the station file ({e.strerror or e}).") from None
-    df = df[~(df.fillna("").apply(lambda c: c.str.strip()) == "").all(axis=1)]   # then dropped
-    return build_forcing(df, path.name, date_col, t_col, p_col, year_start, winter_end, start, end)
+        raise InputError(f"{path}: cannot read the {what} ({e.strerror or e}).") from None
+    return df[~(df.fillna("").apply(lambda c: c.str.strip()) == "").all(axis=1)]   # then dropped

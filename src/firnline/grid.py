@@ -114,6 +114,30 @@ def file_checksum(path: Path) -> str:
     return h.hexdigest()
 
 
+def to_crs(x: np.ndarray, y: np.ndarray, from_crs, to_crs_, key: str) -> tuple[np.ndarray, np.ndarray]:
+    """Coordinates transformed between two CRSs (any pyproj or rasterio CRS, or text like "EPSG:32632").
+
+    ``key`` names the config key of ``from_crs`` in the message when pyproj does not know it.
+    Either CRS ``None``: the coordinates are returned as they are.
+    """
+    from pyproj.exceptions import CRSError
+
+    def as_pyproj(c):
+        return c if isinstance(c, CRS) else CRS.from_wkt(c.to_wkt()) if hasattr(c, "to_wkt") else CRS.from_user_input(c)
+    if from_crs is None or to_crs_ is None:
+        return x, y
+    try:
+        src = as_pyproj(from_crs)
+    except CRSError:
+        raise InputError(f"{key} {from_crs!r} is not a coordinate reference system pyproj knows; "
+                         "give one like \"EPSG:32632\".") from None
+    dst = as_pyproj(to_crs_)
+    if src == dst:
+        return x, y
+    xt, yt = Transformer.from_crs(src, dst, always_xy=True).transform(x, y)
+    return np.asarray(xt, dtype="float64"), np.asarray(yt, dtype="float64")
+
+
 def utm_crs_for(lon: float, lat: float) -> CRS:
     """The WGS 84 UTM zone CRS that contains a point (pyproj's database query)."""
     infos = query_utm_crs_info(datum_name="WGS 84",

@@ -403,21 +403,8 @@ def check_point_balances(table: Table, record_dates: np.ndarray, transform, vali
 
 
 def _to_grid_crs(x: np.ndarray, y: np.ndarray, points_crs, grid_crs):
-    if points_crs is None or grid_crs is None:
-        return x, y
-    from pyproj import CRS, Transformer
-    from pyproj.exceptions import CRSError
-
-    try:
-        src = CRS.from_user_input(points_crs)
-    except CRSError:
-        raise InputError(f"[observations] points_crs {points_crs!r} is not a coordinate reference system "
-                         "pyproj knows; give one like \"EPSG:32632\".") from None
-    dst = CRS.from_wkt(grid_crs.to_wkt()) if hasattr(grid_crs, "to_wkt") else CRS.from_user_input(grid_crs)
-    if src == dst:
-        return x, y
-    xt, yt = Transformer.from_crs(src, dst, always_xy=True).transform(x, y)
-    return np.asarray(xt, dtype="float64"), np.asarray(yt, dtype="float64")
+    from .grid import to_crs
+    return to_crs(x, y, points_crs, grid_crs, "[observations] points_crs")
 
 
 def check_glacier_balances(table: Table, record_dates: np.ndarray, names: Sequence[str],

@@ -1,0 +1,333 @@
+"""Several climate stations: reading the network and interpolating it to every cell.
+
+Each day, every reporting station's temperature is reduced to a common reference
+elevation ``z_ref`` (the lowest station) with the day's lapse rate, and its
+precipitation with the relative precipitation gradient; the reduced values are
+interpolated to each cell by inverse distance weighting and brought back to the
+cell's elevation (detrended inverse-distance weighting after elevation reduction;
+common practice)::
+
+    T0_s = T_s - lapse_d * (z_s - z_ref)
+    P0_s = P_s / (1 + gradient * (z_s - z_ref))
+    w_s(c) = 1 / distance(c, s) ** power
+    T(c) = sum_s w_s T0_s / sum_s w_s + lapse_d * (z_c - z_ref)
+    P(c) = factor * max(0, 1 + gradient * (z_c - z_ref)) * sum_s w_s P0_s / sum_s w_s
+
+so that a field linear in elevation (the lapse rate) and the same everywhere else
+is reproduced exactly at any cell, and one station reproduces the single-station
+downscaling of :mod:`firnline.kernel`. A station that has no value on a day drops
+out of that day's sums (its weight too); a day on which no station reports is an
+error naming the date.
+
+Optional daily lapse rate from the stations: on a day with at least
+:data:`MIN_REGRESSION_STATIONS` temperatures, the lapse rate is the ordinary
+least-squares slope of the stations' temperatures on their elevations (the
+elevation regression of detrended interpolation; common practice, as in the
+elevation-regression step of PRISM, Daly, Neilson & Phillips 1994, J. Applied
+Meteorology 33(2), from memory), limited to the range allowed for
+``[downscaling] lapse_rate_k_per_m``; on other days the configured (monthly)
+lapse rate is used.
+
+The per-cell provider follows the kernel's cell-mode protocol: ``block(a, b)``
+returns temperature (deg C) and precipitation (mm, gauge factor and gradient
+applied) at each cell for days ``a .. b-1`` as two (b - a, n_cells) float32 arrays,
+never more days than asked for.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from numba import njit, prange
+
+from .errors import InputError
+from .grid import to_crs
+from .forcing import Forcing, calendar, check_table, read_text_table
+
+STATION_COLUMNS = ("station", "x", "y", "elevation_m", "file")
+MIN_REGRESSION_STATIONS = 3
+"""Fewest stations with a temperature on a day for the day's lapse-rate regression."""
+
+MIN_DISTANCE_M = 1e-3
+"""Distances below this count as this (a cell on a station takes that station's value)."""
+
+_CHUNK = 4096  # cells per parallel chunk of the interpolation
+
+
+@dataclass(frozen=True)
+class StationNetwork:
+    """Daily records of several stations on one calendar.
+
+    Attributes
+    ----------
+    names : tuple of str
+    x_m, y_m : ndarray (n_stations,)
+        Station positions in the DEM grid's CRS, m.
+    elevation_m : ndarray (n_stations,)
+    dates : ndarray (n_days,) datetime64[D], gap-free
+    temperature_c, precipitation_mm : ndarray (n_days, n_stations) float64
+        NaN where a station has no value that day.
+    source : str
+        The station table's file name (for messages).
+    power : float
+        Inverse-distance power.
+    lapse_from_stations : bool
+        Regress each day's lapse rate on the stations (>= 3 reporting).
+    notes : list of str
+    """
+
+    names: tuple
+    x_m: np.ndarray
+    y_m: np.ndarray
+    elevation_m: np.ndarray
+    dates: np.ndarray
+    temperature_c: np.ndarray
+    precipitation_mm: np.ndarray
+    source: str = "stations"
+    power: float = 2.0
+    lapse_from_stations: bool = False
+    notes: list = field(default_factory=list)
+
+    @property
+    def n_stations(self) -> int:
+        return len(self.names)
+
+    @property
+    def reference_elevation_m(self) -> float:
+        """The common elevation the station values are reduced to: the lowest station, m."""
+        return float(np.min(self.elevation_m))
+
+    def daily_lapse_rates(self, monthly_k_per_m, month: np.ndarray, lo: float, hi: float,
+                          rows: slice | np.ndarray = slice(None)) -> tuple[np.ndarray, int, int]:
+        """Lapse rate of each day (K m-1): regressed on the stations or the monthly value.
+
+        Parameters
+        ----------
+        monthly_k_per_m : 12 lapse rates, January first, K m-1
+        month : ndarray (n,) calendar month of each day of ``rows``
+        lo, hi : bounds of a regressed lapse rate, K m-1
+        rows : the days (rows of the record) concerned
+
+        Returns
+        -------
+        lapse : ndarray (n,) float64
+        n_regressed : days whose lapse rate came from the stations
+        n_limited : of those, days whose slope was outside ``lo .. hi`` and limited
+        """
+        lapse = np.asarray(monthly_k_per_m, dtype="float64")[np.asarray(month) - 1]
+        if not self.lapse_from_stations:
+            return lapse, 0, 0
+        t = self.temperature_c[rows]
+        have = np.isfinite(t)
+        n = have.sum(axis=1)
+        use = n >= MIN_REGRESSION_STATIONS
+        if not use.any():
+            return lapse, 0, 0
+        z = np.where(have, self.elevation_m[None, :], 0.0)
+        tt = np.where(have, t, 0.0)
+        nn = np.maximum(n, 1)
+        zm = z.sum(axis=1) / nn
+        tm = tt.sum(axis=1) / nn
+        dz = np.where(have, z - zm[:, None], 0.0)
+        sxx = (dz * dz).sum(axis=1)
+        sxy = (dz * (tt - tm[:, None])).sum(axis=1)
+        use &= sxx > 0
+        slope = np.divide(sxy, sxx, out=np.zeros_like(sxy), where=sxx > 0)
+        limited = use & ((slope < lo) | (slope > hi))
+        lapse = np.where(use, np.clip(slope, lo, hi), lapse)
+        return lapse, int(use.sum()), int(limited.sum())
+
+    def cells(self, x_m: np.ndarray, y_m: np.ndarray, z_m: np.ndarray, params, month: np.ndarray,
+              lapse_bounds: tuple[float, float] = (-0.0125, 0.01)) -> "StationCells":
+        """The per-cell provider for cells at ``x_m, y_m`` (grid CRS, m) and elevations ``z_m``.
+
+        ``params`` gives ``lapse_rate_k_per_m`` (12), ``precip_gradient_per_m`` and
+        ``precip_factor`` (e.g. :class:`firnline.kernel.KernelParams`); ``month`` is the
+        calendar month of each day of the record.
+        """
+        return StationCells(self, x_m, y_m, z_m, params, month, lapse_bounds)
+
+
+class StationCells:
+    """Per-cell daily temperature and precipitation from a :class:`StationNetwork`.
+
+    Holds the inverse-distance weights (n_stations, n_cells) float32 and the per-cell
+    orographic precipitation factor; :meth:`block` makes one block of days at a time.
+    """
+
+    def __init__(self, network: StationNetwork, x_m, y_m, z_m, params, month, lapse_bounds):
+        self.network = network
+        z = np.ascontiguousarray(z_m, dtype="float64")
+        self.n_cells = z.size
+        zr = network.reference_elevation_m
+        g = float(params.precip_gradient_per_m)
+        self.lapse, self.n_regressed, self.n_limited = network.daily_lapse_rates(
+            params.lapse_rate_k_per_m, month, *lapse_bounds)
+        dz_st = network.elevation_m - zr
+        red = 1.0 + g * dz_st
+        if np.any(red <= 0):
+            i = int(np.argmax(red <= 0))
+            raise InputError(f"{network.source}: station {network.names[i]!r} lies "
+                             f"{dz_st[i]:.0f} m above the lowest station, where [downscaling] "
+                             f"precip_gradient_per_m = {g:g} leaves no precipitation; use a smaller "
+                             "negative gradient or drop the station.")
+        self.t0 = network.temperature_c - self.lapse[:, None] * dz_st[None, :]
+        self.p0 = network.precipitation_mm / red[None, :]
+        self.dz = z - zr
+        self.orog = float(params.precip_factor) * np.maximum(0.0, 1.0 + g * self.dz)
+        self.weights = idw_weights(np.asarray(x_m, float), np.asarray(y_m, float), network.x_m,
+                                   network.y_m, network.power)
+
+    @property
+    def n_days(self) -> int:
+        return self.t0.shape[0]
+
+    def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32."""
+        nd = b - a
+        t = np.empty((nd, self.n_cells), dtype="float32")
+        p = np.empty((nd, self.n_cells), dtype="float32")
+        _idw_block(self.weights, self.dz, self.orog, np.ascontiguousarray(self.t0[a:b]),
+                   np.ascontiguousarray(self.p0[a:b]), np.ascontiguousarray(self.lapse[a:b]), t, p)
+        return t, p
+
+
+def idw_weights(x: np.ndarray, y: np.ndarray, xs: np.ndarray, ys: np.ndarray, power: float) -> np.ndarray:
+    """Inverse-distance weights 1 / d**power, (n_stations, n_cells) float32 (not normalised)."""
+    out = np.empty((len(xs), x.size), dtype="float32")
+    for s in range(len(xs)):   # over the few stations, not the cells
+        d = np.hypot(x - xs[s], y - ys[s])
+        out[s] = np.maximum(d, MIN_DISTANCE_M) ** -power
+    # scale each cell's weights to sum 1 (same ratios; keeps float32 far from under/overflow)
+    out /= out.sum(axis=0, keepdims=True)
+    return out
+
+
+@njit(parallel=True, cache=True)
+def _idw_block(w, dz, orog, t0, p0, lapse, t_out, p_out):
+    ns, nc = w.shape
+    nd = t0.shape[0]
+    n_chunks = (nc + _CHUNK - 1) // _CHUNK
+    for k in prange(n_chunks):
+        c0 = k * _CHUNK
+        c1 = min(nc, c0 + _CHUNK)
+        for d in range(nd):
+            for c in range(c0, c1):
+                st = 0.0
+                sw = 0.0
+                sp = 0.0
+                swp = 0.0
+                for s in range(ns):
+                    ws = w[s, c]
+                    v = t0[d, s]
+                    if v == v:
+                        st += ws * v
+                        sw += ws
+                    v = p0[d, s]
+                    if v == v:
+                        sp += ws * v
+                        swp += ws
+                t_out[d, c] = st / sw + lapse[d] * dz[c]
+                p_out[d, c] = sp / swp * orog[c]
+
+
+# ----------------------------------------------------------------------------
+# the file edge
+# ----------------------------------------------------------------------------
+
+def read_network(path: Path, date_col: str, t_col: str, p_col: str, stations_crs, grid_crs,
+                 power: float = 2.0, lapse_from_stations: bool = False) -> StationNetwork:
+    """Read a station table (``station, x, y, elevation_m, file``) and every station's daily CSV.
+
+    Station files are resolved against the table's folder and read with the column
+    names of ``[climate]``; empty values and missing days are allowed (the station
+    drops out of those days). Coordinates are transformed from ``stations_crs`` to
+    ``grid_crs``.
+
+    Raises
+    ------
+    InputError
+        Missing columns or files, unreadable numbers, duplicated station names, fewer
+        than one station, or any bad row of a station file (naming file and line).
+    """
+    path = Path(path)
+    src = path.name
+    tab = read_text_table(path, f"{path}: station table not found; check [climate] stations.")
+    tab.columns = [c.strip() for c in tab.columns]
+    missing = [c for c in STATION_COLUMNS if c not in tab.columns]
+    if missing:
+        raise InputError(f"{src}: no column \"{missing[0]}\"; a station table needs the columns "
+                         + ", ".join(STATION_COLUMNS) + " (the file has "
+                         + ", ".join(f'"{c}"' for c in tab.columns) + ").")
+    if len(tab) == 0:
+        raise InputError(f"{src}: the station table has no rows; list at least one station.")
+    names = [n.strip() for n in tab.station]
+    nums = {}
+    for col in ("x", "y", "elevation_m"):
+        v = pd.to_numeric(tab[col].str.strip(), errors="coerce").to_numpy(dtype="float64")
+        bad = ~np.isfinite(v)
+        if bad.any():
+            i = int(np.argmax(bad))
+            raise InputError(f"{src}, line {i + 2} (station {names[i]!r}): {col} {tab[col].iloc[i]!r} "
+                             "is not a number; correct it.")
+        nums[col] = v
+    for i, n in enumerate(names):
+        if not n:
+            raise InputError(f"{src}, line {i + 2}: the station has no name; fill the station column.")
+        if names.index(n) != i:
+            raise InputError(f"{src}, line {i + 2}: the station {n!r} appears twice; keep one row per station.")
+    z = nums["elevation_m"]
+    bad = (z < -500) | (z > 9000)
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise InputError(f"{src}, line {i + 2} (station {names[i]!r}): elevation_m {z[i]:g} is outside "
+                         "-500..9000 m; correct it.")
+    records = []
+    for i, (n, f) in enumerate(zip(names, tab.file)):
+        fp = (path.parent / f.strip()).resolve()
+        df = read_text_table(fp, f"{src}, line {i + 2} (station {n!r}): the file {f.strip()!r} was not "
+                                 f"found (looked for {fp}); check the file column.", f"{fp.name} (station {n!r})")
+        records.append(check_table(df, fp.name, date_col, t_col, p_col, allow_gaps=True))
+    first = min(r[0][0] for r in records)
+    last = max(r[0][-1] for r in records)
+    dates = np.arange(first, last + np.timedelta64(1, "D"), dtype="datetime64[D]")
+    t = np.full((dates.size, len(names)), np.nan)
+    p = np.full((dates.size, len(names)), np.nan)
+    for s, (d, ts, ps) in enumerate(records):
+        k = (d - first).astype(int)
+        t[k, s], p[k, s] = ts, ps
+    x, y = to_crs(nums["x"], nums["y"], stations_crs, grid_crs, "[climate] stations_crs")
+    return StationNetwork(names=tuple(names), x_m=np.asarray(x, float), y_m=np.asarray(y, float),
+                          elevation_m=z, dates=dates, temperature_c=t, precipitation_mm=p,
+                          source=src, power=float(power), lapse_from_stations=bool(lapse_from_stations))
+
+
+def network_forcing(net: StationNetwork, year_start: str, winter_end: str, start=None, end=None) -> Forcing:
+    """The balance-year calendar of a network, cut to complete years, with the network attached.
+
+    Raises
+    ------
+    InputError
+        A day of the modelled years on which no station has a temperature (or a
+        precipitation); the message names the first such date.
+    """
+    rows = np.arange(net.dates.size)
+    f = calendar(net.dates, net.source, year_start, winter_end, start, end, rows,
+                 np.full(net.dates.size, np.nan))
+    keep = f.temperature_c.astype(np.int64)
+    for values, what in ((net.temperature_c, "temperature"), (net.precipitation_mm, "precipitation")):
+        none = ~np.isfinite(values[keep]).any(axis=1)
+        if none.any():
+            i = int(np.argmax(none))
+            raise InputError(f"{net.source}: no station has a {what} on {f.dates[i]}; give at least one "
+                             f"station's value for that day (or shorten the record with [climate] start/end).")
+    sub = StationNetwork(names=net.names, x_m=net.x_m, y_m=net.y_m, elevation_m=net.elevation_m,
+                         dates=f.dates, temperature_c=net.temperature_c[keep],
+                         precipitation_mm=net.precipitation_mm[keep], source=net.source, power=net.power,
+                         lapse_from_stations=net.lapse_from_stations, notes=list(net.notes))
+    nan = np.full(f.dates.size, np.nan)
+    from dataclasses import replace
+    return replace(f, temperature_c=nan, precipitation_mm=nan.copy(), cells_source=sub)

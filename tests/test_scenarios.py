@@ -22,7 +22,8 @@ from firnline.cli import main
 from firnline.metrics import BUDGET_COLUMNS, balanced_budget
 from firnline.model import prepare
 from firnline.outdir import MANIFEST
-from firnline.scenarios import SCENARIO_COLUMNS, YEAR_COLUMNS, scenario_label, scenario_list, sensitivity, sweep
+from firnline.scenarios import (SCENARIO_COLUMNS, SCENARIO_EXTRA, YEAR_COLUMNS, YEAR_EXTRA, scenario_label,
+                                scenario_list, sensitivity, sweep)
 
 REPO = Path(__file__).resolve().parents[1]
 LAPSE = -0.0065   # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
@@ -292,15 +293,16 @@ def test_scenarios_command_writes_every_file_with_the_contract_columns(tmp_path,
     maps = {f"mean_annual_balance_{scenario_label(w, p)}.tif" for w, p in scen}
     assert "mean_annual_balance_w+1.0_p-10.tif" in maps
     expected = {"scenarios.csv", "scenario_years.csv", "sensitivity.csv", "scenario_profiles.csv",
-                "ela_vs_warming.png", "balance_vs_warming.png", "balance_profiles.png",
+                "scenario_budget.csv", "precip_offset.csv", "ela_vs_warming.png", "balance_vs_warming.png", "balance_profiles.png",
                 "scenarios.json"} | maps
     assert names == expected                        # and no staging folder left behind
     t = pd.read_csv(out / "scenarios.csv")
-    assert list(t.columns) == SCENARIO_COLUMNS == ["glacier", "warming_k", "precip_change_pct",
-                                                   "mean_annual_balance_mwe", "ela_m", "aar", "ela_shift_m"]
+    assert SCENARIO_COLUMNS == ["glacier", "warming_k", "precip_change_pct",
+                                "mean_annual_balance_mwe", "ela_m", "aar", "ela_shift_m"]
+    assert list(t.columns) == SCENARIO_COLUMNS + SCENARIO_EXTRA     # the contract first, then additions
     assert sorted(zip(t.warming_k, t.precip_change_pct)) == scen
     y = pd.read_csv(out / "scenario_years.csv")
-    assert list(y.columns) == YEAR_COLUMNS and len(y) == 7 * 3
+    assert list(y.columns) == YEAR_COLUMNS + YEAR_EXTRA and len(y) == 7 * 3
     s = pd.read_csv(out / "sensitivity.csv")
     assert list(s.columns[:3]) == ["glacier", "dela_dt_m_per_k", "dbalance_dt_mwe_per_k"]
     assert s.dbalance_dt_mwe_per_k.iloc[0] < 0 and s.dela_dt_m_per_k.iloc[0] > 0

@@ -462,3 +462,35 @@ def _check_values(gf: GriddedForcing, used: np.ndarray, dates: np.ndarray) -> No
             i = int(np.argmax(neg))
             raise InputError(f"{gf.path.name}: the precipitation {gf.p_name!r} on {dates[a + i]} is negative "
                              f"(below -{NEGATIVE_PRECIP_TOLERANCE_MM:g} mm); correct the file.")
+
+
+def area_mean_series(path: str | Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Daily area means over every grid point of a NetCDF-CF file (for the delta-change helper).
+
+    Returns ``(dates, temperature_c, precipitation_mm)``; the variables are found and
+    converted as for ``[climate] grid_file``; read by blocks of :data:`READ_DAYS` steps.
+    Missing values are left out of each day's mean (a day with none is NaN).
+    """
+    path = Path(path)
+    src = path.name
+    if not path.exists():
+        raise InputError(f"{path}: gridded file not found; check the path.")
+    with _open(path) as ds:
+        t_name = _by_standard_name(ds, TEMPERATURE_NAMES, "daily mean air temperature", src)
+        p_name = _by_standard_name(ds, PRECIPITATION_NAMES, "daily precipitation", src)
+        t_off = temperature_offset(ds[t_name].attrs.get("units", ""), t_name, src)
+        p_fac = precipitation_factor(ds[p_name].attrs.get("units", ""), ds[p_name].attrs["standard_name"],
+                                     p_name, src)
+        time_dim = [d for d in ds[t_name].dims if _axis_kind(ds, d) is None][0]
+        days = _times(ds, time_dim, src)
+        n = days.size
+        t = np.empty(n)
+        p = np.empty(n)
+        for a in range(0, n, READ_DAYS):
+            b = min(n, a + READ_DAYS)
+            for name, out, off, fac in ((t_name, t, t_off, 1.0), (p_name, p, 0.0, p_fac)):
+                v = ds[name].isel({time_dim: slice(a, b)}).transpose(time_dim, ...).to_numpy()
+                v = v.reshape(b - a, -1).astype("float64")
+                with np.errstate(invalid="ignore"):
+                    out[a:b] = np.nanmean(v, axis=1) * fac + off if v.size else np.nan
+    return days, t, p

@@ -7,8 +7,8 @@ change, so it is safe inside a notebook); :func:`save_png` writes it. Every figu
 carries a caption saying that it shows model estimates, the period and what the
 markers mean, so it can be read without the tables.
 
-* :func:`ela_figure`: mean ELA against warming, one panel per glacier, one line per
-  precipitation change, with the glacier's lowest and highest elevation.
+* :func:`ela_figure`: paired ELA shift against warming with its year-to-year spread, one
+  panel per glacier, one line per precipitation change, monthly scenarios as stars.
 * :func:`balance_figure`: mean annual balance against warming, one panel per
   precipitation change, one line per glacier plus the area-weighted mean of all.
 * :func:`profile_figure`: balance profiles of the record-mean annual balance, one
@@ -97,67 +97,95 @@ def _subset_note(shown: int, total: int) -> list[str]:
     return [f"Shown: the {shown} largest of {total} glaciers; all are in scenarios.csv."] if shown < total else []
 
 
-def ela_figure(table: pd.DataFrame, flags: pd.DataFrame, glaciers: pd.DataFrame,
+def ela_figure(table: pd.DataFrame, year_table: pd.DataFrame, glaciers: pd.DataFrame,
                years: Sequence[int], site: str = "") -> Figure:
-    """Mean ELA (m a.s.l.) against warming (K), one panel per glacier.
+    """Paired ELA shift (m) against warming (K), with its year-to-year spread; one panel per glacier.
 
     Parameters
     ----------
-    table : DataFrame with :data:`firnline.scenarios.SCENARIO_COLUMNS`
-    flags : DataFrame with :data:`firnline.scenarios.FLAG_COLUMNS`
+    table : DataFrame with :data:`firnline.scenarios.SCENARIO_COLUMNS` and the extra columns
+        (``scenario``, ``n_years``, ``n_shift_years``, ``ela_shift_sd_m``, ...)
+    year_table : DataFrame with :data:`firnline.scenarios.YEAR_COLUMNS` and ``scenario``
     glaciers : DataFrame (glacier, area_km2, min_elevation_m, max_elevation_m)
     years : balance years of the record
     site : label for the title
 
-    Filled markers: the ELA stayed on the glacier in every year; open markers: it left
-    the glacier in some years (mean over the others); triangles at the glacier's top
-    (bottom): the ELA was above (below) the glacier in every year.
+    For each precipitation change of the uniform grid, a line through the mean of the
+    paired yearly shifts (each year's ELA minus the reference ELA of the same year); grey
+    dots: the yearly shifts; bar: +- one standard deviation of them. An open marker: some
+    years could not be paired (the ELA left the glacier); a triangle at the top: no year
+    could. Stars: monthly change scenarios at their mean warming, labelled by name.
     """
     names = _largest(glaciers, MAX_PANELS)
     fig, axes = _figure(len(names), [
-        f"Mean ELA over the {_period(years)}, averaged over the years in which the ELA lay on the "
-        "glacier; grey band: the glacier's elevation range. An open marker is a mean over fewer years "
-        "and leans towards the years in which the ELA stayed on the glacier (the counts are in "
-        "scenarios.json, the year-by-year values in scenario_years.csv).",
+        f"ELA shift from the no-change reference, {_period(years)}: each balance year's ELA minus the "
+        "reference ELA of the same year (paired), so that the shift is never a difference of means over "
+        "different sets of years. Line: mean of the paired shifts; bars: +- one year-to-year standard "
+        "deviation; small dots: single years. Open marker: some years unpaired because the ELA left the "
+        "glacier (counts in scenarios.csv: n_shift_years of n_years). Dashed line and grey band: a shift that "
+        "lifts the record-mean ELA of the reference to the glacier top or beyond.",
         *_subset_note(len(names), len(glaciers))])
-    t = table.merge(flags, on=["glacier", "warming_k", "precip_change_pct"])
-    precips = sorted(t.precip_change_pct.unique())
+    t = table.copy()
+    uniform = t.scenario.str.match(r"^w[+-][0-9.]+_p[+-][0-9.]+$")
+    precips = sorted(t[uniform].precip_change_pct.unique())
     style, pcol = _precip_style(precips)
     for ax, name in zip(axes, names):
         gi = glaciers[glaciers.glacier == name].iloc[0]
-        lo, hi = gi.min_elevation_m, gi.max_elevation_m
-        ax.axhspan(lo, hi, color="0.93", zorder=0)
-        ax.axhline(hi, color="0.5", lw=0.8)
-        ax.axhline(lo, color="0.5", lw=0.8)
-        ax.annotate("glacier top", (0.01, hi), xycoords=("axes fraction", "data"), fontsize=7,
-                    color="0.4", va="bottom")
-        ax.annotate("glacier bottom", (0.01, lo), xycoords=("axes fraction", "data"), fontsize=7,
-                    color="0.4", va="top")
+        tg = t[t.glacier == name]
+        ref = tg[tg.scenario == "w+0.0_p+0"]
+        ref_ela = float(ref.ela_m.iloc[0]) if len(ref) else float("nan")
+        room = gi.max_elevation_m - ref_ela if np.isfinite(ref_ela) else float("nan")
+        if np.isfinite(room):
+            ax.axhline(room, color="0.5", lw=0.8, ls="--")
+            ax.annotate("ELA at the glacier top", (0.01, room), xycoords=("axes fraction", "data"), fontsize=7,
+                        color="0.4", va="bottom")
+        ax.axhline(0.0, color="0.5", lw=0.8)
+        yg = year_table[year_table.glacier == name]
+        top = []
         for p in precips:
-            r = t[(t.glacier == name) & (t.precip_change_pct == p)].sort_values("warming_k")
+            r = tg[uniform.loc[tg.index] & (tg.precip_change_pct == p)].sort_values("warming_k")
             c = pcol[p]
-            ax.plot(r.warming_k, r.ela_m, style[p], color=c, lw=1.4)
-            full = r.n_ela_ok == r.n_years
-            part = (r.n_ela_ok > 0) & ~full
-            ax.plot(r.warming_k[full], r.ela_m[full], "o", color=c, ms=5)
-            ax.plot(r.warming_k[part], r.ela_m[part], "o", mfc="white", mec=c, ms=5)
-            above = r.n_above_glacier == r.n_years
-            below = r.n_below_glacier == r.n_years
-            for off, z, marker in ((above, hi, "^"), (below, lo, "v")):
-                if off.any():   # (an empty unclipped line would drag the layout to the origin)
-                    ax.plot(r.warming_k[off], np.full(off.sum(), z), marker, color=c, ms=7, clip_on=False)
+            ax.plot(r.warming_k, r.ela_shift_m, style[p], color=c, lw=1.4)
+            ax.errorbar(r.warming_k, r.ela_shift_m, yerr=r.ela_shift_sd_m.fillna(0.0), fmt="none", ecolor=c,
+                        elinewidth=1.0, capsize=3)
+            full = r.n_shift_years == r.n_years
+            part = (r.n_shift_years > 0) & ~full
+            ax.plot(r.warming_k[full], r.ela_shift_m[full], "o", color=c, ms=5)
+            ax.plot(r.warming_k[part], r.ela_shift_m[part], "o", mfc="white", mec=c, ms=5)
+            none = r[r.n_shift_years == 0]
+            top += [(w, c) for w in none.warming_k]
+            yy = yg[yg.scenario.isin(r.scenario)]
+            ax.plot(yy.warming_k, yy.ela_shift_m, ".", color=c, ms=2.5, alpha=0.5)
+        monthly = tg[~uniform.loc[tg.index]]
+        for r in monthly.itertuples():
+            if np.isfinite(r.ela_shift_m):
+                ax.errorbar([r.warming_k], [r.ela_shift_m], yerr=[0.0 if np.isnan(r.ela_shift_sd_m) else r.ela_shift_sd_m],
+                            fmt="*", color="k", ms=9, capsize=3)
+                ax.annotate(str(r.scenario), (r.warming_k, r.ela_shift_m), textcoords="offset points",
+                            xytext=(6, -10), fontsize=7)
+            else:
+                top.append((r.warming_k, "k"))
+        if np.isfinite(room):
+            ylim = ax.get_ylim()
+            ax.axhspan(room, max(ylim[1], room) + 1e5, color="0.93", zorder=0)
+            ax.set_ylim(ylim[0], max(ylim[1], room * 1.08))
+        if top:
+            ylim = ax.get_ylim()
+            for w, c in top:
+                ax.plot([w], [ylim[1]], "^", color=c, ms=7, clip_on=False)
+            ax.set_ylim(ylim)
         ax.set_title(str(name), fontsize=10)
-        ax.set_xlabel("warming (K)")
-        ax.set_ylabel("mean ELA (m a.s.l.)")
+        ax.set_xlabel("warming (K; monthly scenarios: mean)")
+        ax.set_ylabel("ELA shift (m)")
         ax.grid(alpha=0.3)
-    handles = [Line2D([], [], ls=style[p], color=pcol[p], label=f"precipitation {p:+g} %")
-               for p in precips]
-    handles += [Line2D([], [], ls="", marker="o", color="0.3", label="ELA on the glacier every year"),
-                Line2D([], [], ls="", marker="o", mfc="white", mec="0.3",
-                       label="ELA off the glacier in some years"),
-                Line2D([], [], ls="", marker="^", color="0.3", label="ELA above the glacier every year"),
-                Line2D([], [], ls="", marker="v", color="0.3", label="ELA below the glacier every year")]
-    _finish(fig, "Equilibrium-line altitude under warming", site, handles)
+    handles = [Line2D([], [], ls=style[p], color=pcol[p], label=f"precipitation {p:+g} %") for p in precips]
+    handles += [Line2D([], [], ls="", marker="o", color="0.3", label="every year paired"),
+                Line2D([], [], ls="", marker="o", mfc="white", mec="0.3", label="some years unpaired"),
+                Line2D([], [], ls="", marker="^", color="0.3", label="no year paired (ELA off the glacier)"),
+                Line2D([], [], ls="", marker=".", color="0.3", label="single balance years")]
+    if (~uniform).any():
+        handles.append(Line2D([], [], ls="", marker="*", color="k", ms=9, label="monthly change scenario"))
+    _finish(fig, "Equilibrium-line altitude shift under warming", site, handles)
     return fig
 
 

@@ -1,10 +1,13 @@
-"""``firnline scenarios CONFIG --warming K [K ...] [--precip-change PCT [PCT ...]]``.
+"""``firnline scenarios CONFIG --warming K [K ...] [--precip-change PCT [PCT ...]] [--changes FILE ...]``.
 
 Runs every combination of the warmings and precipitation changes (and always the
-no-change reference) in one kernel pass and writes, all or nothing:
+no-change reference), plus one scenario per monthly change file (named by its stem),
+in one kernel pass and writes, all or nothing:
 
-* ``scenarios.csv``, ``scenario_years.csv``, ``sensitivity.csv``, ``scenario_profiles.csv``
-* ``mean_annual_balance_w<K>_p<PCT>.tif`` per scenario, e.g. ``mean_annual_balance_w+1.0_p+0.tif``
+* ``scenarios.csv``, ``scenario_years.csv``, ``sensitivity.csv``, ``scenario_profiles.csv``,
+  ``scenario_budget.csv`` (ELA0 and AAR0 per scenario), ``precip_offset.csv``
+* ``mean_annual_balance_w<K>_p<PCT>.tif`` per scenario, e.g. ``mean_annual_balance_w+1.0_p+0.tif``,
+  and ``mean_annual_balance_<stem>.tif`` per change file
 * ``ela_vs_warming.png``, ``balance_vs_warming.png``, ``balance_profiles.png``
 * ``scenarios.json`` (provenance, the rules of the means and slopes, flag counts)
 """
@@ -27,20 +30,27 @@ def add_parser(sub) -> None:
     p.add_argument("--precip-change", nargs="*", metavar="PCT",
                    help="precipitation changes, %% (each above -100; default 0)")
     p.add_argument("--no-report", action="store_true", help="skip scenarios_report.html")
+    p.add_argument("--changes", nargs="*", metavar="FILE",
+                   help="monthly change files (CSV: month, warming_k, precip_change_pct; 12 rows), one "
+                        "scenario each, named by the file stem")
     p.set_defaults(func=main)
 
 
 def main(args) -> int:
-    if not args.warming:
-        raise InputError("firnline scenarios needs --warming K [K ...]: give one or more warmings in K, "
-                         "e.g. --warming 1 2 3.")
+    if args.changes is not None and not args.changes:
+        raise InputError("--changes needs one or more change files (CSV: month, warming_k, precip_change_pct).")
+    if not args.warming and not args.changes:
+        raise InputError("firnline scenarios needs --warming K [K ...] or --changes FILE [FILE ...]: give one "
+                         "or more warmings in K, e.g. --warming 1 2 3, or monthly change files.")
     from ..model import prepare
     from ..provenance import CAUTION
     from ..scenario_products import sweep_table, write_sweep
-    from ..scenarios import scenario_list, sweep
+    from ..scenarios import scenario_definitions, sweep
 
-    # checks the values before any work
-    scen = scenario_list(args.warming, args.precip_change or [], names=SCENARIO_OPTIONS)
+    # checks the values and reads the change files before any work
+    scen = scenario_definitions(args.warming or [], args.precip_change or [], args.changes or [],
+                                names=SCENARIO_OPTIONS)
+    monthly = [s for s in scen if s.source is not None]       # the change files, already read
     cfg, out = config_and_out(args)
     with claim_output(args, cfg, out, "scenarios", scenarios=len(scen)):
         progress = progress_bars(args.quiet)
@@ -48,7 +58,7 @@ def main(args) -> int:
         for note in setup.notes:
             say(args, note)
         say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
-        result = sweep(setup, args.warming, args.precip_change or [], progress=progress)
+        result = sweep(setup, args.warming or [], args.precip_change or [], progress=progress, changes=monthly)
         files = write_sweep(result, out, report=not args.no_report)
     print(sweep_table(result))
     say(args, f"wrote {len(files)} files to {out}")

@@ -703,8 +703,16 @@ _ROWS = (
      "demo value (optional section): GeoJSON, GeoPackage or Shapefile"),
     ("glaciers", "id_field", "name", 'default "name"'),
     ("glaciers", "layer", '"outlines"', "GeoPackage layer; default: the first layer"),
-    ("climate", "station_file", "{inputs}station.csv", "demo value (required)"),
-    ("climate", "station_elevation_m", STATION_ELEVATION_M, "demo value (required): the Seldra Dam station"),
+    ("climate", "station_file", "{inputs}station.csv",
+     "demo value: one station (exactly one of station_file, stations, grid_file)"),
+    ("climate", "station_elevation_m", STATION_ELEVATION_M,
+     "demo value (required with station_file): the Seldra Dam station"),
+    ("climate", "stations", '"stations.csv"',
+     "several stations: station, x, y, elevation_m, file (configs/demo_stations.toml)"),
+    ("climate", "stations_crs", '"EPSG:32632"', "default: the DEM's CRS (stations)"),
+    ("climate", "idw_power", "#2.0", "default: inverse-distance power (stations)"),
+    ("climate", "lapse_rate_from_stations", "#false", "default: regress each day's lapse rate on >= 3 stations"),
+    ("climate", "grid_file", '"forcing.nc"', "gridded NetCDF-CF forcing (configs/demo_grid.toml)"),
     ("climate", "date_column", "date", "default"),
     ("climate", "temperature_column", "temperature_c", "default: daily mean air temperature, deg C"),
     ("climate", "precipitation_column", "precipitation_mm", "default: daily total, mm"),
@@ -765,6 +773,8 @@ def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> 
             section = sec
         if isinstance(value, str) and value.startswith('"'):   # an optional key, shown commented out
             row = f"# {key} = {value}"
+        elif isinstance(value, str) and value.startswith("#"):   # a key shown commented out, raw TOML
+            row = f"# {key} = {value[1:]}"
         else:
             if isinstance(value, str):
                 value = value.replace("{inputs}", inputs_prefix)
@@ -775,7 +785,10 @@ def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> 
 
 def write_demo(folder) -> Path:
     """Write the demo inputs and ``demo.toml`` into ``folder``; return the config's path."""
-    return write_demo_inputs(Path(folder), config_text=demo_config_text())["config"]
+    folder = Path(folder)
+    path = write_demo_inputs(folder, config_text=demo_config_text())["config"]
+    write_demo_climate(folder, configs=True)
+    return path
 
 
 def write_repo_config(path) -> None:
@@ -915,3 +928,229 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
     geodetic[["glacier", "start_date", "end_date", "dh_m", "sigma_mwe"]].to_csv(
         staging.path(names["glacier_balances"]), index=False)
     return names
+
+
+# ----------------------------------------------------------------------------
+# more climate for the demo: two more stations, a small gridded forcing file, and two
+# monthly change scenarios (all invented)
+# ----------------------------------------------------------------------------
+
+DEMO_STATIONS = (
+    # name, target elevation (m), near (row, column) of the DEM
+    ("Kessel Hut", 2450.0, (78, 90)),
+    ("Seldra Pass", 2750.0, (262, 200)),
+)
+"""The invented upper stations: a hut below the Kessel cirque and a col south of North Seldra."""
+
+_TRUE_LAPSE_K_PER_M = (-0.0048, -0.0052, -0.0058, -0.0064, -0.0068, -0.0070,
+                       -0.0069, -0.0067, -0.0063, -0.0058, -0.0052, -0.0048)
+"""Invented monthly lapse rates (January first) of the Seldra valley: weaker in winter
+(valley inversions), near the standard value in summer."""
+
+_DEMO_GRADIENT_PER_M = 0.0004
+"""Invented relative precipitation increase per metre used to make the upper records."""
+
+DEMO_CHANGES = {
+    # invented monthly changes (January first): warming K, precipitation change %
+    "moderate": ((1.0, 1.0, 1.1, 1.2, 1.3, 1.5, 1.7, 1.8, 1.5, 1.3, 1.1, 1.0),
+                 (8.0, 8.0, 6.0, 4.0, 0.0, -4.0, -7.0, -8.0, -5.0, 0.0, 4.0, 7.0)),
+    "strong": ((2.6, 2.7, 2.8, 3.0, 3.3, 3.7, 4.1, 4.3, 3.8, 3.3, 2.9, 2.6),
+               (14.0, 13.0, 10.0, 6.0, -2.0, -10.0, -16.0, -18.0, -12.0, -2.0, 6.0, 12.0)),
+}
+"""The two invented change scenarios of ``demo_dem/moderate.csv`` and ``demo_dem/strong.csv``."""
+
+GRID_SPACING_M = 3000.0
+"""Spacing of the invented gridded forcing (a coarse "downscaled reanalysis"), m."""
+
+
+def _station_cell(elevation, target_m, near, exclude):
+    """The off-glacier cell closest to ``near`` whose elevation lies within 25 m of ``target_m``."""
+    rows, cols = np.nonzero(np.isfinite(elevation) & (np.abs(elevation - target_m) < 25.0) & ~exclude)
+    k = int(np.argmin((rows - near[0]) ** 2 + (cols - near[1]) ** 2))
+    return int(rows[k]), int(cols[k])
+
+
+def make_station_network(seed: int = DEFAULT_SEED, base: pd.DataFrame | None = None):
+    """The invented station table and the records of the two upper stations.
+
+    The upper records are the valley record carried up with invented monthly lapse rates
+    (:data:`_TRUE_LAPSE_K_PER_M`) and precipitation gradient, plus local AR(1) temperature
+    noise (Wilks 2011, section 9.3) and log-normal noise on wet-day amounts, with two
+    invented gaps (Kessel Hut without values 10-24 January 2019; Seldra Pass without rows
+    1-9 July 2021, a logger failure). The valley station sits at the valley outlet.
+
+    Returns
+    -------
+    table : DataFrame (station, x, y, elevation_m, file), EPSG:32632
+    records : dict file name -> DataFrame (date, temperature_c, precipitation_mm)
+    """
+    base = make_station_record(seed) if base is None else base
+    elevation, transform = make_dem(seed)
+    masks = glacier_masks(elevation, transform)
+    on_ice = np.zeros(elevation.shape, bool)
+    for m in masks.values():
+        on_ice |= m
+    on_ice = ndimage.binary_dilation(on_ice, iterations=3)
+    rng = np.random.default_rng(seed + 13)
+    dates = pd.to_datetime(base["date"])
+    month = dates.dt.month.to_numpy()
+    t1 = base["temperature_c"].to_numpy(float)
+    p1 = base["precipitation_mm"].to_numpy(float)
+    lapse = np.asarray(_TRUE_LAPSE_K_PER_M)[month - 1]
+
+    def xy(r, c):
+        x, y = transform * (c + 0.5, r + 0.5)
+        return round(float(x), 1), round(float(y), 1)
+
+    r0, c0 = np.unravel_index(np.nanargmin(np.where(np.isfinite(elevation), elevation, np.inf)), elevation.shape)
+    rows = [(STATION_NAME, *xy(r0, c0), STATION_ELEVATION_M, "station.csv")]
+    records = {}
+    for k, (name, target, near) in enumerate(DEMO_STATIONS):
+        r, c = _station_cell(elevation, target, near, on_ice)
+        z = round(float(elevation[r, c]))
+        dz = z - STATION_ELEVATION_M
+        noise = np.empty(t1.size)
+        e = rng.normal(0.0, 0.6 * np.sqrt(1 - 0.7 ** 2), t1.size)
+        noise[0] = e[0]
+        for i in range(1, t1.size):      # recursive filter over the days of one station
+            noise[i] = 0.7 * noise[i - 1] + e[i]
+        t = t1 + lapse * dz + noise
+        wet = p1 > 0
+        p = np.where(wet, p1 * (1 + _DEMO_GRADIENT_PER_M * dz) * np.exp(rng.normal(-0.03, 0.25, t1.size)), 0.0)
+        df = pd.DataFrame({"date": base["date"], "temperature_c": np.round(t, 1),
+                           "precipitation_mm": np.round(p, 1)})
+        if k == 0:
+            gap = (dates >= "2019-01-10") & (dates <= "2019-01-24")
+            df = df.astype({"temperature_c": object, "precipitation_mm": object})
+            df.loc[gap.to_numpy(), ["temperature_c", "precipitation_mm"]] = ""
+        else:
+            df = df[~((dates >= "2021-07-01") & (dates <= "2021-07-09")).to_numpy()]
+        fname = name.lower().replace(" ", "_") + ".csv"
+        records[fname] = df
+        rows.append((name, *xy(r, c), float(z), fname))
+    table = pd.DataFrame(rows, columns=["station", "x", "y", "elevation_m", "file"])
+    return table, records
+
+
+def make_grid_forcing(seed: int = DEFAULT_SEED, base: pd.DataFrame | None = None):
+    """An invented small gridded forcing on a 3 km grid over the demo catchment (xarray Dataset).
+
+    NetCDF-CF 1.8: ``tas`` (air_temperature, K), ``pr`` (precipitation_flux, kg m-2 s-1),
+    ``orog`` (surface_altitude, m, a smooth invented coarse terrain), projected
+    coordinates in EPSG:32632 with a ``crs`` grid mapping, daily time axis with bounds.
+    The values are the valley record carried to each grid point with the invented
+    monthly lapse rates and precipitation gradient, plus a weak west-east gradient and
+    small point noise.
+    """
+    import xarray as xr
+    from pyproj import CRS
+
+    base = make_station_record(seed) if base is None else base
+    rng = np.random.default_rng(seed + 17)
+    x0, y0 = DEM_ORIGIN
+    xs = np.arange(x0 - 1500.0, x0 + DEM_SHAPE[1] * CELL_SIZE_M + 3000.0, GRID_SPACING_M)
+    ys = np.arange(y0 + 1500.0, y0 - DEM_SHAPE[0] * CELL_SIZE_M - 3000.0, -GRID_SPACING_M)
+    X, Y = np.meshgrid(xs, ys)
+    xc, yc = xs.mean(), ys.mean()
+    orog = 1500.0 + 900.0 * np.exp(-(((X - xc) / 6000.0) ** 2 + ((Y - yc) / 5000.0) ** 2))
+    dates = pd.to_datetime(base["date"])
+    month = dates.dt.month.to_numpy()
+    t1 = base["temperature_c"].to_numpy(float)
+    p1 = base["precipitation_mm"].to_numpy(float)
+    lapse = np.asarray(_TRUE_LAPSE_K_PER_M)[month - 1]
+    dz = orog - STATION_ELEVATION_M
+    tas = (t1[:, None, None] + lapse[:, None, None] * dz[None] + 0.4 * ((X - xc) / 6000.0)[None]
+           + rng.normal(0.0, 0.3, (t1.size,) + X.shape))
+    wet = 1.0 + 0.08 * ((xc - X) / 6000.0)        # a little wetter to the west (invented)
+    pr = p1[:, None, None] * (1 + _DEMO_GRADIENT_PER_M * dz)[None] * wet[None]
+    days = (dates - dates[0]).dt.days.to_numpy().astype("float64")
+    gm = {"grid_mapping": "crs"}
+    ds = xr.Dataset(
+        {"tas": (("time", "y", "x"), (tas + 273.15).astype("float32"),
+                 {"standard_name": "air_temperature", "units": "K", "long_name": "daily mean air temperature",
+                  "cell_methods": "time: mean", **gm}),
+         "pr": (("time", "y", "x"), (pr / 86400.0).astype("float32"),
+                {"standard_name": "precipitation_flux", "units": "kg m-2 s-1",
+                 "long_name": "daily mean precipitation rate", "cell_methods": "time: mean", **gm}),
+         "orog": (("y", "x"), orog.astype("float32"),
+                  {"standard_name": "surface_altitude", "units": "m", "long_name": "grid surface elevation", **gm}),
+         "time_bnds": (("time", "nv"), np.column_stack([days, days + 1.0])),
+         "crs": ((), np.int32(0), CRS(DEM_CRS).to_cf())},
+        coords={"time": ("time", days + 0.5, {"standard_name": "time", "units": f"days since {base['date'].iloc[0]}",
+                                              "calendar": "standard", "bounds": "time_bnds"}),
+                "y": ("y", ys, {"standard_name": "projection_y_coordinate", "units": "m"}),
+                "x": ("x", xs, {"standard_name": "projection_x_coordinate", "units": "m"})},
+        attrs={"Conventions": "CF-1.8", "title": "Invented daily forcing of the fictional Seldra catchment",
+               "source": f"firnline.demo.make_grid_forcing(seed={seed}); invented, not a real product"})
+    return ds
+
+
+def change_table(name: str) -> pd.DataFrame:
+    """One of the invented monthly change scenarios (:data:`DEMO_CHANGES`) as a change table."""
+    w, p = DEMO_CHANGES[name]
+    return pd.DataFrame({"month": np.arange(1, 13), "warming_k": w, "precip_change_pct": p})
+
+
+def write_demo_climate(folder, seed: int = DEFAULT_SEED, configs: bool = False) -> dict[str, Path]:
+    """Write the demo's extra climate inputs into ``folder`` (next to :func:`write_demo_inputs`).
+
+    Files: ``stations.csv`` (the three stations; the valley one is ``station.csv``),
+    ``kessel_hut.csv``, ``seldra_pass.csv``, ``forcing.nc`` (gridded NetCDF-CF),
+    ``moderate.csv`` and ``strong.csv`` (monthly changes), and with ``configs`` also
+    ``demo_stations.toml`` and ``demo_grid.toml``. Staged: all or nothing.
+    """
+    folder = Path(folder)
+    base = make_station_record(seed)
+    table, records = make_station_network(seed, base)
+    grid = make_grid_forcing(seed, base)
+    names = {"stations": "stations.csv", "grid": "forcing.nc"}
+    enc = {v: {"zlib": True, "complevel": 6} for v in ("tas", "pr")}
+    with staged_beside(folder, "demo") as st:
+        write_csv(st.path("stations.csv"), table, float_format="%.1f")
+        for fname, df in records.items():
+            df.to_csv(st.path(fname), index=False, float_format="%.1f")
+            names[fname.removesuffix(".csv")] = fname
+        grid.to_netcdf(st.path("forcing.nc"), engine="h5netcdf", encoding=enc)
+        for name in DEMO_CHANGES:
+            change_table(name).to_csv(st.path(f"{name}.csv"), index=False, float_format="%.1f")
+            names[name] = f"{name}.csv"
+        if configs:
+            for mode in ("stations", "grid"):
+                st.path(f"demo_{mode}.toml").write_text(climate_config_text(mode), encoding="utf-8")
+                names[f"config_{mode}"] = f"demo_{mode}.toml"
+    return {key: folder / name for key, name in names.items()}
+
+
+def climate_config_text(mode: str, inputs_prefix: str = "", output_dir: str | None = None) -> str:
+    """The demo config with ``[climate]`` set to several stations (``mode="stations"``) or the grid."""
+    text = demo_config_text(inputs_prefix, output_dir)
+    lines = []
+    for line in text.splitlines():
+        key = line.split("=")[0].strip().lstrip("# ").strip()
+        if key in ("station_file", "station_elevation_m") and not line.startswith("#"):
+            lines.append("# " + line.replace("# demo value: one station", "# one station")
+                         .replace("# demo value (required with station_file): the Seldra Dam station",
+                                  "# required with station_file"))
+            continue
+        if mode == "stations" and key == "stations":
+            line = f'stations = "{inputs_prefix}stations.csv"'.ljust(42) + \
+                "# demo value: Seldra Dam, Kessel Hut, Seldra Pass (invented)"
+        elif mode == "stations" and key == "lapse_rate_from_stations":
+            line = "lapse_rate_from_stations = true".ljust(42) + "# demo value (default false)"
+        elif mode == "stations" and key == "idw_power":
+            line = "idw_power = 2.0".ljust(42) + "# default: inverse-distance power (stations)"
+        elif mode == "grid" and key == "grid_file":
+            line = f'grid_file = "{inputs_prefix}forcing.nc"'.ljust(42) + "# demo value: invented 3 km gridded forcing"
+        lines.append(line)
+    head = ("# firnline demo with several stations (invented); see configs/demo.toml for every key.\n"
+            if mode == "stations" else
+            "# firnline demo with gridded NetCDF-CF forcing (invented); see configs/demo.toml for every key.\n")
+    return head + "\n".join(lines) + "\n"
+
+
+def write_repo_climate_configs(folder) -> None:
+    """Write ``configs/demo_stations.toml`` and ``configs/demo_grid.toml`` of the source tree."""
+    folder = Path(folder)
+    for mode, name in (("stations", "demo_stations.toml"), ("grid", "demo_grid.toml")):
+        (folder / name).write_text(climate_config_text(mode, "../demo_dem/", output_dir=f"../out/{mode}"),
+                                   encoding="utf-8")

@@ -283,3 +283,52 @@ def read_text_table(path: Path, not_found: str, label: str | None = None, what: 
     except OSError as e:
         raise InputError(f"{path}: cannot read the {what} ({e.strerror or e}).") from None
     return df[~(df.fillna("").apply(lambda c: c.str.strip()) == "").all(axis=1)]   # then dropped
+
+
+def load_forcing(config, grid, cells: np.ndarray) -> tuple[Forcing, dict]:
+    """Read the forcing named in ``[climate]`` (the file edge of every forcing source).
+
+    Parameters
+    ----------
+    config : Config
+    grid : Grid
+        The DEM grid (its CRS places the stations and the gridded file's points).
+    cells : ndarray of int
+        Flat indices of the modelled DEM cells (where a gridded file must have values).
+
+    Returns
+    -------
+    forcing : Forcing
+        One station: its record. Several stations or a gridded file: the calendar, with the
+        :class:`firnline.stations.StationNetwork` or :class:`firnline.gridded.GriddedForcing`
+        as ``cells_source``.
+    checksums : dict
+        SHA-256 of every forcing file read, by name.
+    """
+    from .grid import file_checksum
+
+    cl, b = config.climate, config.balance
+    cols = (cl.date_column, cl.temperature_column, cl.precipitation_column)
+    if cl.mode == "station":
+        f = read_station(cl.station_file, *cols, b.year_start, b.winter_end, cl.start, cl.end)
+        return f, {"station": file_checksum(cl.station_file)}
+    if cl.mode == "stations":
+        from .observations import dem_file_crs
+        from .stations import network_forcing, read_network
+
+        crs = cl.stations_crs if cl.stations_crs is not None else dem_file_crs(grid.path)
+        net = read_network(cl.stations, *cols, crs, grid.crs, cl.idw_power, cl.lapse_rate_from_stations)
+        f = network_forcing(net, b.year_start, b.winter_end, cl.start, cl.end)
+        sums = {"stations": file_checksum(cl.stations)}
+        tab = pd.read_csv(cl.stations, dtype=str, skipinitialspace=True)
+        for name, fname in zip(net.names, tab["file"]):
+            sums[f"station {name}"] = file_checksum(Path(cl.stations).parent / fname.strip())
+        return f, sums
+    from .gridded import read_grid_file
+
+    x, y = grid.cell_centres()
+    ny, nx = grid.shape
+    r, c = np.divmod(np.asarray(cells), nx)
+    f = read_grid_file(cl.grid_file, x[c], y[r], np.asarray(cells), grid.crs, b.year_start, b.winter_end,
+                       cl.start, cl.end)
+    return f, {"grid_file": file_checksum(cl.grid_file)}

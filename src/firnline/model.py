@@ -28,7 +28,7 @@ import xarray as xr
 from . import __version__
 from . import glaciers as glaciers_mod
 from .config import Config
-from .forcing import Forcing, read_station
+from .forcing import Forcing, load_forcing
 from .glaciers import Glaciers
 from .grid import Grid, file_checksum, read_dem
 from .kernel import Calendar, Cells, KernelParams, KernelResult, Scenarios, StationForcing, run_kernel
@@ -150,13 +150,10 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
     else:
         gl = glaciers_mod.whole_grid(config.site.name, grid.valid, grid.cell_area_m2)
     notes += list(gl.warnings)
-    cl = config.climate
-    forcing = read_station(cl.station_file, cl.date_column, cl.temperature_column,
-                           cl.precipitation_column, config.balance.year_start,
-                           config.balance.winter_end, cl.start, cl.end)
-    checksums["station"] = file_checksum(cl.station_file)
-    notes += forcing.notes
     cells = np.flatnonzero(grid.valid.ravel())
+    forcing, sums = load_forcing(config, grid, cells)
+    checksums.update(sums)
+    notes += forcing.notes
     t1 = time.perf_counter()
     timings = {"read_inputs_s": t1 - t0}
     if need_radiation is None:
@@ -232,44 +229,9 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
                              f"and cached it in {rc.cache_dir}.")
 
 
-@dataclass(frozen=True)
-class TerrainResult:
-    """Result of :func:`terrain`: the DEM's slope, aspect, radiation climatology and horizons.
-
-    ``horizons`` is None unless ``[radiation] write_horizons``; ``checksums`` holds the
-    SHA-256 of the DEM and the config; ``notes`` the console notes.
-    """
-
-    config: Config
-    grid: Grid
-    slope_deg: np.ndarray
-    aspect_deg: np.ndarray
-    radiation: RadiationTable
-    horizons: np.ndarray | None
-    checksums: dict
-    notes: tuple
-
-    def write(self, out_dir: str | Path | None = None) -> list[Path]:
-        """Write the terrain products into ``out_dir`` (default: ``[output] dir``)."""
-        from .products import write_terrain
-        return write_terrain(self, Path(out_dir) if out_dir is not None else self.config.output.dir)
-
-
-def terrain(config: Config, progress: Progress = None) -> TerrainResult:
-    """Slope and aspect (Horn 1981), the radiation climatology and, if asked, the horizons.
-
-    Parameters
-    ----------
-    config : Config
-    progress : callable(label, done, total), optional
-    """
-    grid = read_dem(config.dem.path)
-    slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
-    want = config.radiation.write_horizons
-    table, horizons, note = radiation_climatology(grid, slope, aspect, config, progress, want_horizons=want)
-    return TerrainResult(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, radiation=table,
-                         horizons=horizons if want else None, checksums=input_checksums(config, grid),
-                         notes=(*grid.notes, note))
+    forcing, sums = load_forcing(config, grid, cells)
+    checksums.update(sums)
+    notes += forcing.notes
 
 
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),

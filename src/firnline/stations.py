@@ -164,8 +164,10 @@ class StationCells:
         self.n_cells = z.size
         zr = network.reference_elevation_m
         g = float(params.precip_gradient_per_m)
+        n_days = len(month)             # the record may be cut short (e.g. for a calibration)
+        rows = slice(0, n_days)
         self.lapse, self.n_regressed, self.n_limited = network.daily_lapse_rates(
-            params.lapse_rate_k_per_m, month, *lapse_bounds)
+            params.lapse_rate_k_per_m, month, *lapse_bounds, rows=rows)
         dz_st = network.elevation_m - zr
         red = 1.0 + g * dz_st
         if np.any(red <= 0):
@@ -174,8 +176,8 @@ class StationCells:
                              f"{dz_st[i]:.0f} m above the lowest station, where [downscaling] "
                              f"precip_gradient_per_m = {g:g} leaves no precipitation; use a smaller "
                              "negative gradient or drop the station.")
-        self.t0 = network.temperature_c - self.lapse[:, None] * dz_st[None, :]
-        self.p0 = network.precipitation_mm / red[None, :]
+        self.t0 = network.temperature_c[rows] - self.lapse[:, None] * dz_st[None, :]
+        self.p0 = network.precipitation_mm[rows] / red[None, :]
         self.dz = z - zr
         self.orog = float(params.precip_factor) * np.maximum(0.0, 1.0 + g * self.dz)
         self.weights = idw_weights(np.asarray(x_m, float), np.asarray(y_m, float), network.x_m,

@@ -181,6 +181,20 @@ class GridCells:
         self.lapse_month = np.asarray(params.lapse_rate_k_per_m, dtype="float64")
         self.month = np.asarray(month)
         self._cache = (0, 0, None, None)
+        self._out = None
+        # bilinear form per grid quad: v = a + b wx + c wy + e wx wy, with the quad's four
+        # corner values; cells come in runs that share a quad (row-major DEM order), so the
+        # inner loop is contiguous arithmetic with four constants per run
+        corners, first, self.corner = np.unique(src.idx[0], return_index=True, return_inverse=True)
+        self.corner_points = src.idx[:, first]                       # (4, n_quads) window points
+        self.wx = np.ascontiguousarray(src.wts[1] + src.wts[3])
+        self.wy = np.ascontiguousarray(src.wts[2] + src.wts[3])
+        q = self.corner
+        self.run_start = np.concatenate([[0], np.flatnonzero(np.diff(q)) + 1, [q.size]]).astype(np.int64)
+        self.run_quad = q[self.run_start[:-1]].astype(np.int64)
+        # parallel pieces of about 4096 cells each, cut at run boundaries
+        cuts = np.searchsorted(self.run_start, np.arange(0, q.size, 4096), side="right") - 1
+        self.piece = np.unique(np.concatenate([cuts, [self.run_start.size - 1]])).astype(np.int64)
 
     def _days(self, a: int, b: int):
         c0, c1, t, p = self._cache
@@ -191,35 +205,47 @@ class GridCells:
         return t[a - c0:b - c0], p[a - c0:b - c0]
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
-        """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32."""
+        """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32.
+
+        The two arrays are reused by the next call; copy them to keep them.
+        """
+        from .stations import _buffers
+
         tg, pg = self._days(a, b)
         lapse = self.lapse_month[self.month[a:b] - 1]
-        t = np.empty((b - a, self.n_cells), dtype="float32")
-        p = np.empty((b - a, self.n_cells), dtype="float32")
-        _bilinear_block(self.src.idx, self.src.wts, np.ascontiguousarray(tg), np.ascontiguousarray(pg),
+        t, p = _buffers(self, b - a)
+        cp = self.corner_points
+        coef = []
+        for v in (tg, pg):
+            v00, v01, v10, v11 = (v[:, cp[j]] for j in range(4))
+            coef.append(np.ascontiguousarray(np.stack([v00, v01 - v00, v10 - v00, v11 - v10 - v01 + v00], axis=1)))
+        _bilinear_block(self.run_start, self.run_quad, self.piece, self.wx, self.wy, coef[0], coef[1],
                         lapse, self.dz, self.orog, t, p)
         return t, p
 
 
 @njit(parallel=True, cache=True)
-def _bilinear_block(idx, wts, tg, pg, lapse, dz, orog, t_out, p_out):
-    nc = idx.shape[1]
-    nd = tg.shape[0]
-    chunk = 4096
-    for k in prange((nc + chunk - 1) // chunk):
-        c0 = k * chunk
-        c1 = min(nc, c0 + chunk)
+def _bilinear_block(run_start, run_quad, piece, wx, wy, ct, cp, lapse, dz, orog, t_out, p_out):
+    """Bilinear interpolation of one block of days to the cells, with the elevation correction.
+
+    ``ct``, ``cp`` (nd, 4, n_quads): the coefficients a, b, c, e of each quad's bilinear
+    form a + b wx + c wy + e wx wy for temperature and precipitation; cells in runs of one
+    quad (``run_start``, ``run_quad``), runs grouped in parallel pieces (``piece``).
+    """
+    nd = ct.shape[0]
+    for k in prange(piece.size - 1):
         for d in range(nd):
-            for c in range(c0, c1):
-                t = 0.0
-                p = 0.0
-                for j in range(4):
-                    i = idx[j, c]
-                    w = wts[j, c]
-                    t += w * tg[d, i]
-                    p += w * pg[d, i]
-                t_out[d, c] = t + lapse[d] * dz[c]
-                p_out[d, c] = p * orog[c]
+            lap = lapse[d]
+            for r in range(piece[k], piece[k + 1]):
+                q = run_quad[r]
+                ta, tb, tc, te = ct[d, 0, q], ct[d, 1, q], ct[d, 2, q], ct[d, 3, q]
+                pa, pb, pc, pe = cp[d, 0, q], cp[d, 1, q], cp[d, 2, q], cp[d, 3, q]
+                for i in range(run_start[r], run_start[r + 1]):
+                    x = wx[i]
+                    y = wy[i]
+                    xy = x * y
+                    t_out[d, i] = ta + tb * x + tc * y + te * xy + lap * dz[i]
+                    p_out[d, i] = (pa + pb * x + pc * y + pe * xy) * orog[i]
 
 
 # ----------------------------------------------------------------------------

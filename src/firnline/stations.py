@@ -176,25 +176,57 @@ class StationCells:
                              f"{dz_st[i]:.0f} m above the lowest station, where [downscaling] "
                              f"precip_gradient_per_m = {g:g} leaves no precipitation; use a smaller "
                              "negative gradient or drop the station.")
-        self.t0 = network.temperature_c[rows] - self.lapse[:, None] * dz_st[None, :]
-        self.p0 = network.precipitation_mm[rows] / red[None, :]
+        t0 = network.temperature_c[rows] - self.lapse[:, None] * dz_st[None, :]
+        p0 = network.precipitation_mm[rows] / red[None, :]
+        self.at = np.isfinite(t0).astype("float64")
+        self.ap = np.isfinite(p0).astype("float64")
+        self.t0 = np.where(self.at > 0, t0, 0.0)
+        self.p0 = np.where(self.ap > 0, p0, 0.0)
+        self.full = (self.at.min(axis=1) > 0) & (self.ap.min(axis=1) > 0)
+        self._out = None
         self.dz = z - zr
         self.orog = float(params.precip_factor) * np.maximum(0.0, 1.0 + g * self.dz)
         self.weights = idw_weights(np.asarray(x_m, float), np.asarray(y_m, float), network.x_m,
                                    network.y_m, network.power)
+        # days on which every station reports: T = [T0, lapse] @ [w; dz], P = P0 @ (w * orog),
+        # two float32 matrix products (BLAS) that write each output value once
+        self._bt = np.ascontiguousarray(np.vstack([self.weights, self.dz[None, :].astype("float32")]))
+        self._bp = np.ascontiguousarray((self.weights * self.orog[None, :]).astype("float32"))
+        self._at = np.ascontiguousarray(np.column_stack([self.t0, self.lapse]).astype("float32"))
+        self._ap = np.ascontiguousarray(self.p0.astype("float32"))
 
     @property
     def n_days(self) -> int:
         return self.t0.shape[0]
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
-        """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32."""
-        nd = b - a
-        t = np.empty((nd, self.n_cells), dtype="float32")
-        p = np.empty((nd, self.n_cells), dtype="float32")
-        _idw_block(self.weights, self.dz, self.orog, np.ascontiguousarray(self.t0[a:b]),
-                   np.ascontiguousarray(self.p0[a:b]), np.ascontiguousarray(self.lapse[a:b]), t, p)
+        """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32.
+
+        The two arrays are reused by the next call (the kernel consumes one block before
+        asking for the next); copy them to keep them.
+        """
+        t, p = _buffers(self, b - a)
+        np.matmul(self._at[a:b], self._bt, out=t)
+        np.matmul(self._ap[a:b], self._bp, out=p)
+        part = np.flatnonzero(~self.full[a:b]) + a       # days with a station missing: renormalise
+        if part.size:
+            tp = np.empty((part.size, self.n_cells), dtype="float32")
+            pp = np.empty((part.size, self.n_cells), dtype="float32")
+            _idw_block(self.weights, self.dz, self.orog, self.t0[part], self.at[part], self.p0[part],
+                       self.ap[part], self.lapse[part], tp, pp)
+            t[part - a] = tp
+            p[part - a] = pp
         return t, p
+
+
+def _buffers(provider, nd: int) -> tuple[np.ndarray, np.ndarray]:
+    """Two (nd, n_cells) float32 arrays kept on the provider and reused block after block
+    (fresh arrays each block would cost more in page faults than the interpolation)."""
+    out = provider._out
+    if out is None or out[0].shape[0] < nd:
+        out = provider._out = (np.empty((nd, provider.n_cells), dtype="float32"),
+                               np.empty((nd, provider.n_cells), dtype="float32"))
+    return out[0][:nd], out[1][:nd]
 
 
 def idw_weights(x: np.ndarray, y: np.ndarray, xs: np.ndarray, ys: np.ndarray, power: float) -> np.ndarray:
@@ -209,31 +241,38 @@ def idw_weights(x: np.ndarray, y: np.ndarray, xs: np.ndarray, ys: np.ndarray, po
 
 
 @njit(parallel=True, cache=True)
-def _idw_block(w, dz, orog, t0, p0, lapse, t_out, p_out):
+def _idw_block(w, dz, orog, t0, at, p0, ap, lapse, t_out, p_out):
+    """Days on which some station is missing: t0/p0 (nd, ns) reduced values with 0 where
+    missing, at/ap their availability (1/0); the weights are renormalised over the
+    stations that report. Station loop outside the contiguous cell loop, float64 sums."""
     ns, nc = w.shape
     nd = t0.shape[0]
     n_chunks = (nc + _CHUNK - 1) // _CHUNK
     for k in prange(n_chunks):
         c0 = k * _CHUNK
         c1 = min(nc, c0 + _CHUNK)
+        m = c1 - c0
+        st = np.empty(m)
+        sp = np.empty(m)
+        sw = np.empty(m)
+        swp = np.empty(m)
         for d in range(nd):
-            for c in range(c0, c1):
-                st = 0.0
-                sw = 0.0
-                sp = 0.0
-                swp = 0.0
-                for s in range(ns):
-                    ws = w[s, c]
-                    v = t0[d, s]
-                    if v == v:
-                        st += ws * v
-                        sw += ws
-                    v = p0[d, s]
-                    if v == v:
-                        sp += ws * v
-                        swp += ws
-                t_out[d, c] = st / sw + lapse[d] * dz[c]
-                p_out[d, c] = sp / swp * orog[c]
+            st[:] = 0.0
+            sp[:] = 0.0
+            sw[:] = 0.0
+            swp[:] = 0.0
+            for s in range(ns):
+                vt, vp, a_t, a_p = t0[d, s], p0[d, s], at[d, s], ap[d, s]
+                for i in range(m):
+                    ws = w[s, c0 + i]
+                    st[i] += ws * vt
+                    sp[i] += ws * vp
+                    sw[i] += ws * a_t
+                    swp[i] += ws * a_p
+            lap = lapse[d]
+            for i in range(m):
+                t_out[d, c0 + i] = st[i] / sw[i] + lap * dz[c0 + i]
+                p_out[d, c0 + i] = sp[i] / swp[i] * orog[c0 + i]
 
 
 # ----------------------------------------------------------------------------

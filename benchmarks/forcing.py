@@ -137,7 +137,6 @@ def main() -> None:
         t_floor = best_of(write_only, args.repeat)
         lines.append(f"floor of the block protocol (writing two float32 arrays of every block): {t_floor:.2f} s = "
                      f"{100 * t_floor / t_kernel:.0f} % of the station-mode kernel")
-        del buf
         for mode in ("stations", "grid"):
             setup = setups[mode]
             prov = cell_forcing(setup, KernelParams.from_config(cfgs[mode]))

@@ -45,7 +45,8 @@ def test_change_file_is_one_scenario_named_by_its_stem(tmp_path):
     (lambda df: df.assign(month=[1, 2, 3, 4, 5, 5, 7, 8, 9, 10, 11, 12]), "line 7: month 5 appears twice"),
     (lambda df: df.assign(month=list(range(1, 12)) + [13]), "line 13: month 13 is not a whole month"),
     (lambda df: df.assign(warming_k=df.warming_k.astype(str).where(df.index != 3, "warm")), "line 5: warming_k 'warm'"),
-    (lambda df: df.assign(precip_change_pct=df.precip_change_pct.where(df.index != 0, -100.0)), "line 2: precip_change_pct -100 would remove"),
+    (lambda df: df.assign(precip_change_pct=df.precip_change_pct.where(df.index != 0, -100.0)),
+     "line 2: precip_change_pct -100 would remove"),
 ])
 def test_bad_change_files_name_file_and_line(tmp_path, edit, words):
     path = write_change_file(tmp_path / "bad.csv", [1.0] * 12, [0.0] * 12)
@@ -73,7 +74,7 @@ def test_delta_change_recovers_monthly_differences_and_ratios(tmp_path):
     dt_m = np.linspace(0.8, 2.5, 12)
     ratio_m = np.linspace(0.85, 1.2, 12)
     future = d.year >= 2001
-    t = 5 + 8 * np.sin(2 * np.pi * d.dayofyear.to_numpy() / 365.25) + rng.normal(0, 2, d.size)
+    t = 5 + 8 * np.sin(2 * np.pi * d.day_of_year.to_numpy() / 365.25) + rng.normal(0, 2, d.size)
     p = rng.gamma(0.6, 6, d.size)
     # the future decade: the reference decade repeated with the monthly change applied
     ref = ~future
@@ -219,3 +220,53 @@ def test_scenarios_bad_changes_exit_2(tmp_path, capsys, args, words):
     err = capsys.readouterr().err
     assert words in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "o").exists()
+
+
+def seasonal_case(tmp_path):
+    dates = pd.date_range("2015-10-01", "2018-09-30", freq="D")
+    rng = np.random.default_rng(5)
+    t = 1 + 9 * np.sin(2 * np.pi * (np.arange(dates.size) - 100) / 365.25) + rng.normal(0, 3, dates.size)
+    p = rng.gamma(0.6, 8, dates.size)
+    write_dem(tmp_path / "dem.tif", ramp(40, 3, 3400.0, 1800.0))
+    write_station(tmp_path / "station.csv", "2015-10-01", "2018-09-30", t, p)
+    return firnline.load_config(write_config(tmp_path / "case.toml", base_sections(1800.0)))
+
+
+def test_twelve_equal_monthly_warmings_equal_the_uniform_warming_bit_for_bit(tmp_path):
+    """A change file of twelve 1.0 K and +5 % rows is the uniform step (1 K, +5 %), bit for bit,
+    also when it runs beside a truly monthly scenario."""
+    cfg = seasonal_case(tmp_path)
+    setup = prepare(cfg)
+    flat = write_change_file(tmp_path / "flat.csv", [1.0] * 12, [5.0] * 12)
+    summer = write_change_file(tmp_path / "summer.csv", [0, 0, 0, 0, 2, 2, 2, 2, 2, 0, 0, 0], [0.0] * 12)
+    uni = sweep(setup, [1.0], [0.0, 5.0])
+    mon = sweep(setup, [], changes=[flat, summer])
+    a = uni.year_table[uni.year_table.scenario == "w+1.0_p+5"].reset_index(drop=True)
+    b = mon.year_table[mon.year_table.scenario == "flat"].reset_index(drop=True)
+    cols = ["annual_balance_mwe", "winter_balance_mwe", "summer_balance_mwe", "ela_m", "aar"]
+    pd.testing.assert_frame_equal(a[cols], b[cols], check_exact=True)
+    i = [s.name for s in uni.definitions].index("w+1.0_p+5")
+    j = [s.name for s in mon.definitions].index("flat")
+    np.testing.assert_array_equal(uni.mean_balance[i], mon.mean_balance[j])
+
+
+def test_summer_only_warming_leaves_winter_accumulation_unchanged(tmp_path):
+    """Warming only May-September (the fixed-date summer, winter 1 Oct - 30 Apr) changes no
+    winter day: winter snowfall is the same on every cell, bit for bit; the summer balance
+    falls wherever a summer day reaches the melt threshold or crosses the snow/rain range."""
+    from firnline.changes import read_changes
+    from firnline.model import cell_fields
+    from firnline.scenarios import run_scenarios, scenario_definitions
+
+    cfg = seasonal_case(tmp_path)
+    setup = prepare(cfg)
+    summer = write_change_file(tmp_path / "summer.csv", [0, 0, 0, 0, 2, 2, 2, 2, 2, 0, 0, 0], [0.0] * 12)
+    defs = scenario_definitions([], [0.0], [summer])
+    assert defs[0].name == REFERENCE and defs[1].name == "summer"
+    kres = run_scenarios(setup, cfg, defs)
+    ref, warm = cell_fields(setup, kres, 0), cell_fields(setup, kres, 1)
+    np.testing.assert_array_equal(kres.acc_winter[0], kres.acc_winter[1])   # winter snowfall, every cell
+    assert np.all(kres.acc_summer[1] <= kres.acc_summer[0])    # warmer summer days: less of it falls as snow
+    assert np.all(warm["summer_balance"] <= ref["summer_balance"] + 1e-6)
+    assert np.mean(warm["summer_balance"]) < np.mean(ref["summer_balance"]) - 0.1
+    assert read_changes(summer).mean_warming_k == pytest.approx(10 / 12)

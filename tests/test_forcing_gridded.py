@@ -204,10 +204,12 @@ def test_calendar_and_clipping(tmp_path):
     (dict(p_units="inches"), "units 'inches' of the precipitation variable 'pr'"),
     (dict(t_units="F"), "units 'F' of the temperature variable 'tas'"),
     (dict(drop=lambda ds: ds.isel(time=[i for i in range(730) if i != 100])), "the day 2017-01-09 is missing"),
-    (dict(drop=lambda ds: ds.assign(tas=ds.tas.where(ds.time != 200))), "temperature 'tas' has missing values on 2017-04-19"),
+    (dict(drop=lambda ds: ds.assign(tas=ds.tas.where(ds.time != 200))),
+     "temperature 'tas' has missing values on 2017-04-19"),
     (dict(drop=lambda ds: ds.assign(pr=ds.pr - 5)), "precipitation 'pr' on 2016-10-0"),
     (dict(calendar="noleap"), "calendar 'noleap'"),
-    (dict(drop=lambda ds: ds.assign(tas=ds.tas.assign_attrs(grid_mapping="nothere"))), "grid mapping variable 'nothere'"),
+    (dict(drop=lambda ds: ds.assign(tas=ds.tas.assign_attrs(grid_mapping="nothere"))),
+     "grid mapping variable 'nothere'"),
 ])
 def test_bad_gridded_files_name_the_culprit(tmp_path, mutate, words):
     xs, ys, t, p, zs = case(tmp_path)

@@ -189,7 +189,8 @@ def test_a_day_without_any_station_is_an_error_naming_the_date(tmp_path):
 @pytest.mark.parametrize("edit,words", [
     (lambda s: s.replace("station,x", "name,x"), 'no column "station"'),
     (lambda s: s.replace("b,100,0,1100", "b,east,0,1100"), r"line 3 \(station 'b'\): x 'east' is not a number"),
-    (lambda s: s.replace("b,100,0,1100,b.csv", "b,100,0,1100,nowhere.csv"), r"station 'b'.*'nowhere.csv' was not found"),
+    (lambda s: s.replace("b,100,0,1100,b.csv", "b,100,0,1100,nowhere.csv"),
+     r"station 'b'.*'nowhere.csv' was not found"),
     (lambda s: s.replace("b,100", "a,100"), "station 'a' appears twice"),
     (lambda s: s.replace(",1100,", ",12000,"), "elevation_m 12000 is outside"),
     (lambda s: "station,x,y,elevation_m,file\n", "no rows"),

@@ -9,9 +9,17 @@ import pytest
 
 from firnline.errors import InputError
 from firnline.observations import parse_table
-from firnline.runoff import (DEFAULT_STORAGE_DAYS, RESERVOIRS, check_discharge, kling_gupta,
-                             linear_reservoir, mm_per_day_to_m3s, nash_sutcliffe, route,
-                             volume_error)
+from firnline.runoff import (
+    DEFAULT_STORAGE_DAYS,
+    RESERVOIRS,
+    check_discharge,
+    kling_gupta,
+    linear_reservoir,
+    mm_per_day_to_m3s,
+    nash_sutcliffe,
+    route,
+    volume_error,
+)
 
 
 def test_one_mm_per_day_over_86_4_km2_is_one_cubic_metre_per_second():

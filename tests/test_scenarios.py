@@ -22,8 +22,16 @@ from firnline.cli import main
 from firnline.metrics import BUDGET_COLUMNS, balanced_budget
 from firnline.model import prepare
 from firnline.outdir import MANIFEST
-from firnline.scenarios import (SCENARIO_COLUMNS, SCENARIO_EXTRA, YEAR_COLUMNS, YEAR_EXTRA, scenario_label,
-                                scenario_list, sensitivity, sweep)
+from firnline.scenarios import (
+    SCENARIO_COLUMNS,
+    SCENARIO_EXTRA,
+    YEAR_COLUMNS,
+    YEAR_EXTRA,
+    scenario_label,
+    scenario_list,
+    sensitivity,
+    sweep,
+)
 
 REPO = Path(__file__).resolve().parents[1]
 LAPSE = -0.0065   # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
@@ -293,7 +301,8 @@ def test_scenarios_command_writes_every_file_with_the_contract_columns(tmp_path,
     maps = {f"mean_annual_balance_{scenario_label(w, p)}.tif" for w, p in scen}
     assert "mean_annual_balance_w+1.0_p-10.tif" in maps
     expected = {"scenarios.csv", "scenario_years.csv", "sensitivity.csv", "scenario_profiles.csv",
-                "scenario_budget.csv", "precip_offset.csv", "ela_vs_warming.png", "balance_vs_warming.png", "balance_profiles.png",
+                "scenario_budget.csv", "precip_offset.csv", "ela_vs_warming.png", "balance_vs_warming.png",
+                "balance_profiles.png",
                 "scenarios.json"} | maps
     assert names == expected                        # and no staging folder left behind
     t = pd.read_csv(out / "scenarios.csv")

@@ -96,6 +96,7 @@ def parse_changes(df: pd.DataFrame, source: str, name: str) -> Scenario:
     if not _SAFE_NAME.match(name):
         raise InputError(f"{source}: the scenario is named after the file stem {name!r}, which must be "
                          "letters, digits and _ . + - only; rename the file.")
+    line = df.index.to_numpy() + 2          # blank lines dropped: the index keeps the line numbers
     values = {}
     for c in CHANGE_COLUMNS:
         raw = df[c].astype("string").str.strip()
@@ -103,14 +104,14 @@ def parse_changes(df: pd.DataFrame, source: str, name: str) -> Scenario:
         bad = ~np.isfinite(num)
         if bad.any():
             i = int(np.argmax(bad))
-            raise InputError(f"{source}, line {i + 2}: {c} {raw.iloc[i]!r} is not a finite number; correct it.")
+            raise InputError(f"{source}, line {line[i]}: {c} {raw.iloc[i]!r} is not a finite number; correct it.")
         values[c] = num
     m = values["month"]
     for i, v in enumerate(m):
         if v != int(v) or not 1 <= v <= 12:
-            raise InputError(f"{source}, line {i + 2}: month {v:g} is not a whole month 1..12; correct it.")
+            raise InputError(f"{source}, line {line[i]}: month {v:g} is not a whole month 1..12; correct it.")
         if v in m[:i]:
-            raise InputError(f"{source}, line {i + 2}: month {int(v)} appears twice; keep one row per month.")
+            raise InputError(f"{source}, line {line[i]}: month {int(v)} appears twice; keep one row per month.")
     missing = sorted(set(range(1, 13)) - set(int(v) for v in m))
     if missing:
         raise InputError(f"{source}: no row for month {', '.join(str(k) for k in missing)}; give all twelve "
@@ -118,7 +119,7 @@ def parse_changes(df: pd.DataFrame, source: str, name: str) -> Scenario:
     p = values["precip_change_pct"]
     if (p <= -100).any():
         i = int(np.argmax(p <= -100))
-        raise InputError(f"{source}, line {i + 2}: precip_change_pct {p[i]:g} would remove all precipitation; "
+        raise InputError(f"{source}, line {line[i]}: precip_change_pct {p[i]:g} would remove all precipitation; "
                          "give a value above -100.")
     order = np.argsort(m)
     w = tuple(round(float(x), _DECIMALS) + 0.0 for x in values["warming_k"][order])

@@ -60,6 +60,9 @@ DEM_CRS = "EPSG:32632"
 STATION_ELEVATION_M = 1200.0
 """Elevation of the invented valley station "Seldra Dam", m a.s.l."""
 
+VALLEY_STATION = "Seldra Dam"
+"""Name of the invented valley station (the first row of ``stations.csv``)."""
+
 SITE_NAME = "Seldra"
 
 CELL_SIZE_M = 30.0
@@ -1003,7 +1006,7 @@ def make_station_network(seed: int = DEFAULT_SEED, base: pd.DataFrame | None = N
         return round(float(x), 1), round(float(y), 1)
 
     r0, c0 = np.unravel_index(np.nanargmin(np.where(np.isfinite(elevation), elevation, np.inf)), elevation.shape)
-    rows = [(STATION_NAME, *xy(r0, c0), STATION_ELEVATION_M, "station.csv")]
+    rows = [(VALLEY_STATION, *xy(r0, c0), STATION_ELEVATION_M, "station.csv")]
     records = {}
     for k, (name, target, near) in enumerate(DEMO_STATIONS):
         r, c = _station_cell(elevation, target, near, on_ice)

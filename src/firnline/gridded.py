@@ -343,7 +343,8 @@ def read_grid_file(path: Path, cell_x_m: np.ndarray, cell_y_m: np.ndarray, cells
     try:
         ds = _open(path)
     except Exception as e:  # noqa: BLE001 - any reader failure is a bad input file
-        raise InputError(f"{src}: not a readable NetCDF file ({str(e).splitlines()[0] if str(e) else type(e).__name__}).") from None
+        why = str(e).splitlines()[0] if str(e) else type(e).__name__
+        raise InputError(f"{src}: not a readable NetCDF file ({why}).") from None
     with ds:
         t_name = _by_standard_name(ds, TEMPERATURE_NAMES, "daily mean air temperature", src)
         p_name = _by_standard_name(ds, PRECIPITATION_NAMES, "daily precipitation", src)

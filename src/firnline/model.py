@@ -229,9 +229,65 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
                              f"and cached it in {rc.cache_dir}.")
 
 
-    forcing, sums = load_forcing(config, grid, cells)
-    checksums.update(sums)
-    notes += forcing.notes
+@dataclass(frozen=True)
+class TerrainResult:
+    """Result of :func:`terrain`: the DEM's slope, aspect, radiation climatology and horizons.
+
+    ``horizons`` is None unless ``[radiation] write_horizons``; ``checksums`` holds the
+    SHA-256 of the DEM and the config; ``notes`` the console notes.
+    """
+
+    config: Config
+    grid: Grid
+    slope_deg: np.ndarray
+    aspect_deg: np.ndarray
+    radiation: RadiationTable
+    horizons: np.ndarray | None
+    checksums: dict
+    notes: tuple
+
+    def write(self, out_dir: str | Path | None = None) -> list[Path]:
+        """Write the terrain products into ``out_dir`` (default: ``[output] dir``)."""
+        from .products import write_terrain
+        return write_terrain(self, Path(out_dir) if out_dir is not None else self.config.output.dir)
+
+
+def terrain(config: Config, progress: Progress = None) -> TerrainResult:
+    """Slope and aspect (Horn 1981), the radiation climatology and, if asked, the horizons.
+
+    Parameters
+    ----------
+    config : Config
+    progress : callable(label, done, total), optional
+    """
+    grid = read_dem(config.dem.path)
+    slope, aspect = slope_aspect(grid.elevation, *grid.cell_size_m)
+    want = config.radiation.write_horizons
+    table, horizons, note = radiation_climatology(grid, slope, aspect, config, progress, want_horizons=want)
+    return TerrainResult(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, radiation=table,
+                         horizons=horizons if want else None, checksums=input_checksums(config, grid),
+                         notes=(*grid.notes, note))
+
+
+def cell_forcing(setup: Setup, params: KernelParams, positions: np.ndarray | None = None):
+    """The per-cell forcing provider of a setup whose forcing has several stations or a grid.
+
+    ``positions`` (into ``setup.cells`` order) restricts it to some cells. The provider
+    answers ``block(a, b) -> (t, p)`` (the kernel's cell mode) with the lapse rate,
+    precipitation gradient and factor of ``params``.
+    """
+    from .config import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
+    from .gridded import GriddedForcing
+
+    src = setup.forcing.cells_source
+    flat = setup.cells if positions is None else setup.cells[positions]
+    z = setup.z_m if positions is None else setup.z_m[positions]
+    month = setup.forcing.month
+    if isinstance(src, GriddedForcing):
+        return src.cells_provider(z, params, month, np.searchsorted(src.cells, flat))
+    x, y = setup.grid.cell_centres()
+    r, c = np.divmod(flat, setup.grid.shape[1])
+    return src.cells(x[c], y[r], z, params, month, (MIN_LAPSE_K_PER_M, MAX_INVERSION_K_PER_M))
 
 
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
@@ -267,7 +323,10 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         raise RuntimeError("the setup was prepared without the radiation table")
     if scenarios is None:
         scenarios = Scenarios.uniform(warming_k, precip_change_pct)
-    forcing = StationForcing(f.temperature_c, f.precipitation_mm, cfg.climate.station_elevation_m)
+    if f.cells_source is not None:      # several stations or a gridded file: the kernel's cell mode
+        forcing = cell_forcing(setup, params)
+    else:
+        forcing = StationForcing(f.temperature_c, f.precipitation_mm, cfg.climate.station_elevation_m)
     return run_kernel(Cells(setup.z_m, setup.glacier_mask, setup.radiation if params.use_radiation else None),
                       Calendar.from_forcing(f), forcing, params, scenarios, snapshot_days=snapshot_days,
                       progress=stage(progress, "days", f.n_days))

@@ -159,8 +159,8 @@ def ela_figure(table: pd.DataFrame, year_table: pd.DataFrame, glaciers: pd.DataF
         monthly = tg[~uniform.loc[tg.index]]
         for r in monthly.itertuples():
             if np.isfinite(r.ela_shift_m):
-                ax.errorbar([r.warming_k], [r.ela_shift_m], yerr=[0.0 if np.isnan(r.ela_shift_sd_m) else r.ela_shift_sd_m],
-                            fmt="*", color="k", ms=9, capsize=3)
+                sd = 0.0 if np.isnan(r.ela_shift_sd_m) else r.ela_shift_sd_m
+                ax.errorbar([r.warming_k], [r.ela_shift_m], yerr=[sd], fmt="*", color="k", ms=9, capsize=3)
                 ax.annotate(str(r.scenario), (r.warming_k, r.ela_shift_m), textcoords="offset points",
                             xytext=(6, -10), fontsize=7)
             else:

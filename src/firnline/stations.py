@@ -44,8 +44,8 @@ import pandas as pd
 from numba import njit, prange
 
 from .errors import InputError
-from .grid import to_crs
 from .forcing import Forcing, calendar, check_table, read_text_table
+from .grid import to_crs
 
 STATION_COLUMNS = ("station", "x", "y", "elevation_m", "file")
 MIN_REGRESSION_STATIONS = 3
@@ -306,30 +306,31 @@ def read_network(path: Path, date_col: str, t_col: str, p_col: str, stations_crs
     if len(tab) == 0:
         raise InputError(f"{src}: the station table has no rows; list at least one station.")
     names = [n.strip() for n in tab.station]
+    line = tab.index.to_numpy() + 2          # blank lines dropped: the index keeps the line numbers
     nums = {}
     for col in ("x", "y", "elevation_m"):
         v = pd.to_numeric(tab[col].str.strip(), errors="coerce").to_numpy(dtype="float64")
         bad = ~np.isfinite(v)
         if bad.any():
             i = int(np.argmax(bad))
-            raise InputError(f"{src}, line {i + 2} (station {names[i]!r}): {col} {tab[col].iloc[i]!r} "
+            raise InputError(f"{src}, line {line[i]} (station {names[i]!r}): {col} {tab[col].iloc[i]!r} "
                              "is not a number; correct it.")
         nums[col] = v
     for i, n in enumerate(names):
         if not n:
-            raise InputError(f"{src}, line {i + 2}: the station has no name; fill the station column.")
+            raise InputError(f"{src}, line {line[i]}: the station has no name; fill the station column.")
         if names.index(n) != i:
-            raise InputError(f"{src}, line {i + 2}: the station {n!r} appears twice; keep one row per station.")
+            raise InputError(f"{src}, line {line[i]}: the station {n!r} appears twice; keep one row per station.")
     z = nums["elevation_m"]
     bad = (z < -500) | (z > 9000)
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"{src}, line {i + 2} (station {names[i]!r}): elevation_m {z[i]:g} is outside "
+        raise InputError(f"{src}, line {line[i]} (station {names[i]!r}): elevation_m {z[i]:g} is outside "
                          "-500..9000 m; correct it.")
     records = []
     for i, (n, f) in enumerate(zip(names, tab.file)):
         fp = (path.parent / f.strip()).resolve()
-        df = read_text_table(fp, f"{src}, line {i + 2} (station {n!r}): the file {f.strip()!r} was not "
+        df = read_text_table(fp, f"{src}, line {line[i]} (station {n!r}): the file {f.strip()!r} was not "
                                  f"found (looked for {fp}); check the file column.", f"{fp.name} (station {n!r})")
         records.append(check_table(df, fp.name, date_col, t_col, p_col, allow_gaps=True))
     first = min(r[0][0] for r in records)

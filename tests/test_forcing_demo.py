@@ -48,7 +48,7 @@ def test_upper_stations_sit_off_the_ice_at_their_dem_elevation(network):
     masks = demo.glacier_masks(z, tr)
     assert list(table.station) == ["Seldra Dam", "Kessel Hut", "Seldra Pass"]
     for r in table.itertuples():
-        col, row = ~tr * (r.x, r.y)
+        col, row = ~tr @ (r.x, r.y)
         row, col = int(row), int(col)
         assert abs(z[row, col] - r.elevation_m) < 1.0
         assert not any(m[row, col] for m in masks.values())

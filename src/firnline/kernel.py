@@ -111,6 +111,7 @@ import numba  # noqa: E402
 import numpy as np  # noqa: E402
 from numba import njit, prange  # noqa: E402
 
+
 def _choose_threading_layer() -> None:
     """Prefer OpenMP (passive wait) when numba can load it, else numba's workqueue."""
     if "NUMBA_THREADING_LAYER" in os.environ:

@@ -261,6 +261,12 @@ def run_document(result, summary: pd.DataFrame, budget: pd.DataFrame, figures: R
                    "outlines and, on the annual panel, the ELA as a dashed line. The colour scale is centred "
                    "on zero (red: loss, blue: gain) and the same for every year of a map view. Coordinates are "
                    f"in {g.crs.to_string()}; the arrow points to true north.")
+    if len(figures.views) == 1 and len(names) > 1:
+        page.paragraph("Every glacier is drawn at the DEM's full resolution in the catchment map, so none needs "
+                       "a map of its own (a glacier gets one on a DEM too large to show it in full detail).")
+    elif len(figures.views) > 1:
+        page.paragraph("The catchment map is reduced to fit the page; the largest glaciers also have maps of "
+                       "their own at a finer resolution.")
     for view in figures.views:
         page.subsection("Catchment" if view.key == "catchment" else f"{view.title}")
         for period in figures.periods:

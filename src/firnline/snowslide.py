@@ -65,10 +65,15 @@ cells, the row-major flat indices ``np.flatnonzero(valid.ravel())`` (ascending),
 from __future__ import annotations
 
 import functools
+import os
 from dataclasses import dataclass
 
-import numpy as np
-from numba import njit, prange
+# idle worker threads sleep instead of spinning on a shared machine (as in firnline.kernel;
+# set before numba starts its threads, never over the user's own choice)
+os.environ.setdefault("OMP_WAIT_POLICY", "passive")
+
+import numpy as np  # noqa: E402
+from numba import njit, prange  # noqa: E402
 
 #: Version of the routing built here; part of every cache key of a routing.
 ALGORITHM_VERSION = 1
@@ -512,7 +517,12 @@ def redistribute(routing: Routing, snow: np.ndarray, change: np.ndarray | None =
     accumulate = ch is not None
     dummy = np.zeros((1, 1))
     r = routing
-    total = _transport(s2, im if im is not None else dummy, im is not None, r.order, r.recv_ptr,
-                       r.recv_step, r.recv_weight, r.holding_mm, r.holding_in_order,
-                       ch if accumulate else dummy, ex if accumulate else dummy, accumulate)
+    args = (r.order, r.recv_ptr, r.recv_step, r.recv_weight, r.holding_mm, r.holding_in_order)
+    if s2.shape[0] == 1:       # one scenario: no thread start-up
+        total = np.array([_one_pass(s2[0], (im if im is not None else dummy)[0], im is not None, *args,
+                                    (ch if accumulate else dummy)[0], (ex if accumulate else dummy)[0],
+                                    accumulate)])
+    else:
+        total = _transport(s2, im if im is not None else dummy, im is not None, *args,
+                           ch if accumulate else dummy, ex if accumulate else dummy, accumulate)
     return float(total[0]) if one else total

@@ -75,8 +75,9 @@ Layout for speed
 Cells are processed in chunks of :data:`CHUNK_CELLS`, chunks in parallel; for each chunk
 and scenario the days run in the middle and the innermost loop runs over the chunk's
 cells with branch-free arithmetic (min/max and selects), which the compiler turns into
-packed SIMD code. The chunk's state and its running per-season sums live in small local
-arrays that stay in the core's cache for the whole record. All arithmetic and the
+packed SIMD code. The chunk's state, its running per-season sums and its columns of the
+radiation table (read once per chunk, as float64) live in small local arrays that stay in
+the core's cache for the whole record. All arithmetic and the
 running sums are float64 (so results match the previous scalar kernel to rounding); the
 per-year per-season sums are stored as float32 (each is a single rounding of a float64
 sum); cumulative snapshots stay float64. In station mode each chunk runs the whole record
@@ -85,10 +86,14 @@ between blocks.
 
 Threads: the numba threading layer defaults to OpenMP with a passive wait policy
 (``OMP_WAIT_POLICY=passive``, set only if the user has not set it), so idle workers sleep
-instead of spinning against other programs on a shared machine; ``NUMBA_THREADING_LAYER``
-and ``OMP_WAIT_POLICY`` set by the user win. Work is handed out in small dynamic pieces
-(:data:`CHUNKS_PER_TASK` chunks), so a thread slowed by a competing program does not hold
-up the others.
+instead of spinning against other programs on a shared machine (with the active policy, two
+threads ran slower than one under a competing load); ``NUMBA_THREADING_LAYER`` and
+``OMP_WAIT_POLICY`` set by the user win. numba's ``workqueue`` layer does not spin either
+but is not safe when several Python threads (dask workers) call the kernel at once, so it
+is only the fallback. Work is handed out in tasks of :data:`CHUNKS_PER_TASK` chunks,
+dynamically (:data:`TASK_CHUNKSIZE`), so a thread slowed by a competing program does not
+hold up the other, and station mode makes few parallel calls (:data:`GROUP_CELLS` cells
+each) so there are few barriers to wait at.
 
 Memory: state (states x scenarios x cells, float64) and results (seasons x fluxes x
 scenarios x years x cells, float32); no (days x cells) array is ever made in station mode,
@@ -181,10 +186,12 @@ if (N_STATE, N_FLUX) != (4, 4):  # pragma: no cover - a reminder for whoever add
     raise ImportError("kernel: list every State and Flux member in _state_rows / _flux_rows")
 #: cells per chunk: the chunk's state and sums (~10 kB) stay in the L1/L2 cache
 CHUNK_CELLS = 256
-#: chunks handed to a thread at a time (dynamic scheduling)
+#: chunks per parallel task
 CHUNKS_PER_TASK = 4
-#: cells per parallel call in station mode (the progress step)
-GROUP_CELLS = 1 << 16
+#: tasks handed to a thread at a time, dynamically (numba's parallel chunk size; 0 = static split)
+TASK_CHUNKSIZE = 1
+#: cells per parallel call in station mode (the progress step; few calls = few barriers)
+GROUP_CELLS = 1 << 18
 #: upper bound of one cell-mode forcing block (t and p together), bytes
 CELL_BLOCK_BYTES = 256 << 20
 #: at most this many days per cell-mode block
@@ -794,27 +801,34 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                   snow_end=np.zeros((ns, n_years, n), dtype="float32"),
                   snapshots=np.zeros((max(len(snaps), 1), ns, n)))
     # a snapshot at boundary 0 is the zero balance before the first day (already zero)
-    empty2 = np.zeros((1, 1), dtype="float32")
     if n and n_days:
-        if station is not None:
-            for c_lo in range(0, n, GROUP_CELLS):
-                c_hi = min(n, c_lo + GROUP_CELLS)
-                _advance(int(method), STATION, False, cell_arrays, days, empty2, empty2, scen, par,
-                         c_lo, c_hi, out)
-                if progress is not None:
-                    progress(int(n_days * c_hi // n))
-        else:
-            step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
-            for a in range(0, n_days, step):
-                b = min(n_days, a + step)
-                t, p = forcing.block(a, b)
-                t = np.ascontiguousarray(t, dtype="float32")
-                p = np.ascontiguousarray(p, dtype="float32")
-                if t.shape != (b - a, n) or p.shape != (b - a, n):
-                    raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
-                _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen,
-                         par, 0, n, out)
-                if progress is not None:
-                    progress(b)
+        with numba.parallel_chunksize(TASK_CHUNKSIZE):
+            _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress)
     return KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
                         state_final=out.state, snapshots=out.snapshots if snaps else None)
+
+
+def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress):
+    """The Python-level loop: groups of cells over the whole record (station mode), or blocks
+    of days over all cells with the state carried between them (cell mode)."""
+    if station is not None:
+        unused = np.zeros((1, 1), dtype="float32")
+        for c_lo in range(0, n, GROUP_CELLS):
+            c_hi = min(n, c_lo + GROUP_CELLS)
+            _advance(int(method), STATION, False, cell_arrays, days, unused, unused, scen, par,
+                     c_lo, c_hi, out)
+            if progress is not None:
+                progress(int(n_days * c_hi // n))
+        return
+    step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
+    for a in range(0, n_days, step):
+        b = min(n_days, a + step)
+        t, p = forcing.block(a, b)
+        t = np.ascontiguousarray(t, dtype="float32")
+        p = np.ascontiguousarray(p, dtype="float32")
+        if t.shape != (b - a, n) or p.shape != (b - a, n):
+            raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
+        _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen, par,
+                 0, n, out)
+        if progress is not None:
+            progress(b)

@@ -1,9 +1,14 @@
-"""Shared builders of small synthetic cases (DEM GeoTIFF, station CSV, config)."""
+"""Shared builders of small synthetic cases (DEM GeoTIFF, station CSV, config, outlines).
+
+Test modules reach them through the ``builders`` fixture (``builders.write_dem(...)``);
+no test module imports from another.
+"""
 
 from __future__ import annotations
 
 import warnings
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
@@ -73,6 +78,29 @@ def base_sections(station_elevation=2000.0) -> dict:
     }
 
 
+def folder_case(folder: Path, start="2015-10-01", end="2018-09-30", **overrides) -> Path:
+    """A planar glacier 2000..3000 m, constant forcing, three balance years (2016-2018)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    write_dem(folder / "dem.tif", ramp())
+    write_station(folder / "station.csv", start, end, t=5.0, p=5.0)
+    sec = base_sections()
+    for k, v in overrides.items():
+        sec.setdefault(k, {}).update(v)
+    return write_config(folder / "case.toml", sec)
+
+
+def snapshot(folder: Path) -> dict:
+    """{relative path: bytes} of every file below ``folder`` (hidden ones included)."""
+    if not folder.exists():
+        return {}
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def work_entries(out: Path) -> list[str]:
+    """firnline's work entries beside ``out`` (staging, earlier set, lock)."""
+    return sorted(p.name for p in out.parent.iterdir() if p.name.startswith(f".{out.name}.firnline-"))
+
+
 @pytest.fixture
 def plane_case(tmp_path):
     """A planar glacier 2000..3000 m under constant forcing; returns a builder."""
@@ -134,3 +162,12 @@ def station_run(z, ice, z_station, T, P, month, doy, year, winter, params, warmi
     return run_kernel(Cells(z, ice, radiation), Calendar(month, doy, year, winter),
                       StationForcing(T, P, z_station), params,
                       Scenarios.uniform(warming_k, precip_change_pct), snapshot_days=snapshot_days)
+
+
+@pytest.fixture(scope="session")
+def builders():
+    """The builders above as one namespace: ``builders.write_dem(...)``, ``builders.ramp()``, ..."""
+    return SimpleNamespace(write_dem=write_dem, ramp=ramp, write_station=write_station,
+                           write_config=write_config, write_outlines=write_outlines,
+                           base_sections=base_sections, folder_case=folder_case, snapshot=snapshot,
+                           work_entries=work_entries)

@@ -19,7 +19,6 @@ import pandas as pd
 import pytest
 
 import firnline
-from conftest import base_sections, ramp, write_config, write_dem
 from firnline.calibrate import DEFAULT_BOUNDS, build_operator, calibrate, check_value, fit_spec, modelled_values
 from firnline.cli import main
 from firnline.errors import InputError
@@ -46,8 +45,8 @@ def write_seasonal_station(path: Path, start="2016-10-01", end="2019-09-30", see
     return path
 
 
-def sections(melt: dict, **extra) -> dict:
-    sec = base_sections(2000.0)
+def sections(builders, melt: dict, **extra) -> dict:
+    sec = builders.base_sections(2000.0)
     sec["melt"] = dict(melt)
     for k, v in extra.items():
         sec.setdefault(k, {}).update(v)
@@ -55,15 +54,15 @@ def sections(melt: dict, **extra) -> dict:
 
 
 @pytest.fixture
-def case(tmp_path):
+def case(builders, tmp_path):
     """Writes the DEM, the station and the observations made by the model with TRUTH.
 
     Returns a dict with the folder, the truth run and a ``config(**sections)`` writer of a
     calibration config that starts from START.
     """
-    write_dem(tmp_path / "dem.tif", ramp(20, 10, 3200.0, 2200.0))
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(20, 10, 3200.0, 2200.0))
     write_seasonal_station(tmp_path / "station.csv")
-    truth_cfg = write_config(tmp_path / "truth.toml", sections(TRUTH))
+    truth_cfg = builders.write_config(tmp_path / "truth.toml", sections(builders, TRUTH))
     truth = firnline.run(firnline.load_config(truth_cfg))
     ds = truth.fields
     x, y = ds.x.values, ds.y.values
@@ -88,8 +87,8 @@ def case(tmp_path):
         obs = {k: v for k, v in obs.items() if v is not None}   # None: leave the key out
         cal = {"parameters": ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k"]}
         cal.update(calibration or {})
-        sec = sections(melt or START, observations=obs, calibration=cal, **extra)
-        return write_config(tmp_path / name, sec)
+        sec = sections(builders, melt or START, observations=obs, calibration=cal, **extra)
+        return builders.write_config(tmp_path / name, sec)
 
     return {"dir": tmp_path, "truth": truth, "stakes": stakes, "glacier": glacier, "config": config}
 
@@ -107,14 +106,14 @@ def test_modelled_values_over_periods_match_the_run_products(case):
     np.testing.assert_allclose(got, want, atol=2e-6)   # the run's maps are float32
 
 
-def test_balance_over_an_arbitrary_inclusive_period_closed_form(tmp_path):
+def test_balance_over_an_arbitrary_inclusive_period_closed_form(builders, tmp_path):
     """Worked example: warm, dry days melt only ice, so B = -ddf_ice * T_cell * days.
 
     Station 10 C at 2000 m, no precipitation, lapse rate -0.0065 K/m: the cell centred at
     z has T = 10 - 0.0065 (z - 2000) C and melts ddf_ice * T mm w.e. a day (the kernel's
     degree-day rule, no snow ever falls). 2017-03-05 .. 2017-03-14 inclusive is 10 days.
     """
-    write_dem(tmp_path / "dem.tif", ramp(20, 10, 3200.0, 2200.0))
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(20, 10, 3200.0, 2200.0))
     dates = pd.date_range("2016-10-01", "2017-09-30", freq="D")
     pd.DataFrame({"date": dates.strftime("%Y-%m-%d"), "temperature_c": 10.0,
                   "precipitation_mm": 0.0}).to_csv(tmp_path / "station.csv", index=False)
@@ -122,13 +121,13 @@ def test_balance_over_an_arbitrary_inclusive_period_closed_form(tmp_path):
     y = 5150000.0 - 10.5 * 50.0          # centre of row 10
     pd.DataFrame([["P", x, y, "2017-03-05", "2017-03-14", -1.0, 0.1]],
                  columns=POINT_COLUMNS).to_csv(tmp_path / "stakes.csv", index=False)
-    cfg = firnline.load_config(write_config(tmp_path / "c.toml", sections(
+    cfg = firnline.load_config(builders.write_config(tmp_path / "c.toml", sections(builders,
         {"ddf_ice_mm_per_day_k": 7.0}, observations={"point_balances": "stakes.csv"},
         calibration={"parameters": ["ddf_ice_mm_per_day_k"]})))
     setup = prepare(cfg)
     points, glaciers = load_observations(cfg, setup)
     z = points.elevation_m[0]                 # the cell's DEM value (float32 in the file)
-    assert z == pytest.approx(ramp(20, 10, 3200.0, 2200.0)[10, 3], abs=1e-3)
+    assert z == pytest.approx(builders.ramp(20, 10, 3200.0, 2200.0)[10, 3], abs=1e-3)
     op = build_operator(setup, points, glaciers)
     assert op.positions.size == 1          # the run is restricted to the one cell needed
     assert op.n_days == (pd.Timestamp("2017-03-15") - pd.Timestamp("2016-10-01")).days
@@ -249,9 +248,10 @@ def test_dh_rows_are_converted_and_fitted(case):
         assert result.value[key] == pytest.approx(truth, rel=0.01)
 
 
-def test_ratio_ties_the_ice_factor_to_the_snow_factor(case, tmp_path):
+def test_ratio_ties_the_ice_factor_to_the_snow_factor(builders, case, tmp_path):
     tied_truth = {"ddf_snow_mm_per_day_k": 4.0, "ddf_ice_mm_per_day_k": 8.0}
-    run = firnline.run(firnline.load_config(write_config(tmp_path / "t2.toml", sections(tied_truth))))
+    cfg = builders.write_config(tmp_path / "t2.toml", sections(builders, tied_truth))
+    run = firnline.run(firnline.load_config(cfg))
     s = run.summary
     pd.DataFrame({"glacier": s.glacier, "start_date": [f"{v - 1}-10-01" for v in s.balance_year],
                   "end_date": [f"{v}-09-30" for v in s.balance_year], "balance_mwe": s.annual_balance_mwe,
@@ -388,10 +388,10 @@ def test_bad_observation_exits_2_naming_the_row(case, capsys, kind):
     assert not out.exists() or list(out.iterdir()) == []
 
 
-def test_point_on_nodata_exits_2(case, capsys):
-    z = ramp(20, 10, 3200.0, 2200.0)
+def test_point_on_nodata_exits_2(builders, case, capsys):
+    z = builders.ramp(20, 10, 3200.0, 2200.0)
     z[10, 3] = np.nan
-    write_dem(case["dir"] / "dem.tif", z)
+    builders.write_dem(case["dir"] / "dem.tif", z)
     out = case["dir"] / "out_bad"
     assert main(["calibrate", str(case["config"]()), "--out", str(out), "--quiet"]) == 2
     err = capsys.readouterr().err
@@ -504,8 +504,11 @@ def test_demo_calibrate_config_is_the_demo_config_plus_observations(tmp_path):
     assert cfg.observations.point_balances == (REPO / "demo_dem" / "stakes.csv").resolve()
 
 
-def test_committed_demo_observations_match_the_generator(tmp_path):
-    """demo_dem/stakes.csv and glacier_balances.csv are what the seeded generator writes."""
+def test_regression_committed_demo_observations_match_the_generator(tmp_path):
+    """Regression test, not a check of correctness: demo_dem/stakes.csv and glacier_balances.csv
+    are byte for byte what the seeded generator (which runs the model) writes today. A change of
+    the model's results changes them; regenerate them with firnline.demo.write_demo_observations
+    after checking that the change is intended."""
     from firnline import demo
     from firnline.outputs import staged
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import subprocess
 import sys
@@ -12,7 +13,6 @@ import pandas as pd
 import pytest
 import rasterio
 
-from conftest import base_sections, ramp, write_config, write_dem, write_station
 from firnline.cli import main
 
 
@@ -84,19 +84,19 @@ def test_version_and_help():
         assert r.returncode == 0 and "usage" in r.stdout.lower()
 
 
-def _case(tmp_path, sections=None, dem=None, station=None):
-    sec = base_sections()
+def _case(builders, tmp_path, sections=None, dem=None, station=None):
+    sec = builders.base_sections()
     for k, v in (sections or {}).items():
         sec.setdefault(k, {}).update(v)
     if dem is None:
-        write_dem(tmp_path / "dem.tif", ramp())
+        builders.write_dem(tmp_path / "dem.tif", builders.ramp())
     else:
         dem(tmp_path / "dem.tif")
     if station is None:
-        write_station(tmp_path / "station.csv")
+        builders.write_station(tmp_path / "station.csv")
     else:
         station(tmp_path / "station.csv")
-    return write_config(tmp_path / "case.toml", sec)
+    return builders.write_config(tmp_path / "case.toml", sec)
 
 
 def _no_crs(path):
@@ -104,14 +104,14 @@ def _no_crs(path):
         d.write(np.ones((4, 4), "float32"), 1)
 
 
-def _station_gap(path):
-    write_station(path)
+def _station_gap(builders, path):
+    builders.write_station(path)
     lines = path.read_text().splitlines()
     path.write_text("\n".join(lines[:30] + lines[31:]) + "\n")
 
 
-def _station_text(path):
-    write_station(path)
+def _station_text(builders, path):
+    builders.write_station(path)
     lines = path.read_text().splitlines()
     lines[10] = lines[10].rsplit(",", 2)[0] + ",warm,1.0"
     path.write_text("\n".join(lines) + "\n")
@@ -129,7 +129,7 @@ def _station_text(path):
     ("text", "line 11"),
     ("missing_dem", "DEM file not found"),
 ])
-def test_bad_input_exits_2_with_one_sentence_and_no_output(tmp_path, kind, words):
+def test_bad_input_exits_2_with_one_sentence_and_no_output(builders, tmp_path, kind, words):
     sections, dem, station = {}, None, None
     if kind == "typo":
         sections = {"melt": {"ddf_snow": 3.0}}
@@ -146,12 +146,12 @@ def test_bad_input_exits_2_with_one_sentence_and_no_output(tmp_path, kind, words
     elif kind == "not_raster":
         dem = lambda p: p.write_text("this is not a DEM")  # noqa: E731
     elif kind == "gap":
-        station = _station_gap
+        station = functools.partial(_station_gap, builders)
     elif kind == "text":
-        station = _station_text
+        station = functools.partial(_station_text, builders)
     elif kind == "missing_dem":
         sections = {"dem": {"path": "elsewhere.tif"}}
-    cfg = _case(tmp_path, sections, dem, station)
+    cfg = _case(builders, tmp_path, sections, dem, station)
     r = run_cli("run", cfg, "--out", tmp_path / "out")
     assert r.returncode == 2, r.stderr
     assert words in r.stderr

@@ -9,7 +9,6 @@ import rasterio.crs
 import shapely
 from rasterio.transform import from_origin
 
-from conftest import write_outlines
 from firnline.errors import InputError
 from firnline.glaciers import (
     Glaciers,
@@ -210,15 +209,16 @@ def test_whole_grid():
 # --------------------------------------------------------------------------- files
 
 
-def test_geojson_geopackage_shapefile_give_identical_results(tmp_path):
+def test_geojson_geopackage_shapefile_give_identical_results(builders, tmp_path):
     names, geoms = list(OUTLINES), list(OUTLINES.values())
     # RFC 7946 GeoJSON carries no crs member: longitude/latitude is implied.
-    gj = write_outlines(tmp_path / "outlines.geojson", names, geoms, "GeoJSON", crs=None)
+    gj = builders.write_outlines(tmp_path / "outlines.geojson", names, geoms, "GeoJSON", crs=None)
     assert '"crs"' not in gj.read_text()
-    gpkg = write_outlines(tmp_path / "outlines.gpkg", names, geoms, "GPKG", layer="glaciers")
+    gpkg = builders.write_outlines(tmp_path / "outlines.gpkg", names, geoms, "GPKG", layer="glaciers")
     # a second layer: the outlines layer must then be named
-    write_outlines(tmp_path / "outlines.gpkg", ["x"], [shapely.box(0, 0, 1, 1)], "GPKG", layer="other", append=True)
-    shp = write_outlines(tmp_path / "outlines.shp", names, geoms, "ESRI Shapefile")
+    builders.write_outlines(tmp_path / "outlines.gpkg", ["x"], [shapely.box(0, 0, 1, 1)], "GPKG", layer="other",
+                            append=True)
+    shp = builders.write_outlines(tmp_path / "outlines.shp", names, geoms, "ESRI Shapefile")
     results = [load(gj), load(gpkg, layer="glaciers"), load(shp)]
     first = results[0]
     assert first.names == names
@@ -237,16 +237,16 @@ def test_geojson_geopackage_shapefile_give_identical_results(tmp_path):
     np.testing.assert_array_equal(direct.modelled_area_m2, first.modelled_area_m2)
 
 
-def test_dem_crs_as_rasterio_or_pyproj(tmp_path):
-    path = write_outlines(tmp_path / "o.geojson", ["A"], [RECTANGLE], "GeoJSON")
+def test_dem_crs_as_rasterio_or_pyproj(builders, tmp_path):
+    path = builders.write_outlines(tmp_path / "o.geojson", ["A"], [RECTANGLE], "GeoJSON")
     a = load(path, crs=rasterio.crs.CRS.from_epsg(32632))
     b = load(path, crs=DEM_CRS)
     np.testing.assert_array_equal(a.cells[0], b.cells[0])
     assert a.modelled_area_m2[0] == b.modelled_area_m2[0]
 
 
-def test_read_outlines_numeric_ids_and_crs(tmp_path):
-    path = write_outlines(
+def test_read_outlines_numeric_ids_and_crs(builders, tmp_path):
+    path = builders.write_outlines(
         tmp_path / "o.gpkg", ["a", "b"], [RECTANGLE, MULTI], "GPKG", crs="EPSG:32632",
         extra={"rgi_number": np.array([7, 12])},
     )
@@ -259,8 +259,8 @@ def test_read_outlines_numeric_ids_and_crs(tmp_path):
 # --------------------------------------------------------------------------- bad outlines
 
 
-def bad(tmp_path, names, geoms, match, **kw):
-    path = write_outlines(tmp_path / "bad.geojson", names, geoms, "GeoJSON")
+def bad(builders, tmp_path, names, geoms, match, **kw):
+    path = builders.write_outlines(tmp_path / "bad.geojson", names, geoms, "GeoJSON")
     with pytest.raises(InputError) as err:
         load(path, **kw)
     message = str(err.value)
@@ -270,41 +270,41 @@ def bad(tmp_path, names, geoms, match, **kw):
     return message
 
 
-def test_missing_id(tmp_path):
-    bad(tmp_path, ["A", None, "C"], [RECTANGLE, WITH_HOLES, MULTI], ["feature 2", "'name'"])
+def test_missing_id(builders, tmp_path):
+    bad(builders, tmp_path, ["A", None, "C"], [RECTANGLE, WITH_HOLES, MULTI], ["feature 2", "'name'"])
 
 
-def test_duplicated_id(tmp_path):
-    bad(tmp_path, ["A", "B", "A"], [RECTANGLE, WITH_HOLES, MULTI], ["'A'", "1 and 3"])
+def test_duplicated_id(builders, tmp_path):
+    bad(builders, tmp_path, ["A", "B", "A"], [RECTANGLE, WITH_HOLES, MULTI], ["'A'", "1 and 3"])
 
 
-def test_id_field_that_does_not_exist(tmp_path):
-    path = write_outlines(
+def test_id_field_that_does_not_exist(builders, tmp_path):
+    path = builders.write_outlines(
         tmp_path / "o.geojson", ["A"], [RECTANGLE], "GeoJSON", extra={"area_km2": np.array([1.0])}
     )
     with pytest.raises(InputError, match=r"no field 'glacier_name'.*name, area_km2"):
         load(path, id_field="glacier_name")
 
 
-def test_empty_geometry(tmp_path):
-    bad(tmp_path, ["A", "B"], [RECTANGLE, None], ["'B'", "no geometry"])
-    bad(tmp_path, ["A", "B"], [RECTANGLE, shapely.Polygon()], ["'B'", "no geometry"])
+def test_empty_geometry(builders, tmp_path):
+    bad(builders, tmp_path, ["A", "B"], [RECTANGLE, None], ["'B'", "no geometry"])
+    bad(builders, tmp_path, ["A", "B"], [RECTANGLE, shapely.Polygon()], ["'B'", "no geometry"])
 
 
-def test_non_polygon_geometry(tmp_path):
+def test_non_polygon_geometry(builders, tmp_path):
     line = shapely.LineString(ll([(0, 0), (0.01, 0.01)]))
-    bad(tmp_path, ["A", "Ridge"], [RECTANGLE, line], ["'Ridge'", "LineString"])
-    bad(tmp_path, ["Stake", "A"], [shapely.Point(LON0, LAT0), RECTANGLE], ["'Stake'", "Point"])
+    bad(builders, tmp_path, ["A", "Ridge"], [RECTANGLE, line], ["'Ridge'", "LineString"])
+    bad(builders, tmp_path, ["Stake", "A"], [shapely.Point(LON0, LAT0), RECTANGLE], ["'Stake'", "Point"])
 
 
-def test_invalid_geometry_that_does_not_repair_to_a_polygon(tmp_path):
+def test_invalid_geometry_that_does_not_repair_to_a_polygon(builders, tmp_path):
     flat = shapely.Polygon(ll([(0, 0), (0.005, 0), (0.01, 0), (0, 0)]))  # zero area: a line
-    bad(tmp_path, ["A", "Sliver"], [RECTANGLE, flat], ["'Sliver'", "make_valid", "redraw"])
+    bad(builders, tmp_path, ["A", "Sliver"], [RECTANGLE, flat], ["'Sliver'", "make_valid", "redraw"])
 
 
-def test_self_intersecting_outline_is_repaired_with_a_warning(tmp_path):
+def test_self_intersecting_outline_is_repaired_with_a_warning(builders, tmp_path):
     bowtie = shapely.Polygon(ll([(0.002, -0.01), (0.02, 0.01), (0.02, -0.01), (0.002, 0.01)]))
-    path = write_outlines(tmp_path / "o.geojson", ["Bowtie"], [bowtie], "GeoJSON")
+    path = builders.write_outlines(tmp_path / "o.geojson", ["Bowtie"], [bowtie], "GeoJSON")
     g = load(path)
     assert len(g.warnings) == 1
     assert "'Bowtie'" in g.warnings[0] and "make_valid" in g.warnings[0]
@@ -315,9 +315,9 @@ def test_self_intersecting_outline_is_repaired_with_a_warning(tmp_path):
     assert g.modelled_area_m2[0] == pytest.approx(reference_utm(repaired).area, rel=1e-6)
 
 
-def test_overlapping_outlines_name_both(tmp_path):
+def test_overlapping_outlines_name_both(builders, tmp_path):
     shifted = shapely.affinity.translate(RECTANGLE, xoff=0.004)
-    message = bad(tmp_path, ["North", "Seldra", "South"], [MULTI, RECTANGLE, shifted],
+    message = bad(builders, tmp_path, ["North", "Seldra", "South"], [MULTI, RECTANGLE, shifted],
                   ["'Seldra'", "'South'", "overlap"])
     assert "'North'" not in message
 
@@ -331,20 +331,20 @@ def test_tiny_sliver_overlap_is_tolerated():
     assert g.names == ["A", "B"]
 
 
-def test_outline_wholly_outside_the_dem(tmp_path):
+def test_outline_wholly_outside_the_dem(builders, tmp_path):
     far = shapely.affinity.translate(RECTANGLE, xoff=0.5)
-    bad(tmp_path, ["A", "Elsewhere"], [RECTANGLE, far], ["'Elsewhere'", "wholly outside the DEM"])
+    bad(builders, tmp_path, ["A", "Elsewhere"], [RECTANGLE, far], ["'Elsewhere'", "wholly outside the DEM"])
 
 
-def test_outline_only_over_nodata(tmp_path):
+def test_outline_only_over_nodata(builders, tmp_path):
     valid = np.zeros(SHAPE, dtype=bool)
-    bad(tmp_path, ["A"], [RECTANGLE], ["'A'", "nodata"], valid=valid)
+    bad(builders, tmp_path, ["A"], [RECTANGLE], ["'A'", "nodata"], valid=valid)
 
 
-def test_wrong_or_ambiguous_layer_and_missing_file(tmp_path):
+def test_wrong_or_ambiguous_layer_and_missing_file(builders, tmp_path):
     path = tmp_path / "o.gpkg"
-    write_outlines(path, ["A"], [RECTANGLE], "GPKG", layer="glaciers")
-    write_outlines(path, ["B"], [MULTI], "GPKG", layer="lakes", append=True)
+    builders.write_outlines(path, ["A"], [RECTANGLE], "GPKG", layer="glaciers")
+    builders.write_outlines(path, ["B"], [MULTI], "GPKG", layer="lakes", append=True)
     with pytest.raises(InputError, match=r"2 layers \(glaciers, lakes\)"):
         load(path)
     with pytest.raises(InputError, match=r"o\.gpkg cannot be read.*glaciers, lakes"):
@@ -354,8 +354,8 @@ def test_wrong_or_ambiguous_layer_and_missing_file(tmp_path):
         load(tmp_path / "missing.geojson")
 
 
-def test_shapefile_without_prj(tmp_path):
-    path = write_outlines(tmp_path / "o.shp", ["A"], [RECTANGLE], "ESRI Shapefile", crs=None)
+def test_shapefile_without_prj(builders, tmp_path):
+    path = builders.write_outlines(tmp_path / "o.shp", ["A"], [RECTANGLE], "ESRI Shapefile", crs=None)
     (tmp_path / "o.prj").unlink(missing_ok=True)
     with pytest.raises(InputError, match=r"o\.shp has no coordinate reference system"):
         load(path)
@@ -364,12 +364,12 @@ def test_shapefile_without_prj(tmp_path):
 # --------------------------------------------------------------------------- warnings
 
 
-def test_partly_outside_the_dem_warns_with_the_share(tmp_path):
+def test_partly_outside_the_dem_warns_with_the_share(builders, tmp_path):
     # straddles the eastern edge of the grid
     east_lon, _ = _TO_LONLAT.transform(WEST + SHAPE[1] * CELL, NORTH - 3000.0)
     dx = east_lon - LON0
     edge = shapely.Polygon(ll([(dx - 0.012, -0.006), (dx + 0.005, -0.0055), (dx + 0.004, 0.007), (dx - 0.010, 0.006)]))
-    path = write_outlines(tmp_path / "o.geojson", ["Edge"], [edge], "GeoJSON")
+    path = builders.write_outlines(tmp_path / "o.geojson", ["Edge"], [edge], "GeoJSON")
     g = load(path)
     utm = reference_utm(edge)
     # Source: shapely area of the reprojected outline inside the DEM's extent (reference library).

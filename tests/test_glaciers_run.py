@@ -11,22 +11,21 @@ import pandas as pd
 import rasterio
 from shapely.geometry import box
 
-from conftest import base_sections, write_config, write_dem, write_outlines, write_station
 from firnline.cli import main
 
 X0, Y0, CELL = 600000.0, 5150000.0, 50.0
 
 
-def _case(tmp_path, polygons: dict, t=5.0, p=5.0):
+def _case(builders, tmp_path, polygons: dict, t=5.0, p=5.0):
     """A 40 x 20 cell plane rising northwards from 1500 m (row 39) to 3500 m (row 0)."""
     z = np.repeat(np.linspace(3500.0, 1500.0, 40)[:, None], 20, axis=1)
-    write_dem(tmp_path / "dem.tif", z, cell=CELL, x0=X0, y0=Y0)
-    write_station(tmp_path / "station.csv", t=t, p=p)
-    write_outlines(tmp_path / "outlines.gpkg", list(polygons), list(polygons.values()), "GPKG",
+    builders.write_dem(tmp_path / "dem.tif", z, cell=CELL, x0=X0, y0=Y0)
+    builders.write_station(tmp_path / "station.csv", t=t, p=p)
+    builders.write_outlines(tmp_path / "outlines.gpkg", list(polygons), list(polygons.values()), "GPKG",
                    crs="EPSG:32632")
-    sec = base_sections()
+    sec = builders.base_sections()
     sec["glaciers"] = {"outlines": "outlines.gpkg", "id_field": "name"}
-    return write_config(tmp_path / "case.toml", sec)
+    return builders.write_config(tmp_path / "case.toml", sec)
 
 
 def rows(r0, r1, c0=2, c1=18):
@@ -34,14 +33,14 @@ def rows(r0, r1, c0=2, c1=18):
     return box(X0 + c0 * CELL + 7, Y0 - r1 * CELL + 11, X0 + c1 * CELL - 9, Y0 - r0 * CELL - 3)
 
 
-def test_two_glaciers_higher_one_gains_more(tmp_path):
+def test_two_glaciers_higher_one_gains_more(builders, tmp_path):
     """Same forcing, different elevations: the higher glacier has the higher specific
     balance (temperature falls with height at the lapse rate; common practice). Under
     constant forcing the ELA is where T = p / ddf_snow (see tests/test_kernel.py):
     T = 5 - 0.0065 (z - 2000) and p/ddf = 5/3 C gives about 2513 m with the snow range
     [0.5, 2.5] C making the low cells rain-fed; the low glacier (1600-2300 m) lies wholly
     below it and the high one (3000-3400 m) wholly above it."""
-    cfg = _case(tmp_path, {"high": rows(2, 12), "low": rows(26, 34)})
+    cfg = _case(builders, tmp_path, {"high": rows(2, 12), "low": rows(26, 34)})
     out = tmp_path / "out"
     assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0
     s = pd.read_csv(out / "summary.csv")
@@ -76,8 +75,8 @@ def test_two_glaciers_higher_one_gains_more(tmp_path):
     assert np.all(abl[ids == 2] > acc[ids == 2])
 
 
-def test_bad_outlines_exit_2_through_the_cli(tmp_path):
-    cfg = _case(tmp_path, {"a": rows(2, 12), "b": rows(10, 20)})       # a and b overlap
+def test_bad_outlines_exit_2_through_the_cli(builders, tmp_path):
+    cfg = _case(builders, tmp_path, {"a": rows(2, 12), "b": rows(10, 20)})       # a and b overlap
     r = subprocess.run([sys.executable, "-m", "firnline", "run", str(cfg), "--out", str(tmp_path / "o")],
                        capture_output=True, text=True)
     assert r.returncode == 2

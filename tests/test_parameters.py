@@ -83,7 +83,8 @@ def test_kernel_values_agree_with_the_kernel_parameters(tmp_path, method):
     assert parameters.kernel_values(cfg12)["lapse_rate_k_per_m"] == pytest.approx(tuple(monthly))
 
 
-@pytest.mark.parametrize("text", [demo_config_text(), (REPO / "configs" / "demo.toml").read_text()])
+@pytest.mark.parametrize("text", [demo_config_text(), (REPO / "configs" / "demo.toml").read_text(),
+                                  (REPO / "configs" / "demo_calibrate.toml").read_text()])
 def test_demo_config_rows_show_the_registry(text):
     """Every registry parameter appears in the demo config with its default and unit."""
     data = tomllib.loads(text)
@@ -101,3 +102,9 @@ def test_demo_config_output_folder_is_set_by_key_not_by_text(tmp_path):
     data = tomllib.loads(demo_config_text("in/", output_dir="elsewhere"))
     assert data["output"]["dir"] == "elsewhere" and data["dem"]["path"] == "in/dem.tif"
     assert tomllib.loads(demo_config_text())["output"]["dir"] == "out"
+
+
+def test_committed_demo_calibration_config_is_the_generated_text():
+    """configs/demo_calibrate.toml is written by firnline.demo.write_repo_config(..., calibration=True)."""
+    assert (REPO / "configs" / "demo_calibrate.toml").read_text() == demo_config_text(
+        "../demo_dem/", "../out/calibrate", calibration=True)

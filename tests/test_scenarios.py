@@ -17,7 +17,6 @@ import rasterio
 import shapely
 
 import firnline
-from conftest import base_sections, ramp, write_config, write_dem, write_outlines, write_station
 from firnline.cli import main
 from firnline.metrics import BUDGET_COLUMNS, balanced_budget
 from firnline.model import prepare
@@ -45,25 +44,25 @@ T_ST, P_ST, Z_ST = 5.0, 5.0, 2000.0   # constant station forcing: deg C, mm per 
 # builders
 # ----------------------------------------------------------------------------
 
-def plane(tmp_path: Path) -> firnline.Config:
+def plane(builders, tmp_path: Path) -> firnline.Config:
     """A planar glacier 2000..3500 m (101 rows, 15 m apart) under constant forcing, two 365-day years."""
-    write_dem(tmp_path / "dem.tif", ramp(101, 2, 3500.0, 2000.0))
-    write_station(tmp_path / "station.csv", t=T_ST, p=P_ST)       # 2016-10-01..2018-09-30, no 29 Feb
-    sec = base_sections(Z_ST)
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(101, 2, 3500.0, 2000.0))
+    builders.write_station(tmp_path / "station.csv", t=T_ST, p=P_ST)       # 2016-10-01..2018-09-30, no 29 Feb
+    sec = builders.base_sections(Z_ST)
     sec["downscaling"] = {"precip_gradient_per_m": 0.0}
-    return firnline.load_config(write_config(tmp_path / "case.toml", sec))
+    return firnline.load_config(builders.write_config(tmp_path / "case.toml", sec))
 
 
-def seasonal(tmp_path: Path, years=3, seed=7) -> Path:
+def seasonal(builders, tmp_path: Path, years=3, seed=7) -> Path:
     """A planar glacier 1800..3500 m under a seasonal, noisy station record (3 balance years)."""
     end = 2015 + years
     dates = pd.date_range("2015-10-01", f"{end}-09-30", freq="D")
     rng = np.random.default_rng(seed)
     t = 2 + 8 * np.sin(2 * np.pi * (np.arange(len(dates)) - 100) / 365.25) + rng.normal(0, 3, len(dates))
     p = rng.gamma(0.6, 8, len(dates))
-    write_dem(tmp_path / "dem.tif", ramp(40, 3, 3500.0, 1800.0))
-    write_station(tmp_path / "station.csv", "2015-10-01", f"{end}-09-30", t, p)
-    return write_config(tmp_path / "case.toml", base_sections(1800.0))
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(40, 3, 3500.0, 1800.0))
+    builders.write_station(tmp_path / "station.csv", "2015-10-01", f"{end}-09-30", t, p)
+    return builders.write_config(tmp_path / "case.toml", builders.base_sections(1800.0))
 
 
 def hand_daily_balance(z_m, warming_k):
@@ -92,9 +91,9 @@ def hand_ela(warming_k):
 # closed form, flags, precipitation
 # ----------------------------------------------------------------------------
 
-def test_planar_glacier_ela_moves_by_one_over_lapse_rate_per_kelvin(tmp_path):
+def test_planar_glacier_ela_moves_by_one_over_lapse_rate_per_kelvin(builders, tmp_path):
     """Closed form (see hand_ela): each kelvin lifts the ELA by 1/|lapse| = 153.8 m, within one band."""
-    setup = prepare(plane(tmp_path))
+    setup = prepare(plane(builders, tmp_path))
     sw = sweep(setup, [1.0, 2.0])          # the (0, 0) reference is added by the sweep
     assert sw.scenarios == [(0.0, 0.0), (1.0, 0.0), (2.0, 0.0)]
     z = setup.z_m
@@ -117,10 +116,10 @@ def test_planar_glacier_ela_moves_by_one_over_lapse_rate_per_kelvin(tmp_path):
     assert row.n_warming_steps == 3 and row.n_ela_years_used == 6 and row.n_ela_years_excluded == 0
 
 
-def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(tmp_path):
+def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(builders, tmp_path):
     """With 6 K, z* = 2594 + 6 x 153.8 = 3517 m lies above the glacier top (3500 m): every
     band loses mass, the flag is above_glacier and the AAR 0 (DESIGN.md ela_flag rule)."""
-    setup = prepare(plane(tmp_path))
+    setup = prepare(plane(builders, tmp_path))
     assert hand_ela(6.0) > setup.z_m.max()
     sw = sweep(setup, [1.0, 2.0, 6.0])
     hot = sw.year_table[sw.year_table.warming_k == 6.0]
@@ -140,10 +139,10 @@ def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(tmp_path)
     assert sw.flags[sw.flags.warming_k == 6.0].n_above_glacier.iloc[0] == 2
 
 
-def test_more_precipitation_lowers_the_ela_and_raises_the_balance(tmp_path):
+def test_more_precipitation_lowers_the_ela_and_raises_the_balance(builders, tmp_path):
     """More snowfall on every cell can only add accumulation and shelter ice from melt, so the
     balance rises and the ELA falls with each step of precipitation, year by year (common practice)."""
-    setup = prepare(firnline.load_config(seasonal(tmp_path)))
+    setup = prepare(firnline.load_config(seasonal(builders, tmp_path)))
     sw = sweep(setup, [0.0], [-30.0, -15.0, 15.0, 30.0])
     yrs = sw.year_table.sort_values(["balance_year", "precip_change_pct"])
     assert (yrs.ela_flag == "ok").all()
@@ -158,15 +157,15 @@ def test_more_precipitation_lowers_the_ela_and_raises_the_balance(tmp_path):
     assert np.all(np.sign(t.ela_shift_m) == -np.sign(t.precip_change_pct))
 
 
-def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs(tmp_path, monkeypatch):
+def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs(builders, tmp_path, monkeypatch):
     """The scenarios are the kernel's extra axis: one simulate() call over the glacier cells only
     (ice-free ground is not needed by any sweep product), with the numbers of one full run per
     scenario."""
     import firnline.scenarios as scen_mod
 
-    cfg_path = seasonal(tmp_path, years=2)
+    cfg_path = seasonal(builders, tmp_path, years=2)
     # an outline over the upper 24 rows and 2.5 of the 3 columns (fractional cells on its east edge)
-    write_outlines(tmp_path / "outlines.gpkg", ["Upper"], [shapely.box(600000, 5148800, 600125, 5150000)],
+    builders.write_outlines(tmp_path / "outlines.gpkg", ["Upper"], [shapely.box(600000, 5148800, 600125, 5150000)],
                    "GPKG", crs="EPSG:32632")
     cfg_path.write_text(cfg_path.read_text() + '\n[glaciers]\noutlines = "outlines.gpkg"\nid_field = "name"\n')
     cfg = firnline.load_config(cfg_path)
@@ -244,9 +243,9 @@ def test_balanced_budget_recovers_the_intercept_of_an_exact_linear_relation():
     assert "extrapolated" in g.note
 
 
-def test_every_run_writes_balanced_budget_csv_from_its_summary(tmp_path):
+def test_every_run_writes_balanced_budget_csv_from_its_summary(builders, tmp_path):
     """The regression in balanced_budget.csv matches numpy.polyfit on summary.csv (reference library)."""
-    cfg = seasonal(tmp_path, years=4)
+    cfg = seasonal(builders, tmp_path, years=4)
     out = tmp_path / "out"
     assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0
     bb = pd.read_csv(out / "balanced_budget.csv")
@@ -289,8 +288,8 @@ def test_demo_balanced_budget_aar_is_plausible(tmp_path):
 # command line
 # ----------------------------------------------------------------------------
 
-def test_scenarios_command_writes_every_file_with_the_contract_columns(tmp_path, capsys):
-    cfg = seasonal(tmp_path, years=3)
+def test_scenarios_command_writes_every_file_with_the_contract_columns(builders, tmp_path, capsys):
+    cfg = seasonal(builders, tmp_path, years=3)
     out = tmp_path / "sweep"
     assert main(["scenarios", str(cfg), "--warming", "1", "2", "--precip-change", "-10", "0", "10",
                  "--out", str(out), "--quiet", "--no-report"]) == 0   # the report: test_report_commands.py

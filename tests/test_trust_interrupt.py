@@ -21,7 +21,6 @@ import pytest
 
 from firnline.cli import main
 from firnline.outdir import MANIFEST, PAUSE_ENV, lock_path
-from test_trust_outdir import case, snapshot, work_entries
 
 # point -> which set the folder must hold after SIGINT/SIGTERM there
 POINTS = {
@@ -71,10 +70,10 @@ def release(pause: Path, point: str, proc: subprocess.Popen) -> None:
 
 
 @pytest.fixture(scope="module")
-def earlier(tmp_path_factory):
+def earlier(builders, tmp_path_factory):
     """A case and the complete earlier set (a run at 0 K) and the complete new set (+1 K)."""
     base = tmp_path_factory.mktemp("interrupt")
-    cfg = case(base)
+    cfg = builders.folder_case(base)
     old = base / "old_set"
     new = base / "new_set"
     assert main(["run", str(cfg), "--out", str(old), "--quiet"]) == 0
@@ -82,9 +81,9 @@ def earlier(tmp_path_factory):
     return cfg, old, new
 
 
-def same_set(folder: Path, reference: Path) -> bool:
+def same_set(builders, folder: Path, reference: Path) -> bool:
     """Same file names and the same tables (maps and run.json carry times, so compare what is fixed)."""
-    a, b = snapshot(folder), snapshot(reference)
+    a, b = builders.snapshot(folder), builders.snapshot(reference)
     if set(a) != set(b):
         return False
     for name in ("summary.csv", "profiles.csv", "balanced_budget.csv"):
@@ -96,7 +95,7 @@ def same_set(folder: Path, reference: Path) -> bool:
 
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
 @pytest.mark.parametrize("point", list(POINTS))
-def test_interrupted_run_leaves_the_old_or_the_new_set_complete(earlier, tmp_path, point, sig):
+def test_interrupted_run_leaves_the_old_or_the_new_set_complete(builders, earlier, tmp_path, point, sig):
     cfg, old, new = earlier
     out = tmp_path / "out"
     assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0      # the earlier set
@@ -112,17 +111,17 @@ def test_interrupted_run_leaves_the_old_or_the_new_set_complete(earlier, tmp_pat
     assert len(lines) == 1, err
     expect = POINTS[point]
     if expect == "old":
-        assert same_set(out, old), sorted(snapshot(out))
+        assert same_set(builders, out, old), sorted(builders.snapshot(out))
         assert "still holds the earlier outputs" in lines[0]
     else:
-        assert same_set(out, new), sorted(snapshot(out))
+        assert same_set(builders, out, new), sorted(builders.snapshot(out))
         assert "holds the new set" in lines[0]
-    assert work_entries(out) == []
+    assert builders.work_entries(out) == []
     assert not lock_path(out).exists()
 
 
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
-def test_interrupted_first_run_writes_nothing(earlier, tmp_path, sig):
+def test_interrupted_first_run_writes_nothing(builders, earlier, tmp_path, sig):
     cfg, _, _ = earlier
     out = tmp_path / "fresh"
     pause = tmp_path / "pause"
@@ -133,11 +132,11 @@ def test_interrupted_first_run_writes_nothing(earlier, tmp_path, sig):
     _, err = proc.communicate(timeout=180)
     assert proc.returncode == 128 + sig
     assert "no output was written" in err and "Traceback" not in err
-    assert not out.exists() and work_entries(out) == []
+    assert not out.exists() and builders.work_entries(out) == []
 
 
 @pytest.mark.parametrize("point", ["writing", "swapping", "swapped"])
-def test_sigkill_leftovers_are_cleared_by_the_next_run(earlier, tmp_path, point):
+def test_sigkill_leftovers_are_cleared_by_the_next_run(builders, earlier, tmp_path, point):
     cfg, old, new = earlier
     out = tmp_path / "out"
     assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0
@@ -147,9 +146,9 @@ def test_sigkill_leftovers_are_cleared_by_the_next_run(earlier, tmp_path, point)
     proc.kill()
     proc.communicate(timeout=60)
     # a killed run leaves either complete set in place (never a mixture) ...
-    assert same_set(out, old) or same_set(out, new)
-    assert same_set(out, new) == (point == "swapped")
+    assert same_set(builders, out, old) or same_set(builders, out, new)
+    assert same_set(builders, out, new) == (point == "swapped")
     # ... and work entries (staging, the earlier set, its lock) that the next run clears
-    assert work_entries(out)
+    assert builders.work_entries(out)
     assert main(["run", str(cfg), "--out", str(out), "--warming", "1", "--quiet"]) == 0
-    assert same_set(out, new) and work_entries(out) == []
+    assert same_set(builders, out, new) and builders.work_entries(out) == []

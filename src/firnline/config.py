@@ -19,7 +19,7 @@ from typing import Any, Callable
 
 from . import parameters
 from .errors import InputError
-from .files import regular_file
+from .files import read_text
 from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 
 #: ``[snow] redistribution``: gravitational snow redistribution (firnline.snowslide) or none
@@ -47,7 +47,7 @@ def _number(lo: float | None = None, hi: float | None = None, lo_open=False) -> 
         if hi is not None and v > hi:
             raise _fail(where, f"a number <= {hi:g}", v)
         return v
-    check.numeric = True
+    check.type = float
     return check
 
 
@@ -56,6 +56,7 @@ def _integer(lo: int, hi: int) -> Callable:
         if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
             raise _fail(where, f"a whole number from {lo} to {hi}", v)
         return int(v)
+    check.type = int
     return check
 
 
@@ -66,6 +67,7 @@ def _string(choices: tuple[str, ...] | None = None) -> Callable:
         if choices and v not in choices:
             raise _fail(where, "one of " + ", ".join(f'"{c}"' for c in choices), v)
         return v
+    check.type = str
     return check
 
 
@@ -144,6 +146,11 @@ def _boolean(v, where):
     if not isinstance(v, bool):
         raise _fail(where, "true or false", v)
     return v
+
+
+for _check, _type in ((_path, Path), (_date, _dt.date), (_month_day, str), (_lapse, tuple), (_pair, tuple),
+                      (_string_list, tuple), (_table, dict), (_boolean, bool)):
+    _check.type = _type   # the type of the value a checker returns (for the typed sections)
 
 
 # ----------------------------------------------------------------------------
@@ -238,109 +245,42 @@ PATH_KEYS = {("dem", "path"), ("glaciers", "outlines"), ("climate", "station_fil
 # typed sections
 # ----------------------------------------------------------------------------
 
-@dataclass(frozen=True)
-class Site:
-    name: str
+# Each section is a frozen dataclass made from its SCHEMA rows, one field per key in
+# order, typed by its checker (``X | None`` for an optional key): a new key is one row.
+
+def _section_type(section: str, name: str, namespace: dict | None = None) -> type:
+    fields = [(key, check.type if default is not OPTIONAL else check.type | None)
+              for key, (check, default) in SCHEMA[section].items()]
+    cls = dataclasses.make_dataclass(name, fields, frozen=True, namespace=namespace)
+    cls.__module__ = __name__
+    return cls
 
 
-@dataclass(frozen=True)
-class Dem:
-    path: Path
+def _monthly_lapse_rates(self) -> tuple[float, ...]:
+    """Twelve lapse rates (K per m), January first."""
+    return parameters.monthly(self.lapse_rate_k_per_m)
 
 
-@dataclass(frozen=True)
-class GlacierOutlines:
-    outlines: Path
-    id_field: str
-    layer: str | None
+Site = _section_type("site", "Site")
+Dem = _section_type("dem", "Dem")
+GlacierOutlines = _section_type("glaciers", "GlacierOutlines")
 
 
-@dataclass(frozen=True)
-class Climate:
-    station_file: Path | None
-    station_elevation_m: float | None
-    date_column: str
-    temperature_column: str
-    precipitation_column: str
-    start: _dt.date | None
-    end: _dt.date | None
-    stations: Path | None = None
-    stations_crs: str | None = None
-    idw_power: float = 2.0
-    lapse_rate_from_stations: bool = False
-    grid_file: Path | None = None
-
-    @property
-    def mode(self) -> str:
-        """Which forcing is given: ``"station"``, ``"stations"`` or ``"grid"``."""
-        return "stations" if self.stations else "grid" if self.grid_file else "station"
+def _climate_mode(self) -> str:
+    """Which forcing is given: ``"station"``, ``"stations"`` or ``"grid"``."""
+    return "stations" if self.stations else "grid" if self.grid_file else "station"
 
 
-@dataclass(frozen=True)
-class Downscaling:
-    lapse_rate_k_per_m: tuple[float, ...]  # one value, or twelve (January first)
-    precip_gradient_per_m: float
-    precip_factor: float
-    snow_rain_range_c: tuple[float, float]
-
-    def monthly_lapse_rates(self) -> tuple[float, ...]:
-        """Twelve lapse rates (K per m), January first."""
-        lr = self.lapse_rate_k_per_m
-        return tuple(lr) * 12 if len(lr) == 1 else tuple(lr)
-
-
-@dataclass(frozen=True)
-class Melt:
-    method: str
-    threshold_c: float
-    ddf_snow_mm_per_day_k: float
-    ddf_ice_mm_per_day_k: float
-    melt_factor_mm_per_day_k: float
-    radiation_factor_snow: float
-    radiation_factor_ice: float
-    transmissivity: float
-
-
-@dataclass(frozen=True)
-class Snow:
-    redistribution: str
-    snow_density_kg_m3: float
-    min_slide_slope_deg: float
-
-
-@dataclass(frozen=True)
-class Balance:
-    year_start: str
-    winter_end: str
-    band_width_m: float
-
-
-@dataclass(frozen=True)
-class Output:
-    dir: Path
-
-
-@dataclass(frozen=True)
-class Radiation:
-    time_step_minutes: int
-    horizon_sectors: int
-    horizon_distance_m: float
-    cache_dir: Path
-    write_horizons: bool
-
-
-@dataclass(frozen=True)
-class Observations:
-    glacier_balances: Path | None
-    point_balances: Path | None
-    points_crs: str | None
-
-
-@dataclass(frozen=True)
-class Calibration:
-    parameters: tuple[str, ...]
-    bounds: dict
-    ratios: dict
+Climate = _section_type("climate", "Climate", {"mode": property(_climate_mode)})
+#: a lapse rate holds one value or twelve (January first); ``monthly_lapse_rates()`` gives twelve
+Downscaling = _section_type("downscaling", "Downscaling", {"monthly_lapse_rates": _monthly_lapse_rates})
+Melt = _section_type("melt", "Melt")
+Snow = _section_type("snow", "Snow")
+Balance = _section_type("balance", "Balance")
+Output = _section_type("output", "Output")
+Radiation = _section_type("radiation", "Radiation")
+Observations = _section_type("observations", "Observations")
+Calibration = _section_type("calibration", "Calibration")
 
 
 @dataclass(frozen=True)
@@ -481,14 +421,7 @@ def load_config(path: str | Path) -> Config:
         type or impossible; the message names the key.
     """
     path = Path(path)
-    if path.exists():
-        regular_file(path, "config file")    # a FIFO or /dev/zero would hang or fill the memory
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(f"{path}: config file not found; check the path.") from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise InputError(f"{path}: cannot read the config file ({e}).") from None
+    text = read_text(path, "config file", "check the path")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:

@@ -695,32 +695,41 @@ def write_demo_inputs(folder, seed: int = DEFAULT_SEED, config_text: str | None 
 _HEADER = ("firnline demo: the invented Seldra catchment (fictional; all data are made up).",
            'Every key below shows its default value unless marked "demo value".',
            "Results are model estimates; see the caution in README.md.")
+_CALIBRATION_HEADER = (
+    "firnline demo calibration: the invented Seldra catchment (fictional; all data are made up).",
+    "The keys of configs/demo.toml plus [observations] and [calibration]; run",
+    "    firnline calibrate configs/demo_calibrate.toml",
+    "then run the fitted model with `firnline run out/calibrate/calibrated.toml`.",
+    *_HEADER[1:])
 
-# (section, key, value, comment); a value already in TOML quotes ('"..."') is shown commented
-# out (an optional key); "{inputs}" and "{output_dir}" mark the values demo_config_text sets;
-# key "*": the section's model parameters from the registry.
+class _Commented(str):
+    """A TOML value shown commented out (an optional key without a default value to show)."""
+
+
+# (section, key, value, comment); "{inputs}" and "{output_dir}" mark the values
+# demo_config_text sets; key "*": the section's model parameters from the registry.
 _ROWS = (
     ("site", "name", "Seldra catchment", 'demo value (default "unnamed site")'),
     ("dem", "path", "{inputs}dem.tif", "demo value (required): any raster rasterio reads, elevations in m"),
     ("glaciers", "outlines", "{inputs}glaciers.geojson",
      "demo value (optional section): GeoJSON, GeoPackage or Shapefile"),
     ("glaciers", "id_field", "name", 'default "name"'),
-    ("glaciers", "layer", '"outlines"', "GeoPackage layer; default: the first layer"),
+    ("glaciers", "layer", _Commented('"outlines"'), "GeoPackage layer; default: the first layer"),
     ("climate", "station_file", "{inputs}station.csv",
      "demo value: one station (exactly one of station_file, stations, grid_file)"),
     ("climate", "station_elevation_m", STATION_ELEVATION_M,
      "demo value (required with station_file): the Seldra Dam station"),
-    ("climate", "stations", '"stations.csv"',
+    ("climate", "stations", _Commented('"stations.csv"'),
      "several stations: station, x, y, elevation_m, file (configs/demo_stations.toml)"),
-    ("climate", "stations_crs", '"EPSG:32632"', "default: the DEM's CRS (stations)"),
-    ("climate", "idw_power", "#2.0", "default: inverse-distance power (stations)"),
-    ("climate", "lapse_rate_from_stations", "#false", "default: regress each day's lapse rate on >= 3 stations"),
-    ("climate", "grid_file", '"forcing.nc"', "gridded NetCDF-CF forcing (configs/demo_grid.toml)"),
+    ("climate", "stations_crs", _Commented('"EPSG:32632"'), "default: the DEM's CRS (stations)"),
+    ("climate", "idw_power", _Commented("2.0"), "default: inverse-distance power (stations)"),
+    ("climate", "lapse_rate_from_stations", _Commented("false"), "default: regress each day's lapse rate on >= 3 stations"),
+    ("climate", "grid_file", _Commented('"forcing.nc"'), "gridded NetCDF-CF forcing (configs/demo_grid.toml)"),
     ("climate", "date_column", "date", "default"),
     ("climate", "temperature_column", "temperature_c", "default: daily mean air temperature, deg C"),
     ("climate", "precipitation_column", "precipitation_mm", "default: daily total, mm"),
-    ("climate", "start", '"2016-10-01"', "default: the whole record"),
-    ("climate", "end", '"2024-09-30"', ""),
+    ("climate", "start", _Commented('"2016-10-01"'), "default: the whole record"),
+    ("climate", "end", _Commented('"2024-09-30"'), ""),
     ("downscaling", "*", "", ""),
     ("melt", "method", "degree-day", 'default; or "radiation"'),
     ("melt", "*", "", ""),
@@ -738,18 +747,33 @@ _ROWS = (
     ("radiation", "write_horizons", False, "default: also write horizon.tif with `firnline terrain`"),
 )
 
+_CALIBRATION_ROWS = (
+    ("observations", "point_balances", "{inputs}stakes.csv",
+     "demo value: invented stake readings (annual, winter) and snow probing"),
+    ("observations", "glacier_balances", "{inputs}glacier_balances.csv",
+     "demo value: invented geodetic balances (dh_m) of the three glaciers"),
+    ("observations", "points_crs", _Commented('"EPSG:32632"'), "default: the DEM's CRS"),
+    ("calibration", "parameters", ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k"], "demo value (required)"),
+    ("calibration", "bounds", {"ddf_snow_mm_per_day_k": [1.0, 12.0], "ddf_ice_mm_per_day_k": [2.0, 20.0]},
+     "demo value (default: the registry's bounds, firnline.parameters)"),
+    ("calibration", "ratios", _Commented('{ ddf_ice_mm_per_day_k = ["ddf_snow_mm_per_day_k", 2.0] }'),
+     "optional: tie a key to another instead of fitting it"),
+)
+
 
 def _toml_value(value) -> str:
-    """One value as TOML (tomli-w), arrays on one line."""
+    """One value as TOML (tomli-w), arrays and tables on one line."""
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + " }"
     return tomli_w.dumps({"v": value})[4:].strip()
 
 
-def _rows(output_dir: str | None):
+def _rows(output_dir: str | None, calibration: bool):
     from . import parameters
 
-    for section, key, value, comment in _ROWS:
+    for section, key, value, comment in _ROWS + (_CALIBRATION_ROWS if calibration else ()):
         if key == "*":   # the model parameters of the section, from the registry
             for p in parameters.in_section(section):
                 default = p.default[0] if p.kind == "monthly" and len(p.default) == 1 else p.default
@@ -763,21 +787,20 @@ def _rows(output_dir: str | None):
         yield section, key, value, comment
 
 
-def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None) -> str:
+def demo_config_text(inputs_prefix: str = "", output_dir: str | None = None, calibration: bool = False) -> str:
     """The demo config, with ``inputs_prefix`` put before each input file name.
 
-    ``output_dir`` sets ``[output] dir`` (marked as a demo value) when given.
+    ``output_dir`` sets ``[output] dir`` (marked as a demo value) when given;
+    ``calibration`` adds the demo's ``[observations]`` and ``[calibration]`` sections.
     """
-    lines = [f"# {h}" for h in _HEADER]
+    lines = [f"# {h}" for h in (_CALIBRATION_HEADER if calibration else _HEADER)]
     section = None
-    for sec, key, value, comment in _rows(output_dir):
+    for sec, key, value, comment in _rows(output_dir, calibration):
         if sec != section:
             lines += ["", f"[{sec}]"]
             section = sec
-        if isinstance(value, str) and value.startswith('"'):   # an optional key, shown commented out
+        if isinstance(value, _Commented):
             row = f"# {key} = {value}"
-        elif isinstance(value, str) and value.startswith("#"):   # a key shown commented out, raw TOML
-            row = f"# {key} = {value[1:]}"
         else:
             if isinstance(value, str):
                 value = value.replace("{inputs}", inputs_prefix)
@@ -794,9 +817,12 @@ def write_demo(folder) -> Path:
     return path
 
 
-def write_repo_config(path) -> None:
-    """Write ``configs/demo.toml`` of the source tree (inputs in ``../demo_dem/``)."""
-    Path(path).write_text(demo_config_text("../demo_dem/", output_dir="../out"), encoding="utf-8")
+def write_repo_config(path, calibration: bool = False) -> None:
+    """Write ``configs/demo.toml`` (or, with ``calibration``, ``configs/demo_calibrate.toml``)
+    of the source tree (inputs in ``../demo_dem/``)."""
+    text = (demo_config_text("../demo_dem/", "../out/calibrate", calibration=True) if calibration
+            else demo_config_text("../demo_dem/", output_dir="../out"))
+    Path(path).write_text(text, encoding="utf-8")
 
 
 # ----------------------------------------------------------------------------

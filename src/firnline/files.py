@@ -41,3 +41,31 @@ def regular_file(path, what: str, key: str | None = None) -> Path:
             else "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode)
             else "a socket" if stat.S_ISSOCK(st.st_mode) else "not a regular file")
     raise InputError(f"{p}: the {what}{where} is {kind}, not a file; give the path of the file itself.")
+
+
+def read_text(path, what: str, missing_fix: str, unreadable_fix: str = "", key: str | None = None,
+              encoding: str = "utf-8") -> str:
+    """The text of an input file (a regular file: see :func:`regular_file`), or an InputError.
+
+    Parameters
+    ----------
+    path : Path
+    what : str
+        What the file is, for the message (e.g. ``"config file"``).
+    missing_fix, unreadable_fix : str
+        What to do when the file is missing, or cannot be read as text.
+    key : str, optional
+        The config key that names it, for the message.
+    encoding : str
+    """
+    path = Path(path)
+    if path.exists():
+        regular_file(path, what, key)   # a FIFO or a device would hang or fill the memory
+    try:
+        return path.read_text(encoding=encoding)
+    except FileNotFoundError:
+        raise InputError(f"{path}: {what} not found; {missing_fix}.") from None
+    except (OSError, UnicodeDecodeError) as e:
+        fix = f"; {unreadable_fix}" if unreadable_fix else ""
+        raise InputError(f"{path.name}: cannot read the {what} ({e}){fix}.") from None
+

@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from . import __version__
+from . import __version__, parameters
 from . import glaciers as glaciers_mod
 from .config import Config
 from .forcing import Forcing, load_forcing
@@ -98,11 +98,12 @@ class Setup:
 def check_config(setup: Setup, config: Config | None) -> Config:
     """The config of a call on ``setup``: ``config`` if it differs only in kernel parameters.
 
-    One config per call: everything but the model parameters the kernel takes
-    (:func:`firnline.parameters.kernel_values`) comes from the config the setup was
-    prepared from (grid, outlines, forcing, balance calendar, band width, radiation
-    settings and ``[melt] method`` and ``transmissivity``, which shape the radiation
-    table). A config that differs elsewhere is refused.
+    One config per call: everything but the model parameters the kernel takes (those
+    of :data:`firnline.parameters.PARAMETERS` with a kernel name) comes from the config
+    the setup was prepared from: site, DEM, outlines, ``[climate]``, balance calendar,
+    band width, radiation settings, ``[melt] method`` and ``transmissivity`` (which
+    shapes the radiation table). A config that differs there is refused; where results
+    go (``[output]``) and ``[observations]`` / ``[calibration]`` may differ.
 
     Raises
     ------
@@ -112,17 +113,26 @@ def check_config(setup: Setup, config: Config | None) -> Config:
     if config is None or config is setup.config:
         return setup.config
     ref = setup.config
-    for name in ("site", "dem", "glaciers", "climate", "balance", "radiation"):
-        if getattr(config, name) != getattr(ref, name):
-            raise ValueError(f"the config differs from the one the setup was prepared from in [{name}]; "
-                             "only model parameters may differ: prepare a setup from this config "
-                             "(firnline.model.prepare) instead")
-    for key in ("method", "transmissivity"):
-        if getattr(config.melt, key) != getattr(ref.melt, key):
-            raise ValueError(f"the config differs from the one the setup was prepared from in [melt] "
-                             f"{key}, which shapes the setup; prepare a setup from this config "
-                             "(firnline.model.prepare) instead")
+    free = {p.key for p in parameters.PARAMETERS if p.kernel}   # may differ: the kernel takes them
+    for f in dataclasses.fields(Config):
+        if f.name in _RESULT_FREE:
+            continue
+        mine, theirs = getattr(config, f.name), getattr(ref, f.name)
+        if mine is None or theirs is None or not dataclasses.is_dataclass(mine):
+            keys = [None] if mine != theirs else []
+        else:
+            keys = [k.name for k in dataclasses.fields(mine)
+                    if k.name not in free and getattr(mine, k.name) != getattr(theirs, k.name)]
+        if keys:
+            where = f"[{f.name}]" + (f" {keys[0]}" if keys[0] else "")
+            raise ValueError(f"the config differs from the one the setup was prepared from in {where}, "
+                             "which shapes the setup (only kernel parameters may differ); prepare a "
+                             "setup from this config (firnline.model.prepare) instead")
     return config
+
+
+#: Parts of a config that do not change results (where they go, what a calibration fits to).
+_RESULT_FREE = ("output", "observations", "calibration", "source", "raw")
 
 
 def prepare(config: Config, progress: Progress = None, need_radiation: bool | None = None) -> Setup:

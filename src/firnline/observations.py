@@ -52,7 +52,7 @@ from typing import Sequence
 import numpy as np
 
 from .errors import InputError
-from .files import regular_file
+from .files import read_text
 
 POINT_COLUMNS = ("point_id", "x", "y", "start_date", "end_date", "balance_mwe", "sigma_mwe")
 GLACIER_COLUMNS = ("glacier", "start_date", "end_date", "balance_mwe", "sigma_mwe")
@@ -135,15 +135,9 @@ def read_table(path: str | Path, key: str) -> Table:
         The ``[observations]`` key that names the file (for messages).
     """
     path = Path(path)
-    if path.exists():
-        regular_file(path, "observation file", f"[observations] {key}")   # a FIFO would hang
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError(f"{path}: observation file not found; check [observations] {key}.") from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise InputError(f"{path.name}: cannot read the observation file ({e}); give a UTF-8 CSV "
-                         f"as [observations] {key}.") from None
+    text = read_text(path, "observation file", f"check [observations] {key}",
+                     f"give a UTF-8 CSV as [observations] {key}", key=f"[observations] {key}",
+                     encoding="utf-8-sig")
     return parse_table(text, path.name)
 
 

@@ -146,6 +146,9 @@ PARAMETERS: tuple[Parameter, ...] = (
               (), not_calibratable=ROUTING_ONLY),
 )
 
+#: The value type each kind of parameter has in a validated config.
+PYTHON_TYPES = {"number": float, "monthly": tuple, "pair": tuple}
+
 BY_KEY: dict[str, Parameter] = {p.key: p for p in PARAMETERS}
 
 

@@ -11,15 +11,18 @@ from ..config import load_config
 SCENARIO_OPTIONS = ("--warming", "--precip-change")
 
 
-def add_common(p, out=True) -> None:
+def add_command(sub, name: str, help: str, description: str, main):
+    """A command's parser with the config argument, ``--out``, ``--force`` and ``--quiet``; returns it."""
+    p = sub.add_parser(name, help=help, description=description)
     p.add_argument("config", metavar="CONFIG", help="the run's TOML config file")
-    if out:
-        p.add_argument("--out", metavar="DIR", help="output folder (default: [output] dir of the config); "
-                       "it must be new, empty or hold only earlier firnline outputs, which are replaced")
-        p.add_argument("--force", action="store_true",
-                       help="write into an output folder that also holds other files (they are kept; "
-                            "never overwrites an input of the run)")
+    p.add_argument("--out", metavar="DIR", help="output folder (default: [output] dir of the config); "
+                   "it must be new, empty or hold only earlier firnline outputs, which are replaced")
+    p.add_argument("--force", action="store_true",
+                   help="write into an output folder that also holds other files (they are kept; "
+                        "never overwrites an input of the run)")
     p.add_argument("--quiet", action="store_true", help="no progress bars or notes")
+    p.set_defaults(func=main)
+    return p
 
 
 def progress_bars(quiet: bool):
@@ -45,10 +48,18 @@ def progress_bars(quiet: bool):
     return report
 
 
-def say(args, text: str) -> None:
-    """A note on stderr unless --quiet."""
+def say(args, *texts: str) -> None:
+    """Notes on stderr (one a line) unless --quiet."""
     if not getattr(args, "quiet", False):
-        print(text, file=sys.stderr)
+        for text in texts:
+            print(text, file=sys.stderr)
+
+
+def wrote(args, files, out, then: str = "") -> None:
+    """The closing notes of a command that writes model results: what went where, and the caution."""
+    from ..provenance import CAUTION
+
+    say(args, f"wrote {len(files)} files to {out}{then}", CAUTION)
 
 
 def config_and_out(args):

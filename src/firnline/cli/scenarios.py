@@ -15,16 +15,14 @@ in one kernel pass and writes, all or nothing:
 from __future__ import annotations
 
 from ..errors import InputError
-from .common import SCENARIO_OPTIONS, add_common, claim_output, config_and_out, progress_bars, say
+from .common import SCENARIO_OPTIONS, add_command, claim_output, config_and_out, progress_bars, say, wrote
 
 
 def add_parser(sub) -> None:
-    p = sub.add_parser("scenarios", help="sweep warming and precipitation change: ELA, balance, sensitivity",
-                       description="Model every combination of the given warmings and precipitation "
-                                   "changes (plus the no-change reference) in one pass; write per-glacier "
-                                   "means, per-year results, dELA/dT and dB/dT, a mean-balance map per "
-                                   "scenario and figures.")
-    add_common(p)
+    p = add_command(sub, "scenarios", "sweep warming and precipitation change: ELA, balance, sensitivity",
+                    "Model every combination of the given warmings and precipitation changes (plus "
+                    "the no-change reference) in one pass; write per-glacier means, per-year results, "
+                    "dELA/dT and dB/dT, a mean-balance map per scenario and figures.", main)
     p.add_argument("--warming", nargs="*", metavar="K",
                    help="uniform warmings added to the station temperature, K (one or more; required)")
     p.add_argument("--precip-change", nargs="*", metavar="PCT",
@@ -33,7 +31,6 @@ def add_parser(sub) -> None:
     p.add_argument("--changes", nargs="*", metavar="FILE",
                    help="monthly change files (CSV: month, warming_k, precip_change_pct; 12 rows), one "
                         "scenario each, named by the file stem")
-    p.set_defaults(func=main)
 
 
 def main(args) -> int:
@@ -43,7 +40,6 @@ def main(args) -> int:
         raise InputError("firnline scenarios needs --warming K [K ...] or --changes FILE [FILE ...]: give one "
                          "or more warmings in K, e.g. --warming 1 2 3, or monthly change files.")
     from ..model import prepare
-    from ..provenance import CAUTION
     from ..scenario_products import sweep_table, write_sweep
     from ..scenarios import scenario_definitions, sweep
 
@@ -55,12 +51,9 @@ def main(args) -> int:
     with claim_output(args, cfg, out, "scenarios", scenarios=len(scen)):
         progress = progress_bars(args.quiet)
         setup = prepare(cfg, progress)
-        for note in setup.notes:
-            say(args, note)
-        say(args, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
+        say(args, *setup.notes, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
         result = sweep(setup, args.warming or [], args.precip_change or [], progress=progress, changes=monthly)
         files = write_sweep(result, out, report=not args.no_report)
     print(sweep_table(result))
-    say(args, f"wrote {len(files)} files to {out}")
-    say(args, CAUTION)
+    wrote(args, files, out)
     return 0

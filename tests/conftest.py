@@ -19,6 +19,8 @@ import tomli_w
 from pyogrio import raw
 from rasterio.transform import from_origin
 
+from firnline.observations import POINT_COLUMNS
+
 CRS = "EPSG:32632"
 
 
@@ -101,6 +103,99 @@ def work_entries(out: Path) -> list[str]:
     return sorted(p.name for p in out.parent.iterdir() if p.name.startswith(f".{out.name}.firnline-"))
 
 
+def seasonal(tmp_path: Path, years=3, seed=7) -> Path:
+    """A planar glacier 1800..3500 m under a seasonal, noisy station record (3 balance years)."""
+    end = 2015 + years
+    dates = pd.date_range("2015-10-01", f"{end}-09-30", freq="D")
+    rng = np.random.default_rng(seed)
+    t = 2 + 8 * np.sin(2 * np.pi * (np.arange(len(dates)) - 100) / 365.25) + rng.normal(0, 3, len(dates))
+    p = rng.gamma(0.6, 8, len(dates))
+    write_dem(tmp_path / "dem.tif", ramp(40, 3, 3500.0, 1800.0))
+    write_station(tmp_path / "station.csv", "2015-10-01", f"{end}-09-30", t, p)
+    return write_config(tmp_path / "case.toml", base_sections(1800.0))
+
+
+CALIBRATION_STAKE_ROWS = (1, 6, 10, 14, 18)   # DEM rows of the calibration case's stakes (row 0: 3200 m)
+
+
+def seasonal_station(path: Path, start="2016-10-01", end="2019-09-30", seed=3) -> Path:
+    """An invented station record: seasonal temperature cycle with noise, gamma precipitation."""
+    dates = pd.date_range(start, end, freq="D")
+    doy = dates.day_of_year.to_numpy()
+    rng = np.random.default_rng(seed)
+    t = 4.0 - 9.0 * np.cos(2 * np.pi * (doy - 20) / 365.0) + rng.normal(0.0, 3.0, dates.size)
+    p = rng.gamma(0.6, 8.0, dates.size)
+    pd.DataFrame({"date": dates.strftime("%Y-%m-%d"), "temperature_c": t.round(2),
+                  "precipitation_mm": p.round(2)}).to_csv(path, index=False)
+    return path
+
+
+def calibration_sections(melt: dict, **extra) -> dict:
+    sec = base_sections(2000.0)
+    sec["melt"] = dict(melt)
+    for k, v in extra.items():
+        sec.setdefault(k, {}).update(v)
+    return sec
+
+
+@pytest.fixture
+def calibration_case(tmp_path):
+    """A calibration case: ``calibration_case(truth, start)`` writes the DEM (a plane 2200..3200 m,
+    20 x 10 cells of 50 m), a seasonal station record and the observations the model makes with
+    the factors ``truth`` (stakes on CALIBRATION_CALIBRATION_STAKE_ROWS, glacier-wide annual balances).
+
+    Returns a dict with the folder, the truth run, the observations, the stake rows and a
+    ``config(**sections)`` writer of a calibration config that starts from ``start``.
+    """
+    def build(truth: dict, start: dict) -> dict:
+        return _calibration_case(tmp_path, truth, start)
+    return build
+
+
+def _calibration_case(tmp_path, truth_values: dict, start: dict) -> dict:
+    import firnline
+    write_dem(tmp_path / "dem.tif", ramp(20, 10, 3200.0, 2200.0))
+    seasonal_station(tmp_path / "station.csv")
+    truth_cfg = write_config(tmp_path / "truth.toml", calibration_sections(truth_values))
+    truth = firnline.run(firnline.load_config(truth_cfg))
+    ds = truth.fields
+    x, y = ds.x.values, ds.y.values
+    stakes = []
+    for j, r in enumerate(CALIBRATION_STAKE_ROWS):
+        for k, year in enumerate(ds.balance_year.values):
+            stakes.append([f"S{j}", x[3], y[r], f"{year - 1}-10-01", f"{year}-09-30",
+                           float(ds.annual_balance.values[k, r, 3]), 0.15])
+            stakes.append([f"S{j}", x[3], y[r], f"{year - 1}-10-01", f"{year}-04-30",
+                           float(ds.winter_balance.values[k, r, 3]), 0.15])
+    stakes = pd.DataFrame(stakes, columns=list(POINT_COLUMNS))
+    s = truth.summary
+    glacier = pd.DataFrame({"glacier": s.glacier, "start_date": [f"{v - 1}-10-01" for v in s.balance_year],
+                            "end_date": [f"{v}-09-30" for v in s.balance_year],
+                            "balance_mwe": s.annual_balance_mwe, "sigma_mwe": 0.2})
+    stakes.to_csv(tmp_path / "stakes.csv", index=False)
+    glacier.to_csv(tmp_path / "glacier_balances.csv", index=False)
+
+    def config(name="cal.toml", melt=None, calibration=None, observations=None, **extra):
+        obs = {"point_balances": "stakes.csv", "glacier_balances": "glacier_balances.csv"}
+        obs.update(observations or {})
+        obs = {k: v for k, v in obs.items() if v is not None}   # None: leave the key out
+        cal = {"parameters": ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k"]}
+        cal.update(calibration or {})
+        sec = calibration_sections(melt or start, observations=obs, calibration=cal, **extra)
+        return write_config(tmp_path / name, sec)
+
+    return {"dir": tmp_path, "truth": truth, "stakes": stakes, "glacier": glacier, "config": config,
+            "stake_rows": CALIBRATION_STAKE_ROWS}
+
+
+def one_sentence_no_traceback(err: str) -> str:
+    assert "Traceback" not in err
+    lines = [ln for ln in err.strip().splitlines() if ln.strip()]
+    assert len(lines) == 1, err
+    assert lines[0].startswith("firnline: ")
+    return lines[0]
+
+
 @pytest.fixture
 def plane_case(tmp_path):
     """A planar glacier 2000..3000 m under constant forcing; returns a builder."""
@@ -170,4 +265,8 @@ def builders():
     return SimpleNamespace(write_dem=write_dem, ramp=ramp, write_station=write_station,
                            write_config=write_config, write_outlines=write_outlines,
                            base_sections=base_sections, folder_case=folder_case, snapshot=snapshot,
-                           work_entries=work_entries)
+                           work_entries=work_entries, seasonal=seasonal, seasonal_station=seasonal_station,
+                           calibration_sections=calibration_sections,
+                           one_sentence_no_traceback=one_sentence_no_traceback,
+                           kernel_params=kernel_params, constant_record=constant_record,
+                           station_run=station_run)

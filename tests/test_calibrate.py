@@ -28,69 +28,14 @@ from firnline.outdir import MANIFEST
 
 TRUTH = {"ddf_snow_mm_per_day_k": 4.5, "ddf_ice_mm_per_day_k": 8.5}
 START = {"ddf_snow_mm_per_day_k": 3.0, "ddf_ice_mm_per_day_k": 6.0}
-STAKE_ROWS = (1, 6, 10, 14, 18)   # DEM rows (row 0 is the top, 3200 m)
 POINT_COLUMNS = ["point_id", "x", "y", "start_date", "end_date", "balance_mwe", "sigma_mwe"]
 GLACIER_COLUMNS = ["glacier", "start_date", "end_date", "balance_mwe", "sigma_mwe"]
 
 
-def write_seasonal_station(path: Path, start="2016-10-01", end="2019-09-30", seed=3) -> Path:
-    """An invented station record: seasonal temperature cycle with noise, gamma precipitation."""
-    dates = pd.date_range(start, end, freq="D")
-    doy = dates.day_of_year.to_numpy()
-    rng = np.random.default_rng(seed)
-    t = 4.0 - 9.0 * np.cos(2 * np.pi * (doy - 20) / 365.0) + rng.normal(0.0, 3.0, dates.size)
-    p = rng.gamma(0.6, 8.0, dates.size)
-    pd.DataFrame({"date": dates.strftime("%Y-%m-%d"), "temperature_c": t.round(2),
-                  "precipitation_mm": p.round(2)}).to_csv(path, index=False)
-    return path
-
-
-def sections(builders, melt: dict, **extra) -> dict:
-    sec = builders.base_sections(2000.0)
-    sec["melt"] = dict(melt)
-    for k, v in extra.items():
-        sec.setdefault(k, {}).update(v)
-    return sec
-
-
 @pytest.fixture
-def case(builders, tmp_path):
-    """Writes the DEM, the station and the observations made by the model with TRUTH.
-
-    Returns a dict with the folder, the truth run and a ``config(**sections)`` writer of a
-    calibration config that starts from START.
-    """
-    builders.write_dem(tmp_path / "dem.tif", builders.ramp(20, 10, 3200.0, 2200.0))
-    write_seasonal_station(tmp_path / "station.csv")
-    truth_cfg = builders.write_config(tmp_path / "truth.toml", sections(builders, TRUTH))
-    truth = firnline.run(firnline.load_config(truth_cfg))
-    ds = truth.fields
-    x, y = ds.x.values, ds.y.values
-    stakes = []
-    for j, r in enumerate(STAKE_ROWS):
-        for k, year in enumerate(ds.balance_year.values):
-            stakes.append([f"S{j}", x[3], y[r], f"{year - 1}-10-01", f"{year}-09-30",
-                           float(ds.annual_balance.values[k, r, 3]), 0.15])
-            stakes.append([f"S{j}", x[3], y[r], f"{year - 1}-10-01", f"{year}-04-30",
-                           float(ds.winter_balance.values[k, r, 3]), 0.15])
-    stakes = pd.DataFrame(stakes, columns=POINT_COLUMNS)
-    s = truth.summary
-    glacier = pd.DataFrame({"glacier": s.glacier, "start_date": [f"{v - 1}-10-01" for v in s.balance_year],
-                            "end_date": [f"{v}-09-30" for v in s.balance_year],
-                            "balance_mwe": s.annual_balance_mwe, "sigma_mwe": 0.2})
-    stakes.to_csv(tmp_path / "stakes.csv", index=False)
-    glacier.to_csv(tmp_path / "glacier_balances.csv", index=False)
-
-    def config(name="cal.toml", melt=None, calibration=None, observations=None, **extra):
-        obs = {"point_balances": "stakes.csv", "glacier_balances": "glacier_balances.csv"}
-        obs.update(observations or {})
-        obs = {k: v for k, v in obs.items() if v is not None}   # None: leave the key out
-        cal = {"parameters": ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k"]}
-        cal.update(calibration or {})
-        sec = sections(builders, melt or START, observations=obs, calibration=cal, **extra)
-        return builders.write_config(tmp_path / name, sec)
-
-    return {"dir": tmp_path, "truth": truth, "stakes": stakes, "glacier": glacier, "config": config}
+def case(calibration_case):
+    """The calibration case of conftest.py, observed with TRUTH, starting from START."""
+    return calibration_case(TRUTH, START)
 
 
 def test_modelled_values_over_periods_match_the_run_products(case):
@@ -121,7 +66,7 @@ def test_balance_over_an_arbitrary_inclusive_period_closed_form(builders, tmp_pa
     y = 5150000.0 - 10.5 * 50.0          # centre of row 10
     pd.DataFrame([["P", x, y, "2017-03-05", "2017-03-14", -1.0, 0.1]],
                  columns=POINT_COLUMNS).to_csv(tmp_path / "stakes.csv", index=False)
-    cfg = firnline.load_config(builders.write_config(tmp_path / "c.toml", sections(builders,
+    cfg = firnline.load_config(builders.write_config(tmp_path / "c.toml", builders.calibration_sections(
         {"ddf_ice_mm_per_day_k": 7.0}, observations={"point_balances": "stakes.csv"},
         calibration={"parameters": ["ddf_ice_mm_per_day_k"]})))
     setup = prepare(cfg)
@@ -250,7 +195,7 @@ def test_dh_rows_are_converted_and_fitted(case):
 
 def test_ratio_ties_the_ice_factor_to_the_snow_factor(builders, case, tmp_path):
     tied_truth = {"ddf_snow_mm_per_day_k": 4.0, "ddf_ice_mm_per_day_k": 8.0}
-    cfg = builders.write_config(tmp_path / "t2.toml", sections(builders, tied_truth))
+    cfg = builders.write_config(tmp_path / "t2.toml", builders.calibration_sections(tied_truth))
     run = firnline.run(firnline.load_config(cfg))
     s = run.summary
     pd.DataFrame({"glacier": s.glacier, "start_date": [f"{v - 1}-10-01" for v in s.balance_year],
@@ -466,7 +411,7 @@ def test_points_in_another_crs_use_the_cell_that_contains_them(case):
     a, _ = load_observations(cfg_utm, setup)
     b, _ = load_observations(cfg_ll, setup)
     np.testing.assert_array_equal(a.flat_index, b.flat_index)
-    np.testing.assert_array_equal(a.flat_index[::6] // 10, STAKE_ROWS)   # rows of the stakes, 10 columns
+    np.testing.assert_array_equal(a.flat_index[::6] // 10, case["stake_rows"])   # rows of the stakes, 10 columns
     np.testing.assert_allclose(b.x_m, a.x_m, atol=1e-3)
 
 

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from conftest import LAPSE, constant_record, station_run
-from conftest import kernel_params as params
 from firnline.metrics import band_profile, ela_from_profile, glacier_year
+
+LAPSE = -0.0065  # K per m: ICAO Standard Atmosphere (Doc 7488) / ISO 2533:1975 tropospheric lapse rate
 
 
 def hand_balance(z, t_st=5.0, z_st=2000.0, p=5.0, ddf_s=5.0, ddf_i=8.0, days=365, warming=0.0):
@@ -25,21 +25,21 @@ def hand_balance(z, t_st=5.0, z_st=2000.0, p=5.0, ddf_s=5.0, ddf_i=8.0, days=365
     return daily * days
 
 
-def test_planar_glacier_matches_hand_calculation():
+def test_planar_glacier_matches_hand_calculation(builders):
     z = np.linspace(2000.0, 3000.0, 201)
-    rec = constant_record()
-    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params())
+    rec = builders.constant_record()
+    res = builders.station_run(z, np.ones_like(z, bool), 2000.0, *rec, builders.kernel_params())
     annual = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
               - res.ice_melt_winter - res.ice_melt_summer)[0, 0]
     np.testing.assert_allclose(annual, hand_balance(z), rtol=1e-5, atol=1e-2)
 
 
-def test_planar_glacier_ela_and_aar_by_hand():
+def test_planar_glacier_ela_and_aar_by_hand(builders):
     """Uniform area per metre of elevation: AAR = (z_max - ELA) / (z_max - z_min)."""
     z = np.linspace(2000.0, 3000.0, 1001)[:-1] + 0.5
     area = np.full_like(z, 100.0)
-    rec = constant_record()
-    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params())
+    rec = builders.constant_record()
+    res = builders.station_run(z, np.ones_like(z, bool), 2000.0, *rec, builders.kernel_params())
     b = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
          - res.ice_melt_winter - res.ice_melt_summer)[0, 0] / 1000.0
     m = glacier_year(z, area, b.astype(float), b.astype(float) * 0, b.astype(float), band_width_m=50.0)
@@ -54,12 +54,12 @@ def test_planar_glacier_ela_and_aar_by_hand():
     assert m.gradient_mwe_per_100m == pytest.approx(grad_hand, rel=0.02)
 
 
-def test_ela_shift_is_one_over_lapse_rate_per_kelvin():
+def test_ela_shift_is_one_over_lapse_rate_per_kelvin(builders):
     """A uniform warming dT raises the T = p/ddf_s isotherm, hence the ELA, by dT / |lapse|."""
     z = np.linspace(2000.0, 3500.0, 1501)
-    rec = constant_record()
-    res = station_run(z, np.ones_like(z, bool), 2000.0, *rec, params(), warming_k=[0.0, 1.0, 2.0],
-                     precip_change_pct=[0.0, 0.0, 0.0])
+    rec = builders.constant_record()
+    res = builders.station_run(z, np.ones_like(z, bool), 2000.0, *rec, builders.kernel_params(),
+                               warming_k=[0.0, 1.0, 2.0], precip_change_pct=[0.0, 0.0, 0.0])
     b = (res.acc_winter + res.acc_summer - res.snow_melt_winter - res.snow_melt_summer
          - res.ice_melt_winter - res.ice_melt_summer)[:, 0]
     elas = [ela_from_profile(band_profile(z, b[s] / 1000.0, np.ones_like(z), 50.0))[0] for s in range(3)]
@@ -68,7 +68,7 @@ def test_ela_shift_is_one_over_lapse_rate_per_kelvin():
     assert elas[2] - elas[0] == pytest.approx(2 * shift, abs=50.0)
 
 
-def test_conservation_per_cell():
+def test_conservation_per_cell(builders):
     """acc - abl = annual, winter + summer = annual, and the snow carried over is accounted:
     SWE_end - SWE_start = acc - snow melt (mass conservation; common practice)."""
     rng = np.random.default_rng(3)
@@ -81,8 +81,8 @@ def test_conservation_per_cell():
     winter = (np.arange(n_days) % 365) < 212
     z = np.linspace(1500, 3500, 500)
     glacier = np.arange(500) % 3 != 0
-    p = params(precip_gradient_per_m=0.0004, snow_c=0.5, rain_c=2.5, ddf_snow=3.0, ddf_ice=6.0)
-    r = station_run(z, glacier, 1200.0, T, P, month, doy, year, winter, p)
+    p = builders.kernel_params(precip_gradient_per_m=0.0004, snow_c=0.5, rain_c=2.5, ddf_snow=3.0, ddf_ice=6.0)
+    r = builders.station_run(z, glacier, 1200.0, T, P, month, doy, year, winter, p)
     acc = r.acc_winter + r.acc_summer
     smelt = r.snow_melt_winter + r.snow_melt_summer
     imelt = r.ice_melt_winter + r.ice_melt_summer
@@ -98,24 +98,24 @@ def test_conservation_per_cell():
     assert imelt[..., glacier].max() > 0 and r.swe_end[0, -1, -1] > r.swe_end[0, 0, -1]
 
 
-def test_precipitation_and_snow_fraction_by_hand():
+def test_precipitation_and_snow_fraction_by_hand(builders):
     """P = P_st * factor * (1 + grad dz) * (1 + pct/100); snow fraction linear across the range."""
     z = np.array([1200.0, 2200.0])
     T = np.array([1.5])                 # halfway through [0.5, 2.5] at the station
     P = np.array([10.0])
     one = np.ones(1, int)
-    p = params(lapse_rate_k_per_m=(0.0,) * 12, precip_gradient_per_m=0.0003, precip_factor=1.2,
+    p = builders.kernel_params(lapse_rate_k_per_m=(0.0,) * 12, precip_gradient_per_m=0.0003, precip_factor=1.2,
                snow_c=0.5, rain_c=2.5, threshold_c=5.0)
-    r = station_run(z, np.ones(2, bool), 1200.0, T, P, one, one, np.zeros(1, int), np.ones(1, bool), p,
+    r = builders.station_run(z, np.ones(2, bool), 1200.0, T, P, one, one, np.zeros(1, int), np.ones(1, bool), p,
                    precip_change_pct=[10.0])
     expect = 10.0 * 1.2 * np.array([1.0, 1.3]) * 1.1 * 0.5
     np.testing.assert_allclose(r.acc_winter[0, 0], expect, rtol=1e-6)
 
 
-def test_snapshots_give_period_balances():
-    rec = constant_record(t=3.0)
+def test_snapshots_give_period_balances(builders):
+    rec = builders.constant_record(t=3.0)
     z = np.linspace(2000, 3000, 11)
-    r = station_run(z, np.ones(11, bool), 2000.0, *rec, params(), snapshot_days=[0, 100, 365])
+    r = builders.station_run(z, np.ones(11, bool), 2000.0, *rec, builders.kernel_params(), snapshot_days=[0, 100, 365])
     annual = (r.acc_winter + r.acc_summer - r.snow_melt_winter - r.snow_melt_summer
               - r.ice_melt_winter - r.ice_melt_summer)[0, 0]
     np.testing.assert_allclose(r.snapshots[2, 0] - r.snapshots[0, 0], annual, rtol=1e-5, atol=1e-2)

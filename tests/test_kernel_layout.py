@@ -12,7 +12,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from conftest import kernel_params
 from firnline import kernel as K
 from firnline.kernel import Calendar, Cells, Flux, Method, Scenarios, Season, State, StationForcing, run_kernel
 from firnline.radiation import RadiationTable
@@ -105,13 +104,13 @@ SCENARIOS = Scenarios(
 
 
 @pytest.mark.parametrize("method", [Method.DEGREE_DAY, Method.RADIATION])
-def test_chunked_kernel_equals_the_previous_kernel(method, monkeypatch):
+def test_chunked_kernel_equals_the_previous_kernel(builders, method, monkeypatch):
     """Equal within 1e-6 relative (values under 1e-3 mm: within 1e-9 mm) on every per-season
     sum, the snow at year ends and the cumulative snapshots; cells cross chunk and (with a
     small group size) parallel-call boundaries."""
     monkeypatch.setattr(K, "GROUP_CELLS", 300)
     z, ice, T, P, month, doy, year, winter, table = relief_case()
-    p = kernel_params(**PARAMS, method=method)
+    p = builders.kernel_params(**PARAMS, method=method)
     snaps = [0, 45, 365, 366, 700, T.size]
     ref_sums, ref_snow, ref_snaps = reference(z, ice, 1200.0, T, P, month, doy, year, winter, p,
                                               SCENARIOS.warming_k, SCENARIOS.precip_scale, table, snaps)
@@ -130,9 +129,9 @@ def test_chunked_kernel_equals_the_previous_kernel(method, monkeypatch):
     assert np.all(r.ice_melt_summer[..., ~ice] == 0)
 
 
-def test_results_are_named():
+def test_results_are_named(builders):
     z, ice, T, P, month, doy, year, winter, _ = relief_case(n_cells=40, n_years=2)
-    p = kernel_params(**PARAMS)
+    p = builders.kernel_params(**PARAMS)
     r = run_kernel(Cells(z, ice), Calendar(month, doy, year, winter), StationForcing(T, P, 1200.0), p)
     np.testing.assert_array_equal(r.season_sum(Flux.SNOWFALL, Season.WINTER), r.acc_winter)
     np.testing.assert_array_equal(r.season_sum(Flux.RAIN, Season.SUMMER), r.rain_summer)
@@ -143,11 +142,11 @@ def test_results_are_named():
     assert not r.state_final[[State.FIRN, State.LIQUID, State.COLD_CONTENT]].any()
 
 
-def test_rain_plus_snowfall_is_the_cells_precipitation():
+def test_rain_plus_snowfall_is_the_cells_precipitation(builders):
     """Precipitation partition conserves mass: snowfall + rain = P_station * factor *
     (1 + gradient dz) * scale, summed over the year (common practice)."""
     z, ice, T, P, month, doy, year, winter, _ = relief_case(n_cells=60, n_years=1)
-    p = kernel_params(**PARAMS)
+    p = builders.kernel_params(**PARAMS)
     scen = Scenarios.uniform([0.0, 2.0], [0.0, -25.0])
     r = run_kernel(Cells(z, ice), Calendar(month, doy, year, winter), StationForcing(T, P, 1200.0), p, scen)
     orog = 1.15 * np.maximum(0.0, 1.0 + 0.0004 * (z - 1200.0))
@@ -174,12 +173,12 @@ class StationAtCells:
 
 
 @pytest.mark.parametrize("method", [Method.DEGREE_DAY, Method.RADIATION])
-def test_cell_mode_equals_station_mode(method, monkeypatch):
+def test_cell_mode_equals_station_mode(builders, method, monkeypatch):
     """Forcing handed in at the cells gives the station-mode result to float32 rounding of the
     forcing; the kernel pulls the days in order, one bounded block at a time, and the result
     does not depend on where the blocks cut the years (bit for bit)."""
     z, ice, T, P, month, doy, year, winter, table = relief_case(n_cells=K.CHUNK_CELLS + 5, n_years=2)
-    p = kernel_params(**PARAMS, method=method)
+    p = builders.kernel_params(**PARAMS, method=method)
     cal = Calendar(month, doy, year, winter)
     station = run_kernel(Cells(z, ice, table), cal, StationForcing(T, P, 1200.0), p, SCENARIOS)
     src = StationAtCells(z, 1200.0, T, P, month, p)
@@ -199,20 +198,20 @@ def test_cell_mode_equals_station_mode(method, monkeypatch):
     np.testing.assert_array_equal(cell7.snow_end, cell.snow_end)
 
 
-def test_cell_mode_rejects_a_block_of_the_wrong_shape():
+def test_cell_mode_rejects_a_block_of_the_wrong_shape(builders):
     z, ice, _, _, month, doy, year, winter, _ = relief_case(n_cells=10, n_years=1)
 
     class Short:
         def block(self, a, b):
             return np.zeros((b - a, 9), "float32"), np.zeros((b - a, 9), "float32")
     with pytest.raises(ValueError, match="must return two"):
-        run_kernel(Cells(z, ice), Calendar(month, doy, year, winter), Short(), kernel_params(**PARAMS))
+        run_kernel(Cells(z, ice), Calendar(month, doy, year, winter), Short(), builders.kernel_params(**PARAMS))
 
 
-def test_twelve_equal_monthly_changes_are_the_uniform_change_bit_for_bit():
+def test_twelve_equal_monthly_changes_are_the_uniform_change_bit_for_bit(builders):
     z, ice, T, P, month, doy, year, winter, _ = relief_case(n_cells=80, n_years=2)
     args = (Cells(z, ice), Calendar(month, doy, year, winter), StationForcing(T, P, 1200.0),
-            kernel_params(**PARAMS))
+            builders.kernel_params(**PARAMS))
     uniform = run_kernel(*args, Scenarios.uniform([0.0, 1.3, 2.7], [0.0, 7.0, -12.5]))
     monthly = run_kernel(*args, Scenarios.monthly(np.repeat([[0.0], [1.3], [2.7]], 12, axis=1),
                                                   np.repeat([[0.0], [7.0], [-12.5]], 12, axis=1)))
@@ -220,12 +219,12 @@ def test_twelve_equal_monthly_changes_are_the_uniform_change_bit_for_bit():
     np.testing.assert_array_equal(monthly.snow_end, uniform.snow_end)
 
 
-def test_summer_only_warming_leaves_the_first_winter_unchanged():
+def test_summer_only_warming_leaves_the_first_winter_unchanged(builders):
     """Warming in May..September only: the first winter (October..April) is the same bit for
     bit, the year melts more."""
     z, ice, T, P, month, doy, year, winter, _ = relief_case(n_cells=80, n_years=2)
     args = (Cells(z, ice), Calendar(month, doy, year, winter), StationForcing(T, P, 1200.0),
-            kernel_params(**PARAMS))
+            builders.kernel_params(**PARAMS))
     warm = np.zeros((2, 12))
     warm[1, 4:9] = 2.0
     r = run_kernel(*args, Scenarios.monthly(warm, np.zeros((2, 12))))

@@ -29,26 +29,26 @@ def annual(r):
             - r.ice_melt_winter - r.ice_melt_summer)
 
 
-def test_radiation_method_reduces_to_degree_day():
+def test_radiation_method_reduces_to_degree_day(builders):
     """With zero radiation factors and the melt factor equal to both degree-day factors,
     the radiation method (Hock 1999, J. Glaciology 45(149)) is the degree-day method."""
     z = np.linspace(2000, 3200, 61)
-    rec = constant_record(t=4.0)
-    dd = station_run(z, np.ones(61, bool), 2000.0, *rec, params(ddf_snow=4.5, ddf_ice=4.5))
-    rad = station_run(z, np.ones(61, bool), 2000.0, *rec,
-                     params(ddf_snow=1.0, ddf_ice=9.0, melt_factor=4.5, radiation_factor_snow=0.0,
+    rec = builders.constant_record(t=4.0)
+    dd = builders.station_run(z, np.ones(61, bool), 2000.0, *rec, builders.kernel_params(ddf_snow=4.5, ddf_ice=4.5))
+    rad = builders.station_run(z, np.ones(61, bool), 2000.0, *rec,
+                     builders.kernel_params(ddf_snow=1.0, ddf_ice=9.0, melt_factor=4.5, radiation_factor_snow=0.0,
                             radiation_factor_ice=0.0, method=Method.RADIATION),
                      radiation=table(np.linspace(0, 400, 61)))
     np.testing.assert_array_equal(annual(dd), annual(rad))
 
 
-def test_radiation_melt_by_hand():
+def test_radiation_melt_by_hand(builders):
     """One day at T = 3 C on bare ice (no snow): melt = (MF + a_ice I) (T - 0) (Hock 1999)."""
     one = np.ones(1, int)
     I = np.array([0.0, 100.0, 250.0])
-    p = params(lapse_rate_k_per_m=(0.0,) * 12, melt_factor=1.8, radiation_factor_snow=0.01,
+    p = builders.kernel_params(lapse_rate_k_per_m=(0.0,) * 12, melt_factor=1.8, radiation_factor_snow=0.01,
                radiation_factor_ice=0.02, method=Method.RADIATION)
-    r = station_run(np.full(3, 2000.0), np.ones(3, bool), 2000.0, np.array([3.0]), np.array([0.0]),
+    r = builders.station_run(np.full(3, 2000.0), np.ones(3, bool), 2000.0, np.array([3.0]), np.array([0.0]),
                    one, one, np.zeros(1, int), np.ones(1, bool), p, radiation=table(I))
     np.testing.assert_allclose(r.ice_melt_winter[0, 0], (1.8 + 0.02 * I) * 3.0, rtol=1e-6)
 

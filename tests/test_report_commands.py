@@ -7,19 +7,25 @@ import base64
 import re
 
 import pandas as pd
+import pytest
 
 from firnline.cli import main
 from firnline.outdir import MANIFEST
-from test_calibrate import case  # noqa: F401  (the small calibration case, a fixture)
-from test_scenarios import seasonal
+
+
+@pytest.fixture
+def case(calibration_case):
+    """The small calibration case of conftest.py (observed with factors 4.5 and 8.5, started at 3 and 6)."""
+    return calibration_case({"ddf_snow_mm_per_day_k": 4.5, "ddf_ice_mm_per_day_k": 8.5},
+                            {"ddf_snow_mm_per_day_k": 3.0, "ddf_ice_mm_per_day_k": 6.0})
 
 
 def _images(text: str) -> list[bytes]:
     return [base64.b64decode(m) for m in re.findall(r'src="data:image/png;base64,([^"]+)"', text)]
 
 
-def test_scenarios_report(tmp_path):
-    cfg = seasonal(tmp_path, years=3)
+def test_scenarios_report(builders, tmp_path):
+    cfg = builders.seasonal(tmp_path, years=3)
     out = tmp_path / "sweep"
     assert main(["scenarios", str(cfg), "--warming", "1", "2", "--out", str(out), "--quiet"]) == 0
     text = (out / "scenarios_report.html").read_text(encoding="utf-8")
@@ -41,7 +47,7 @@ def test_scenarios_report(tmp_path):
     assert not (out2 / "scenarios_report.html").exists() and (out2 / "ela_vs_warming.png").exists()
 
 
-def test_calibration_report(case, tmp_path):  # noqa: F811
+def test_calibration_report(case, tmp_path):
     cfg = case["config"]()
     out = tmp_path / "cal"
     assert main(["calibrate", str(cfg), "--out", str(out), "--quiet"]) == 0
@@ -60,7 +66,7 @@ def test_calibration_report(case, tmp_path):  # noqa: F811
     assert not (out2 / "calibration_report.html").exists()
 
 
-def test_run_of_calibrated_toml_says_calibration(case, tmp_path):  # noqa: F811
+def test_run_of_calibrated_toml_says_calibration(case, tmp_path):
     """The run report of a calibrated.toml marks the fitted values as coming from the calibration."""
     cfg = case["config"]()
     out = tmp_path / "cal"

@@ -53,18 +53,6 @@ def plane(builders, tmp_path: Path) -> firnline.Config:
     return firnline.load_config(builders.write_config(tmp_path / "case.toml", sec))
 
 
-def seasonal(builders, tmp_path: Path, years=3, seed=7) -> Path:
-    """A planar glacier 1800..3500 m under a seasonal, noisy station record (3 balance years)."""
-    end = 2015 + years
-    dates = pd.date_range("2015-10-01", f"{end}-09-30", freq="D")
-    rng = np.random.default_rng(seed)
-    t = 2 + 8 * np.sin(2 * np.pi * (np.arange(len(dates)) - 100) / 365.25) + rng.normal(0, 3, len(dates))
-    p = rng.gamma(0.6, 8, len(dates))
-    builders.write_dem(tmp_path / "dem.tif", builders.ramp(40, 3, 3500.0, 1800.0))
-    builders.write_station(tmp_path / "station.csv", "2015-10-01", f"{end}-09-30", t, p)
-    return builders.write_config(tmp_path / "case.toml", builders.base_sections(1800.0))
-
-
 def hand_daily_balance(z_m, warming_k):
     """Daily balance (mm w.e.) of a cell under the constant forcing of :func:`plane`.
 
@@ -142,7 +130,7 @@ def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(builders,
 def test_more_precipitation_lowers_the_ela_and_raises_the_balance(builders, tmp_path):
     """More snowfall on every cell can only add accumulation and shelter ice from melt, so the
     balance rises and the ELA falls with each step of precipitation, year by year (common practice)."""
-    setup = prepare(firnline.load_config(seasonal(builders, tmp_path)))
+    setup = prepare(firnline.load_config(builders.seasonal(tmp_path)))
     sw = sweep(setup, [0.0], [-30.0, -15.0, 15.0, 30.0])
     yrs = sw.year_table.sort_values(["balance_year", "precip_change_pct"])
     assert (yrs.ela_flag == "ok").all()
@@ -163,7 +151,7 @@ def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs
     scenario."""
     import firnline.scenarios as scen_mod
 
-    cfg_path = seasonal(builders, tmp_path, years=2)
+    cfg_path = builders.seasonal(tmp_path, years=2)
     # an outline over the upper 24 rows and 2.5 of the 3 columns (fractional cells on its east edge)
     builders.write_outlines(tmp_path / "outlines.gpkg", ["Upper"], [shapely.box(600000, 5148800, 600125, 5150000)],
                    "GPKG", crs="EPSG:32632")
@@ -245,7 +233,7 @@ def test_balanced_budget_recovers_the_intercept_of_an_exact_linear_relation():
 
 def test_every_run_writes_balanced_budget_csv_from_its_summary(builders, tmp_path):
     """The regression in balanced_budget.csv matches numpy.polyfit on summary.csv (reference library)."""
-    cfg = seasonal(builders, tmp_path, years=4)
+    cfg = builders.seasonal(tmp_path, years=4)
     out = tmp_path / "out"
     assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0
     bb = pd.read_csv(out / "balanced_budget.csv")
@@ -289,7 +277,7 @@ def test_demo_balanced_budget_aar_is_plausible(tmp_path):
 # ----------------------------------------------------------------------------
 
 def test_scenarios_command_writes_every_file_with_the_contract_columns(builders, tmp_path, capsys):
-    cfg = seasonal(builders, tmp_path, years=3)
+    cfg = builders.seasonal(tmp_path, years=3)
     out = tmp_path / "sweep"
     assert main(["scenarios", str(cfg), "--warming", "1", "2", "--precip-change", "-10", "0", "10",
                  "--out", str(out), "--quiet", "--no-report"]) == 0   # the report: test_report_commands.py

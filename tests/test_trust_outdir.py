@@ -26,14 +26,6 @@ def cli(args, capsys):
     return code, cap.out, cap.err
 
 
-def one_sentence_no_traceback(err: str) -> str:
-    assert "Traceback" not in err
-    lines = [ln for ln in err.strip().splitlines() if ln.strip()]
-    assert len(lines) == 1, err
-    assert lines[0].startswith("firnline: ")
-    return lines[0]
-
-
 # ----------------------------------------------------------------------------
 # a rerun replaces exactly the files of the earlier run
 # ----------------------------------------------------------------------------
@@ -101,7 +93,7 @@ def test_folder_with_a_file_no_firnline_run_wrote_is_refused_and_untouched(build
     t0 = time.perf_counter()
     code, _, err = cli(["run", str(cfg), "--out", str(out)], capsys)
     assert code == 2
-    line = one_sentence_no_traceback(err)
+    line = builders.one_sentence_no_traceback(err)
     assert "notes.txt" in line and "--force" in line
     assert builders.snapshot(out) == before and builders.work_entries(out) == []
     assert time.perf_counter() - t0 < 30        # refused before computing (no kernel run)
@@ -136,7 +128,7 @@ def test_output_changed_after_the_run_is_refused_by_name(builders, tmp_path, cap
     before = builders.snapshot(out)
     code, _, err = cli(["run", str(cfg)], capsys)
     assert code == 2
-    line = one_sentence_no_traceback(err)
+    line = builders.one_sentence_no_traceback(err)
     assert "summary.csv" in line and "changed" in line
     assert builders.snapshot(out) == before
 
@@ -158,7 +150,7 @@ def test_an_input_inside_the_output_folder_is_refused_even_with_force(builders, 
     before = builders.snapshot(out)
     code, _, err = cli(["run", str(cfg), "--out", str(out)] + (["--force"] if force else []), capsys)
     assert code == 2
-    line = one_sentence_no_traceback(err)
+    line = builders.one_sentence_no_traceback(err)
     assert name in line and "input" in line
     assert builders.snapshot(out) == before
 
@@ -178,7 +170,7 @@ def test_calibrate_never_writes_over_its_config(builders, tmp_path, capsys):
     before = builders.snapshot(out)
     for extra in ([], ["--force"]):
         code, _, err = cli(["calibrate", str(out / "calibrated.toml"), "--out", str(out)] + extra, capsys)
-        assert code == 2 and "calibrated.toml" in one_sentence_no_traceback(err)
+        assert code == 2 and "calibrated.toml" in builders.one_sentence_no_traceback(err)
         assert builders.snapshot(out) == before
 
 
@@ -208,7 +200,7 @@ def test_a_second_run_into_a_locked_folder_is_refused(builders, tmp_path, capsys
         lock_path(out).write_text(json.dumps({"pid": holder.pid, "host": os.uname().nodename}))
         code, _, err = cli(["run", str(cfg)], capsys)
         assert code == 2
-        line = one_sentence_no_traceback(err)
+        line = builders.one_sentence_no_traceback(err)
         assert f"process {holder.pid}" in line and "out" in line
         assert not out.exists()
         # a run into a folder inside the locked one is refused too

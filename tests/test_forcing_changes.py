@@ -8,7 +8,6 @@ import pytest
 import xarray as xr
 
 import firnline
-from conftest import base_sections, ramp, write_config, write_dem, write_station
 from firnline.changes import delta_change, delta_change_from_file, read_change_files, read_changes, write_changes
 from firnline.cli import main
 from firnline.errors import InputError
@@ -145,12 +144,12 @@ def test_precip_offset_interpolates_the_sweeps_own_numbers():
 T_ST, P_ST, Z_ST = 5.0, 5.0, 2000.0
 
 
-def plane(tmp_path):
-    write_dem(tmp_path / "dem.tif", ramp(101, 2, 3500.0, 2000.0))
-    write_station(tmp_path / "station.csv", t=T_ST, p=P_ST)
-    sec = base_sections(Z_ST)
+def plane(builders, tmp_path):
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(101, 2, 3500.0, 2000.0))
+    builders.write_station(tmp_path / "station.csv", t=T_ST, p=P_ST)
+    sec = builders.base_sections(Z_ST)
     sec["downscaling"] = {"precip_gradient_per_m": 0.0}
-    return write_config(tmp_path / "case.toml", sec)
+    return builders.write_config(tmp_path / "case.toml", sec)
 
 
 def hand_ela(w):
@@ -160,8 +159,8 @@ def hand_ela(w):
     return Z_ST + (T_ST + w - t_star) / -LAPSE
 
 
-def test_paired_shift_is_monotonic_and_one_over_lapse_per_kelvin(tmp_path):
-    sw = sweep(prepare(firnline.load_config(plane(tmp_path))), [0.5, 1.0, 1.5, 2.0, 3.0])
+def test_paired_shift_is_monotonic_and_one_over_lapse_per_kelvin(builders, tmp_path):
+    sw = sweep(prepare(firnline.load_config(plane(builders, tmp_path))), [0.5, 1.0, 1.5, 2.0, 3.0])
     t = sw.table.sort_values("warming_k")
     assert (t.n_shift_years == t.n_years).all()
     assert np.all(np.diff(t.ela_shift_m) > 0)                              # monotonic in warming
@@ -173,7 +172,7 @@ def test_paired_shift_is_monotonic_and_one_over_lapse_per_kelvin(tmp_path):
     np.testing.assert_allclose(t.profile_ela_shift_m, t.ela_shift_m, atol=1e-6)
 
 
-def test_record_mean_profile_ela_does_not_fall_while_warming(tmp_path):
+def test_record_mean_profile_ela_does_not_fall_while_warming(builders, tmp_path):
     """Years whose ELA leaves the glacier must not drag a mean ELA down: the record-mean-profile
     ELA rises with warming (or leaves the glacier), never falls."""
     dates = pd.date_range("2014-10-01", "2020-09-30", freq="D")
@@ -181,9 +180,9 @@ def test_record_mean_profile_ela_does_not_fall_while_warming(tmp_path):
     year_anom = rng.normal(0, 1.2, 6)[(dates.year + (dates.month >= 10) - 2015).to_numpy()]
     t = 1 + 8 * np.sin(2 * np.pi * (np.arange(dates.size) - 100) / 365.25) + year_anom + rng.normal(0, 2, dates.size)
     p = rng.gamma(0.6, 8, dates.size)
-    write_dem(tmp_path / "dem.tif", ramp(60, 2, 3000.0, 2000.0))
-    write_station(tmp_path / "station.csv", "2014-10-01", "2020-09-30", t, p)
-    cfg = firnline.load_config(write_config(tmp_path / "case.toml", base_sections(2000.0)))
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(60, 2, 3000.0, 2000.0))
+    builders.write_station(tmp_path / "station.csv", "2014-10-01", "2020-09-30", t, p)
+    cfg = firnline.load_config(builders.write_config(tmp_path / "case.toml", builders.base_sections(2000.0)))
     sw = sweep(prepare(cfg), [0.5, 1.0, 1.5, 2.0, 2.5, 3.0])
     t_ = sw.table.sort_values("warming_k")
     ok = t_[t_.ela_flag == "ok"]
@@ -191,8 +190,8 @@ def test_record_mean_profile_ela_does_not_fall_while_warming(tmp_path):
     assert t_.ela_flag.iloc[-1] in ("ok", "above_glacier")
 
 
-def test_scenarios_command_with_change_files_writes_their_maps(tmp_path, capsys):
-    cfg = plane(tmp_path)
+def test_scenarios_command_with_change_files_writes_their_maps(builders, tmp_path, capsys):
+    cfg = plane(builders, tmp_path)
     a = write_change_file(tmp_path / "summer.csv", [0, 0, 0, 0, 1, 2, 2, 2, 1, 0, 0, 0], [0.0] * 12)
     out = tmp_path / "sw"
     rc = main(["scenarios", str(cfg), "--changes", str(a), "--warming", "1", "--out", str(out), "--quiet"])
@@ -214,28 +213,28 @@ def test_scenarios_command_with_change_files_writes_their_maps(tmp_path, capsys)
     (["--changes"], "--changes needs one or more change files"),
     (["--changes", "nowhere.csv"], "change file not found"),
 ])
-def test_scenarios_bad_changes_exit_2(tmp_path, capsys, args, words):
-    cfg = plane(tmp_path)
+def test_scenarios_bad_changes_exit_2(builders, tmp_path, capsys, args, words):
+    cfg = plane(builders, tmp_path)
     assert main(["scenarios", str(cfg), *args, "--out", str(tmp_path / "o")]) == 2
     err = capsys.readouterr().err
     assert words in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "o").exists()
 
 
-def seasonal_case(tmp_path):
+def seasonal_case(builders, tmp_path):
     dates = pd.date_range("2015-10-01", "2018-09-30", freq="D")
     rng = np.random.default_rng(5)
     t = 1 + 9 * np.sin(2 * np.pi * (np.arange(dates.size) - 100) / 365.25) + rng.normal(0, 3, dates.size)
     p = rng.gamma(0.6, 8, dates.size)
-    write_dem(tmp_path / "dem.tif", ramp(40, 3, 3400.0, 1800.0))
-    write_station(tmp_path / "station.csv", "2015-10-01", "2018-09-30", t, p)
-    return firnline.load_config(write_config(tmp_path / "case.toml", base_sections(1800.0)))
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(40, 3, 3400.0, 1800.0))
+    builders.write_station(tmp_path / "station.csv", "2015-10-01", "2018-09-30", t, p)
+    return firnline.load_config(builders.write_config(tmp_path / "case.toml", builders.base_sections(1800.0)))
 
 
-def test_twelve_equal_monthly_warmings_equal_the_uniform_warming_bit_for_bit(tmp_path):
+def test_twelve_equal_monthly_warmings_equal_the_uniform_warming_bit_for_bit(builders, tmp_path):
     """A change file of twelve 1.0 K and +5 % rows is the uniform step (1 K, +5 %), bit for bit,
     also when it runs beside a truly monthly scenario."""
-    cfg = seasonal_case(tmp_path)
+    cfg = seasonal_case(builders, tmp_path)
     setup = prepare(cfg)
     flat = write_change_file(tmp_path / "flat.csv", [1.0] * 12, [5.0] * 12)
     summer = write_change_file(tmp_path / "summer.csv", [0, 0, 0, 0, 2, 2, 2, 2, 2, 0, 0, 0], [0.0] * 12)
@@ -250,7 +249,7 @@ def test_twelve_equal_monthly_warmings_equal_the_uniform_warming_bit_for_bit(tmp
     np.testing.assert_array_equal(uni.mean_balance[i], mon.mean_balance[j])
 
 
-def test_summer_only_warming_leaves_winter_accumulation_unchanged(tmp_path):
+def test_summer_only_warming_leaves_winter_accumulation_unchanged(builders, tmp_path):
     """Warming only May-September (the fixed-date summer, winter 1 Oct - 30 Apr) changes no
     winter day: winter snowfall is the same on every cell, bit for bit; the summer balance
     falls wherever a summer day reaches the melt threshold or crosses the snow/rain range."""
@@ -258,7 +257,7 @@ def test_summer_only_warming_leaves_winter_accumulation_unchanged(tmp_path):
     from firnline.model import cell_fields
     from firnline.scenarios import run_scenarios, scenario_definitions
 
-    cfg = seasonal_case(tmp_path)
+    cfg = seasonal_case(builders, tmp_path)
     setup = prepare(cfg)
     summer = write_change_file(tmp_path / "summer.csv", [0, 0, 0, 0, 2, 2, 2, 2, 2, 0, 0, 0], [0.0] * 12)
     defs = scenario_definitions([], [0.0], [summer])

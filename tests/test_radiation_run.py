@@ -10,8 +10,6 @@ import pandas as pd
 import pytest
 import rasterio
 
-from conftest import constant_record, station_run
-from conftest import kernel_params as params
 from firnline.cli import main
 from firnline.kernel import Method
 from firnline.radiation import RadiationTable

@@ -121,8 +121,8 @@ def sweep_table(result: Sweep) -> str:
         return f"{format(v, fmt):>{width}}" if np.isfinite(v) else f"{'-':>{width}}"
     for r in t.itertuples():
         off = r.n_years - r.n_ela_ok
-        lines.append(f"{str(r.glacier)[:20]:<20} {str(r.scenario)[:12]:<12} {r.warming_k:>+7g} "
-                     f"{r.precip_change_pct:>+6g} {r.mean_annual_balance_mwe:9.2f} {num(r.ela_m, '.0f', 6)} "
+        lines.append(f"{str(r.glacier)[:20]:<20} {str(r.scenario)[:12]:<12} {r.warming_k:>+7.2f} "
+                     f"{r.precip_change_pct:>+6.1f} {r.mean_annual_balance_mwe:9.2f} {num(r.ela_m, '.0f', 6)} "
                      f"{num(r.ela_shift_m, '+.0f', 6)} {num(r.ela_shift_sd_m, '.0f', 5)} {r.aar:5.2f}  "
                      f"{f'{off} of {r.n_years} years' if off else ''}")
     s = result.sensitivity

@@ -256,48 +256,10 @@ def run_scenarios(setup: Setup, cfg: Config, defs: Sequence[Scenario], progress:
     if all(s.uniform for s in defs):
         return simulate(setup, cfg, [s.warming_k[0] for s in defs], [s.precip_change_pct[0] for s in defs],
                         progress=progress)
-    try:
-        from .kernel import Scenarios
-    except ImportError:          # a kernel with one uniform change per scenario only
-        return _monthly_by_station_series(setup, cfg, defs, progress)
+    from .kernel import Scenarios
     scen = Scenarios(np.array([s.warming_k for s in defs], dtype="float64"),
                      np.array([s.precip_scale for s in defs], dtype="float64"))
     return simulate(setup, cfg, progress=progress, scenarios=scen)
-
-
-def _monthly_by_station_series(setup: Setup, cfg: Config, defs: Sequence[Scenario], progress: Progress = None):
-    """Monthly scenarios on a kernel without monthly changes: one kernel call per monthly scenario,
-    on the station record changed month by month (T + dT[month], P * scale[month]), which is
-    the same model as the monthly change inside the kernel; the uniform ones in one call."""
-    import dataclasses
-
-    if setup.forcing.cells_source is not None:
-        raise InputError("monthly change files with several stations or a gridded file need the kernel's "
-                         "cell mode; use one station, or uniform --warming/--precip-change, for now.")
-    f = setup.forcing
-    m = f.month - 1
-    parts = {}
-    uni = [i for i, d in enumerate(defs) if d.uniform]
-    if uni:
-        parts[tuple(uni)] = simulate(setup, cfg, [defs[i].warming_k[0] for i in uni],
-                                     [defs[i].precip_change_pct[0] for i in uni], progress=progress)
-    for i, d in enumerate(defs):
-        if d.uniform:
-            continue
-        g = dataclasses.replace(f, temperature_c=f.temperature_c + np.asarray(d.warming_k)[m],
-                                precipitation_mm=f.precipitation_mm * np.asarray(d.precip_scale)[m])
-        parts[(i,)] = simulate(dataclasses.replace(setup, forcing=g), cfg, progress=progress)
-    order = np.argsort(np.concatenate([np.asarray(k) for k in parts]))
-    first = next(iter(parts.values()))
-    joined = {}
-    for fld in dataclasses.fields(first):
-        vals = [getattr(r, fld.name) for r in parts.values()]
-        if vals[0] is None:
-            joined[fld.name] = None
-            continue
-        axis = 1 if fld.name == "snapshots" else 0
-        joined[fld.name] = np.take(np.concatenate(vals, axis=axis), order, axis=axis)
-    return dataclasses.replace(first, **joined)
 
 
 def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequence[float] = (0.0,),

@@ -191,6 +191,10 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
     "snow": {
         "redistribution": (_string(REDISTRIBUTION_CHOICES), REDISTRIBUTION_CHOICES[0]),
     },
+    "runoff": {
+        "catchment": (_path, OPTIONAL),
+        "layer": (_string(), OPTIONAL),
+    },
     "balance": {
         "year_start": (_month_day, "10-01"),
         "winter_end": (_month_day, "04-30"),
@@ -210,11 +214,13 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
         "glacier_balances": (_path, OPTIONAL),
         "point_balances": (_path, OPTIONAL),
         "points_crs": (_string(), OPTIONAL),
+        "discharge": (_path, OPTIONAL),
     },
     "calibration": {
         "parameters": (_string_list, REQUIRED),
         "bounds": (_table, {}),
         "ratios": (_table, {}),
+        "discharge_sigma_pct": (_number(0.0, 100.0, lo_open=True), 15.0),
     },
 }
 
@@ -238,7 +244,8 @@ REQUIRED_SECTIONS = ("dem", "climate")
 PATH_KEYS = {("dem", "path"), ("glaciers", "outlines"), ("climate", "station_file"),
              ("climate", "stations"), ("climate", "grid_file"),
              ("output", "dir"), ("radiation", "cache_dir"),
-             ("observations", "glacier_balances"), ("observations", "point_balances")}
+             ("observations", "glacier_balances"), ("observations", "point_balances"),
+             ("observations", "discharge"), ("runoff", "catchment")}
 
 
 # ----------------------------------------------------------------------------
@@ -276,6 +283,8 @@ Climate = _section_type("climate", "Climate", {"mode": property(_climate_mode)})
 Downscaling = _section_type("downscaling", "Downscaling", {"monthly_lapse_rates": _monthly_lapse_rates})
 Melt = _section_type("melt", "Melt")
 Snow = _section_type("snow", "Snow")
+#: ``[runoff]``: the catchment polygons and the storage constants of the linear reservoirs
+Runoff = _section_type("runoff", "Runoff")
 Balance = _section_type("balance", "Balance")
 Output = _section_type("output", "Output")
 Radiation = _section_type("radiation", "Radiation")
@@ -296,6 +305,7 @@ class Config:
     balance: Balance
     output: Output
     radiation: Radiation
+    runoff: Runoff | None = None        # always set by parse_config (the section is optional in a file)
     glaciers: GlacierOutlines | None = None
     observations: Observations | None = None
     calibration: Calibration | None = None
@@ -324,7 +334,7 @@ class Config:
 _SECTION_TYPES = {
     "site": Site, "dem": Dem, "glaciers": GlacierOutlines, "climate": Climate,
     "downscaling": Downscaling, "melt": Melt, "snow": Snow, "balance": Balance, "output": Output,
-    "radiation": Radiation, "observations": Observations, "calibration": Calibration,
+    "radiation": Radiation, "runoff": Runoff, "observations": Observations, "calibration": Calibration,
 }
 
 

@@ -26,6 +26,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from .runoff import DEFAULT_STORAGE_DAYS
+
 #: The melt methods, in the order the config lists them; the first is the default.
 METHODS = ("degree-day", "radiation")
 ALL_METHODS = METHODS
@@ -50,6 +52,12 @@ MIN_SLIDE_SLOPE_SOURCE = ("common practice (from memory: slab avalanches rarely 
                           "exceeds 5 m and is treated as unlimited")
 ROUTING_ONLY = ("it shapes the snow-redistribution routing built once from the DEM and cached with the "
                 "terrain; set it from field knowledge")
+
+_K = DEFAULT_STORAGE_DAYS
+STORAGE_SOURCE = ("Hock & Noetzli (1997), Nordic Hydrology 28, after Baker et al. (1982): storage constants "
+                  "of glacier runoff about 350 h (firn), 30-100 h (snow) and 4-16 h (ice) (from memory)")
+ROUTING_STEP = ("it only routes the water released each day (firnline.runoff); fit it against "
+                "[observations] discharge")
 
 HOCK_2003 = ("Hock (2003), J. Hydrology 282: published ranges about 2.5-11.6 (snow) and "
              "6.6-20 (ice) mm w.e. d-1 K-1 (from memory)")
@@ -144,6 +152,17 @@ PARAMETERS: tuple[Parameter, ...] = (
     Parameter("snow", "min_slide_slope_deg", "deg", 0.0, 89.0, 25.0, None, ALL_METHODS,
               MIN_SLIDE_SLOPE_SOURCE, "slopes gentler than this hold all their snow",
               (), not_calibratable=ROUTING_ONLY),
+    # [runoff]: storage constants of the parallel linear reservoirs (firnline.runoff); they act
+    # after the kernel, on the water released each day, so the kernel has no name for them.
+    Parameter("runoff", "storage_days_snow", "d", 0.0, 365.0, _K["snow"], (0.5, 10.0), ALL_METHODS,
+              STORAGE_SOURCE + "; 2.5 d = 60 h", "storage constant of water released from snow", ()),
+    Parameter("runoff", "storage_days_firn", "d", 0.0, 365.0, _K["firn"], (3.0, 40.0), ALL_METHODS,
+              STORAGE_SOURCE + "; 14.5 d = 348 h", "storage constant of water released from firn", ()),
+    Parameter("runoff", "storage_days_ice", "d", 0.0, 365.0, _K["ice"], (0.05, 3.0), ALL_METHODS,
+              STORAGE_SOURCE + "; 0.5 d = 12 h", "storage constant of water released from glacier ice", ()),
+    Parameter("runoff", "storage_days_ground", "d", 0.0, 365.0, _K["ground"], (0.5, 60.0), ALL_METHODS,
+              "common practice (our choice: ice-free ground drains slower than snow on a glacier, a few days)",
+              "storage constant of water released on ice-free ground", ()),
 )
 
 #: The value type each kind of parameter has in a validated config.
@@ -181,6 +200,12 @@ def monthly(values) -> tuple[float, ...]:
     """Twelve monthly values (January first) from one value or twelve."""
     values = tuple(float(v) for v in values)
     return values * 12 if len(values) == 1 else values
+
+
+def storage_days(cfg) -> tuple[float, float, float, float]:
+    """The four storage constants (days) of ``[runoff]``, in the order snow, firn, ice, ground."""
+    r = cfg.runoff
+    return (r.storage_days_snow, r.storage_days_firn, r.storage_days_ice, r.storage_days_ground)
 
 
 def kernel_values(cfg) -> dict[str, Any]:

@@ -165,6 +165,309 @@ def route(release_mm: np.ndarray, storage_days: Sequence[float], area_m2: float,
 
 
 # ----------------------------------------------------------------------------
+# the daily series of regions: from the kernel's daily water volumes to runoff
+# ----------------------------------------------------------------------------
+
+#: The daily terms the runoff step reads from the kernel, by name (``KernelResult.daily``'s
+#: last axis is indexed by the kernel's ``Daily`` IntEnum; any mapping name -> index works).
+RELEASED_TERMS = ("RELEASED_SNOW", "RELEASED_FIRN", "RELEASED_ICE", "RELEASED_GROUND")
+#: mm columns of runoff.csv and the daily term each comes from (released_mm: the four released terms).
+MM_COLUMNS = {"rain_mm": "RAIN", "snow_melt_mm": "SNOW_MELT", "firn_melt_mm": "FIRN_MELT",
+              "ice_melt_mm": "ICE_MELT", "refreezing_mm": "REFREEZING"}
+#: Columns of runoff.csv (DESIGN.md).
+DAILY_COLUMNS = ["date", "region", *MM_COLUMNS, "released_mm", "discharge_m3s"]
+#: Columns of runoff_monthly.csv: the same per calendar month of each balance year, with the
+#: days of the month in the record, the monthly mean discharge and the glacier-ice share.
+MONTHLY_COLUMNS = ["region", "balance_year", "year", "month", "days", *MM_COLUMNS, "released_mm",
+                   "discharge_m3s", "glacier_ice_share"]
+#: Region name of the whole catchment (the kernel's last region).
+CATCHMENT = "catchment"
+
+
+@dataclass(frozen=True)
+class RunoffSeries:
+    """Daily runoff of the regions of a run (one scenario).
+
+    Attributes
+    ----------
+    dates : ndarray datetime64[D] (n_days,)
+    regions : tuple of str
+        Region names, in the kernel's order (glaciers, then ``ice_free``, then ``catchment``).
+    area_m2 : ndarray (n_regions,)
+    mm : dict of str -> ndarray (n_regions, n_days)
+        The columns of :data:`MM_COLUMNS` and ``released_mm``, mm d-1 over the region's area.
+    routed_mm : ndarray (n_regions, 4, n_days)
+        Water leaving each reservoir (order of :data:`RESERVOIRS`) each day, mm d-1.
+    ice_melt_routed_mm : ndarray (n_regions, n_days)
+        The part of the ice reservoir's outflow that was ice melt (the reservoir is linear,
+        so ice melt routed alone through it is exactly its share of the outflow), mm d-1.
+    discharge_m3s : ndarray (n_regions, n_days)
+        Routed daily mean discharge, m3 s-1.
+    storage_start_mm, storage_end_mm : ndarray (n_regions, 4)
+        Reservoir storage at the start of the first day and the end of the last day, mm.
+    storage_days : tuple of 4 floats
+    """
+
+    dates: np.ndarray
+    regions: tuple
+    area_m2: np.ndarray
+    mm: dict
+    routed_mm: np.ndarray
+    ice_melt_routed_mm: np.ndarray
+    discharge_m3s: np.ndarray
+    storage_start_mm: np.ndarray
+    storage_end_mm: np.ndarray
+    storage_days: tuple
+
+    def region(self, name: str) -> int:
+        """Index of a region by name."""
+        return self.regions.index(name)
+
+    @property
+    def glacier_ice_share(self) -> np.ndarray:
+        """Daily glacier-ice share of discharge (n_regions, n_days); see :func:`glacier_ice_share`."""
+        return glacier_ice_share(self.ice_melt_routed_mm, self.routed_mm.sum(axis=1))
+
+
+def glacier_ice_share(ice_melt_routed, routed_total):
+    """Glacier-ice share of discharge: routed glacier-ice melt over the routed discharge.
+
+    Defined here as the water that melted from glacier ice (``ICE_MELT``, released into the
+    ice reservoir) routed through the ice reservoir, divided by the water leaving all four
+    reservoirs over the same days; rain on bare ice and firn melt are not counted as glacier
+    ice. Both arguments are sums over the same days (any unit); 0 where nothing flows.
+    """
+    a = np.asarray(ice_melt_routed, dtype="float64")
+    b = np.asarray(routed_total, dtype="float64")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(b > 0, np.clip(a / np.where(b > 0, b, 1.0), 0.0, 1.0), 0.0)
+
+
+def _spun_up_storage(release_mm: np.ndarray, k: float, spinup_days: int) -> float:
+    """Storage at the start: the end storage of routing the first ``spinup_days`` from empty."""
+    if spinup_days <= 0 or k == 0.0 or release_mm.size == 0:
+        return 0.0
+    _, s = linear_reservoir(release_mm[:spinup_days], k, 0.0)
+    return float(s[-1])
+
+
+def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_days: Sequence[float],
+                  spinup_days: int = 365) -> RunoffSeries:
+    """Route the daily water volumes of every region of one scenario.
+
+    The kernel sums, for each region and day, the water volumes of its cells (m3); here they
+    become depths over the region's area and the four kinds of released water pass through
+    their parallel linear reservoirs (:func:`route`), so that for each region and reservoir
+    routed volume = released volume - (storage at the end - storage at the start).
+
+    Reservoir start: the record starts at the beginning of a balance year with the kernel's
+    state spun up; the reservoirs are spun up alike, starting from the storage they hold after
+    routing the first ``spinup_days`` days of the record from empty (0: start empty). The
+    storage at the start is in :attr:`RunoffSeries.storage_start_mm`.
+
+    Parameters
+    ----------
+    daily : ndarray (n_days, n_regions, n_terms)
+        Water volumes per day, region and daily term, m3 (one scenario of ``KernelResult.daily``).
+    terms : mapping of term name -> index
+        The kernel's ``Daily`` IntEnum (``terms["RAIN"]``), or any mapping with the names of
+        :data:`MM_COLUMNS` and :data:`RELEASED_TERMS`.
+    regions : sequence of str
+    area_m2 : array_like (n_regions,)
+        Area of each region, m2 (``KernelResult.region_area_m2``).
+    dates : array_like (n_days,) of dates
+    storage_days : 4 floats
+        Storage constants of the snow, firn, ice and ground reservoirs, days.
+    spinup_days : int
+
+    Returns
+    -------
+    RunoffSeries
+    """
+    v = np.asarray(daily, dtype="float64")
+    if v.ndim != 3 or v.shape[1] != len(regions):
+        raise ValueError("daily must be (n_days, n_regions, n_terms) with one region per name")
+    area = np.asarray(area_m2, dtype="float64").reshape(len(regions))
+    dates = np.asarray(dates, dtype="datetime64[D]")
+    if dates.shape != (v.shape[0],):
+        raise ValueError("one date per day of daily")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per_mm = np.where(area > 0, 1e3 / np.where(area > 0, area, 1.0), 0.0)   # m3 -> mm over the area
+    depth = v * per_mm[None, :, None]                                         # (n_days, n_regions, n_terms)
+    idx = [int(terms[n]) for n in RELEASED_TERMS]
+    mm = {col: depth[:, :, int(terms[t])].T.copy() for col, t in MM_COLUMNS.items()}
+    released = np.moveaxis(depth[:, :, idx], 0, -1)                           # (n_regions, 4, n_days)
+    mm["released_mm"] = released.sum(axis=1)
+    k = tuple(float(x) for x in storage_days)
+    n_r, n_d = len(regions), v.shape[0]
+    routed = np.zeros((n_r, 4, n_d))
+    s0 = np.zeros((n_r, 4))
+    s1 = np.zeros((n_r, 4))
+    ice_routed = np.zeros((n_r, n_d))
+    ice_i = RESERVOIRS.index("ice")
+    ice_melt = np.minimum(mm["ice_melt_mm"], released[:, ice_i])   # ice melt is released at bare ice
+    for r in range(n_r):
+        s0[r] = [_spun_up_storage(released[r, i], k[i], spinup_days) for i in range(4)]
+        out = route(released[r], k, area[r], storage0_mm=s0[r])
+        routed[r], s1[r] = out.by_reservoir_mm, out.storage_mm
+        # the ice reservoir is linear: ice melt alone, from its own share of the start storage
+        share0 = (_spun_up_storage(ice_melt[r], k[ice_i], spinup_days))
+        ice_routed[r] = linear_reservoir(ice_melt[r], k[ice_i], share0)[0]
+    discharge = routed.sum(axis=1) * 1e-3 * area[:, None] / SECONDS_PER_DAY
+    return RunoffSeries(dates=dates, regions=tuple(regions), area_m2=area, mm=mm, routed_mm=routed,
+                        ice_melt_routed_mm=ice_routed, discharge_m3s=discharge, storage_start_mm=s0,
+                        storage_end_mm=s1, storage_days=k)
+
+
+def _balance_years(dates: np.ndarray, year_start: str) -> np.ndarray:
+    """Balance-year label of each date (the year a balance year ends in), ``year_start`` "MM-DD"."""
+    m0, d0 = (int(x) for x in year_start.split("-"))
+    d = dates.astype("datetime64[D]")
+    year = d.astype("datetime64[Y]").astype(int) + 1970
+    month = d.astype("datetime64[M]").astype(int) % 12 + 1
+    day = (d - d.astype("datetime64[M]")).astype(int) + 1
+    after = (month > m0) | ((month == m0) & (day >= d0))
+    return year + (after if (m0, d0) != (1, 1) else 0)
+
+
+def daily_table(series: RunoffSeries, regions: Sequence[str] | None = None) -> "pd.DataFrame":
+    """runoff.csv: one row per day and region (default: every glacier and ``catchment``).
+
+    ``ice_free`` is left out by default (it is in the NetCDF); the mm columns are over the
+    region's area, ``discharge_m3s`` is the routed daily mean discharge.
+    """
+    import pandas as pd
+
+    if regions is None:
+        regions = [r for r in series.regions if r != "ice_free"]
+    frames = []
+    dates = pd.to_datetime(series.dates).strftime("%Y-%m-%d")
+    for name in regions:
+        r = series.region(name)
+        cols = {"date": dates, "region": name}
+        cols.update({c: series.mm[c][r] for c in [*MM_COLUMNS, "released_mm"]})
+        cols["discharge_m3s"] = series.discharge_m3s[r]
+        frames.append(pd.DataFrame(cols))
+    return pd.concat(frames, ignore_index=True)[DAILY_COLUMNS]
+
+
+def monthly_table(series: RunoffSeries, year_start: str, regions: Sequence[str] | None = None) -> "pd.DataFrame":
+    """runoff_monthly.csv: the daily series by calendar month of each balance year.
+
+    mm columns are monthly sums (mm per month over the region's area); ``discharge_m3s`` is
+    the mean daily discharge of the month's days in the record; ``glacier_ice_share`` is the
+    routed glacier-ice melt over the routed discharge of the month (:func:`glacier_ice_share`).
+    """
+    import pandas as pd
+
+    if regions is None:
+        regions = [r for r in series.regions if r != "ice_free"]
+    d = series.dates
+    key = pd.DataFrame({"balance_year": _balance_years(d, year_start),
+                        "year": d.astype("datetime64[Y]").astype(int) + 1970,
+                        "month": d.astype("datetime64[M]").astype(int) % 12 + 1})
+    frames = []
+    for name in regions:
+        r = series.region(name)
+        df = key.copy()
+        for c in [*MM_COLUMNS, "released_mm"]:
+            df[c] = series.mm[c][r]
+        df["discharge_m3s"] = series.discharge_m3s[r]
+        df["_ice"] = series.ice_melt_routed_mm[r]
+        df["_out"] = series.routed_mm[r].sum(axis=0)
+        df["days"] = 1
+        g = df.groupby(["balance_year", "year", "month"], sort=True)
+        m = g.sum()
+        m["discharge_m3s"] = g["discharge_m3s"].mean()
+        m["glacier_ice_share"] = glacier_ice_share(m["_ice"].to_numpy(), m["_out"].to_numpy())
+        m = m.reset_index()
+        m["region"] = name
+        frames.append(m)
+    return pd.concat(frames, ignore_index=True)[MONTHLY_COLUMNS]
+
+
+#: Columns of scenario_runoff_monthly.csv: the mean regime per scenario, region and calendar month.
+REGIME_COLUMNS = ["scenario", "warming_k", "precip_change_pct", "region", "month", "years", *MM_COLUMNS,
+                  "released_mm", "discharge_m3s", "glacier_ice_share"]
+
+
+def regime(monthly: "pd.DataFrame") -> "pd.DataFrame":
+    """The mean monthly regime: each calendar month averaged over the complete balance years.
+
+    Only the months of balance years the record holds completely are averaged (a partial
+    month at the record's ends would bias its mean). mm columns are mean monthly sums,
+    ``discharge_m3s`` the mean of the monthly means weighted by days, ``glacier_ice_share``
+    the share of the mean month (ratio of sums, not the mean of ratios).
+    """
+    import pandas as pd
+
+    rows = []
+    full = monthly.groupby(["region", "balance_year"]).days.transform("sum") >= 365
+    m = monthly[full]
+    for (region, month), g in m.groupby(["region", "month"], sort=False):
+        w = g.days.to_numpy(dtype=float)
+        q = g.discharge_m3s.to_numpy()
+        share = g.glacier_ice_share.to_numpy()
+        row = {"region": region, "month": int(month), "years": int(len(g))}
+        row.update({c: float(g[c].mean()) for c in [*MM_COLUMNS, "released_mm"]})
+        row["discharge_m3s"] = float(np.sum(q * w) / np.sum(w))
+        row["glacier_ice_share"] = float(np.sum(share * q * w) / np.sum(q * w)) if np.sum(q * w) > 0 else 0.0
+        rows.append(row)
+    out = pd.DataFrame(rows)
+    if len(out):
+        out = out.sort_values(["region", "month"], kind="stable").reset_index(drop=True)
+    return out
+
+
+def gauge_scores(dates, simulated_m3s, observed: "ObservedDischarge") -> dict:
+    """Scores of the modelled discharge against the gauge over the days both have.
+
+    Returns
+    -------
+    dict
+        ``source, days, first_day, last_day, mean_observed_m3s, mean_modelled_m3s, nse,
+        kge, volume_error`` (NSE: Nash and Sutcliffe, 1970; KGE: Gupta et al., 2009;
+        volume error: :func:`volume_error`; NaN scores as None).
+
+    Raises
+    ------
+    InputError
+        When the gauge record has no value on any modelled day.
+    """
+    d = np.asarray(dates, dtype="datetime64[D]")
+    obs = observed.on(d)
+    sim = np.asarray(simulated_m3s, dtype="float64")
+    both = np.isfinite(obs) & np.isfinite(sim)
+    if not both.any():
+        raise InputError(f"{observed.source}: the discharge record ({observed.dates[0]} .. {observed.dates[-1]}) "
+                         f"has no value on a modelled day ({d[0]} .. {d[-1]}); give a record that "
+                         "overlaps the station record.")
+
+    def num(x):
+        return None if not math.isfinite(x) else float(x)
+
+    days = d[both]
+    return {"source": str(observed.source), "days": int(both.sum()), "first_day": str(days[0]),
+            "last_day": str(days[-1]), "mean_observed_m3s": float(obs[both].mean()),
+            "mean_modelled_m3s": float(sim[both].mean()), "nse": num(nash_sutcliffe(obs, sim)),
+            "kge": num(kling_gupta(obs, sim)), "volume_error": num(volume_error(obs, sim))}
+
+
+def discharge_sigma_m3s(observed_m3s, sigma_pct: float):
+    """Stated error of daily gauged discharges, m3 s-1, for a weighted fit.
+
+    sigma = sigma_pct / 100 x max(Q_obs, Q_floor), with the floor Q_floor a tenth of the
+    record's mean observed discharge, so that days of near-zero winter flow do not get a
+    near-zero error and dominate the fit (a rating curve is least certain at low flow;
+    common practice). ``[calibration] discharge_sigma_pct`` (default 15 %: daily gauged
+    discharges of mountain rivers are commonly uncertain by 5-20 %, common practice, from memory).
+    """
+    q = np.asarray(observed_m3s, dtype="float64")
+    floor = 0.1 * np.nanmean(q)
+    return sigma_pct / 100.0 * np.maximum(q, floor)
+
+
+# ----------------------------------------------------------------------------
 # efficiencies
 # ----------------------------------------------------------------------------
 

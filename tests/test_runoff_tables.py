@@ -210,3 +210,59 @@ def test_runoff_section_in_the_registry_and_config(tmp_path):
     with pytest.raises(InputError, match=r"\[runoff\] storage_days_snow must be a number >= 0"):
         parse_config({**base, "runoff": {"storage_days_snow": -1}}, tmp_path)
     assert math.isclose(firnline.config.SCHEMA["calibration"]["discharge_sigma_pct"][1], 15.0)
+
+
+def test_runoff_files_and_cf_time_axis(tmp_path):
+    """runoff.csv, runoff_monthly.csv and runoff.nc (CF 1.8: time coordinate with bounds,
+    timeSeries feature type, cf_role timeseries_id; NetCDF Climate and Forecast Metadata
+    Conventions 1.8, chapters 4.4, 7.1 and 9)."""
+    import xarray as xr
+
+    from firnline.outputs import staged
+    from firnline.runoff_products import write_run_runoff
+
+    v, dates = synthetic()
+    s = runoff_series(v, Daily, REGIONS, AREA, dates, K)
+    with staged(tmp_path) as st:
+        write_run_runoff(st, s, "10-01", {"title": "test"})
+    daily = pd.read_csv(tmp_path / "runoff.csv")
+    assert list(daily.columns) == DAILY_COLUMNS
+    monthly = pd.read_csv(tmp_path / "runoff_monthly.csv")
+    assert list(monthly.columns) == MONTHLY_COLUMNS
+    with xr.open_dataset(tmp_path / "runoff.nc", decode_times=False) as ds:
+        assert ds.attrs["featureType"] == "timeSeries" and ds.attrs["Conventions"] == "CF-1.8"
+        t = ds["time"]
+        assert t.attrs["standard_name"] == "time" and t.attrs["bounds"] == "time_bounds"
+        assert t.attrs["units"] == "days since 1970-01-01 00:00:00"
+        first = (np.datetime64("2016-10-01") - np.datetime64("1970-01-01")).astype(int)
+        assert float(t[0]) == first + 0.5 and list(ds["time_bounds"][0].values) == [first, first + 1]
+        assert ds["region_name"].attrs["cf_role"] == "timeseries_id"
+        assert [str(x) for x in ds["region_name"].values] == list(REGIONS)
+        assert np.allclose(ds["discharge_m3s"].values, s.discharge_m3s)
+    with xr.open_dataset(tmp_path / "runoff.nc") as ds:        # decodes as dates
+        assert str(ds.time.values[0])[:10] == "2016-10-01"
+
+
+def test_hydrograph_and_regime_figures(tmp_path):
+    from firnline.charts import png_bytes
+    from firnline.runoff_products import hydrograph_figure, regime_figure, scenario_regimes
+
+    v, dates = synthetic()
+    s = runoff_series(v, Daily, REGIONS, AREA, dates, K)
+    text = "date,discharge_m3s\n" + "".join(f"{d},{q * 1.1:.3f}\n" for d, q in zip(dates[::2], s.discharge_m3s[3, ::2]))
+    obs = check_discharge(parse_table(text, "q.csv"))
+    sc = gauge_scores(dates, s.discharge_m3s[3], obs)
+    png = png_bytes(hydrograph_figure(s, "10-01", obs, sc, site="Test valley"))
+    (tmp_path / "hydrograph.png").write_bytes(png)
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    v2 = v.copy()
+    v2[:, :, Daily.ICE_MELT] *= 1.5
+    v2[:, :, Daily.RELEASED_ICE] += 0.5 * v[:, :, Daily.ICE_MELT]
+    s2 = runoff_series(v2, Daily, REGIONS, AREA, dates, K)
+    reg = scenario_regimes([("reference", 0.0, 0.0, s), ("+2 K", 2.0, 0.0, s2)], "10-01")
+    from firnline.runoff import REGIME_COLUMNS
+    assert list(reg.columns) == REGIME_COLUMNS
+    jul = reg[(reg.region == "catchment") & (reg.month == 7)].set_index("scenario")
+    assert jul.loc["+2 K", "glacier_ice_share"] > jul.loc["reference", "glacier_ice_share"]
+    png = png_bytes(regime_figure(reg, "10-01", site="Test valley"))
+    (tmp_path / "regimes.png").write_bytes(png)

@@ -266,3 +266,27 @@ def test_hydrograph_and_regime_figures(tmp_path):
     assert jul.loc["+2 K", "glacier_ice_share"] > jul.loc["reference", "glacier_ice_share"]
     png = png_bytes(regime_figure(reg, "10-01", site="Test valley"))
     (tmp_path / "regimes.png").write_bytes(png)
+
+
+def test_catchment_polygon_weights_cells_by_their_exact_share(tmp_path):
+    """Two overlapping polygons in UTM 32N over a 10 x 10 grid of 100 m cells: their union
+    counts once; a polygon edge through the middle of a column gives that column 0.5
+    (exact area shares, as for glacier outlines)."""
+    import shapely
+    from rasterio.transform import from_origin
+
+    from conftest import write_outlines
+    from firnline.catchment import catchment_weight
+
+    tr = from_origin(500000.0, 5200000.0, 100.0, 100.0)
+    a = shapely.box(500000.0, 5199000.0, 500350.0, 5200000.0)           # columns 0-2 and half of 3
+    b = shapely.box(500100.0, 5199500.0, 500250.0, 5200000.0)           # inside a
+    path = write_outlines(tmp_path / "c.gpkg", ["x", "y"], [a, b], "GPKG", crs="EPSG:32632")
+    valid = np.ones((10, 10), bool)
+    cells = np.flatnonzero(valid.ravel())
+    w, warn = catchment_weight(path, None, "EPSG:32632", tr, (10, 10), valid, 1e4, cells)
+    grid = w.reshape(10, 10)
+    assert np.allclose(grid[:, :3], 1.0) and np.allclose(grid[:, 3], 0.5) and not grid[:, 4:].any()
+    assert not warn
+    with pytest.raises(InputError, match=r"Catchment file .*nothere.gpkg.*does not exist"):
+        catchment_weight(tmp_path / "nothere.gpkg", None, "EPSG:32632", tr, (10, 10), valid, 1e4, cells)

@@ -177,6 +177,7 @@ class RunFigures:
     views: list                    # maps.View in order
     periods: list                  # period keys (years, then "mean")
     ela_text: dict                 # period -> text about the ELA line
+    hydrograph: tuple[str, bytes] | None = None   # the catchment's hydrograph and regime
 
 
 def run_document(result, summary: pd.DataFrame, budget: pd.DataFrame, figures: RunFigures,
@@ -255,6 +256,19 @@ def run_document(result, summary: pd.DataFrame, budget: pd.DataFrame, figures: R
     page.subsection("All glaciers (area-weighted)")
     page.table(tot.drop(columns=["glacier", "ela_m", "ela_flag", "ablation_gradient_mwe_per_100m"],
                         errors="ignore"), digits=SUMMARY_DIGITS, headers=SUMMARY_HEADERS)
+    if figures.hydrograph is not None:
+        page.section("Runoff")
+        if result.gauge is not None:
+            sc = result.gauge
+            page.facts([("gauge record", str(sc["source"])),
+                        ("days compared", f"{sc['days']} ({sc['first_day']} to {sc['last_day']})"),
+                        ("Nash-Sutcliffe efficiency", "n/a" if sc["nse"] is None else f"{sc['nse']:.2f}"),
+                        ("Kling-Gupta efficiency", "n/a" if sc["kge"] is None else f"{sc['kge']:.2f}"),
+                        ("volume error", "n/a" if sc["volume_error"] is None else f"{100 * sc['volume_error']:+.1f} %")])
+        page.figure(figures.hydrograph[1], "daily discharge and monthly regime of the catchment",
+                    f"{figures.hydrograph[0]}: routed daily discharge with the routed glacier-ice melt shaded, "
+                    "and the mean monthly regime by reservoir; runoff.csv and runoff_monthly.csv hold the "
+                    "numbers. NSE: Nash & Sutcliffe (1970); KGE: Gupta et al. (2009).")
     # maps
     page.section("Maps")
     page.paragraph(f"Annual, winter and summer balance ({UNIT}) over a hillshade of the DEM, with the glacier "

@@ -72,6 +72,10 @@ class Setup:
     checksums: dict
     notes: tuple = ()
     timings: dict = field(default_factory=dict)
+    #: Share of each cell (``cells`` order) inside ``[runoff] catchment`` (all 1 by default).
+    catchment_weight: np.ndarray | None = None
+    #: The gauge record of ``[observations] discharge`` (firnline.runoff.ObservedDischarge), or None.
+    discharge: object = None
 
     def select(self, positions) -> "Setup":
         """The setup restricted to some cells, given as ascending positions in ``cells`` order.
@@ -90,9 +94,10 @@ class Setup:
         whole = all(inside[pos].all() for pos in self.glacier_pos)
         pos = tuple(np.searchsorted(sub, p) for p in self.glacier_pos) if whole else ()
         rad = self.radiation.subset(sub) if self.radiation is not None else None
+        cw = self.catchment_weight[sub] if self.catchment_weight is not None else None
         return dataclasses.replace(self, cells=self.cells[sub], z_m=self.z_m[sub],
                                    glacier_mask=self.glacier_mask[sub], radiation=rad,
-                                   glacier_pos=pos)
+                                   glacier_pos=pos, catchment_weight=cw)
 
 
 def check_config(setup: Setup, config: Config | None) -> Config:
@@ -113,7 +118,8 @@ def check_config(setup: Setup, config: Config | None) -> Config:
     if config is None or config is setup.config:
         return setup.config
     ref = setup.config
-    free = {p.key for p in parameters.PARAMETERS if p.kernel}   # may differ: the kernel takes them
+    free = {p.key for p in parameters.PARAMETERS if p.kernel or p.section == "runoff"}   # may differ: the kernel
+    # takes them, or (storage constants) the routing after it
     for f in dataclasses.fields(Config):
         if f.name in _RESULT_FREE:
             continue
@@ -164,6 +170,7 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
     forcing, sums = load_forcing(config, grid, cells)
     checksums.update(sums)
     notes += forcing.notes
+    weight, observed = runoff_inputs(config, grid, cells, checksums, notes)
     t1 = time.perf_counter()
     timings = {"read_inputs_s": t1 - t0}
     if need_radiation is None:
@@ -177,7 +184,30 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
                  forcing=forcing, cells=cells, z_m=grid.elevation.ravel()[cells],
                  glacier_mask=gl.total_fraction.ravel()[cells] > 0,
                  glacier_pos=tuple(np.searchsorted(cells, c) for c in gl.cells),
-                 radiation=table, checksums=checksums, notes=tuple(notes), timings=timings)
+                 radiation=table, checksums=checksums, notes=tuple(notes), timings=timings,
+                 catchment_weight=weight, discharge=observed)
+
+
+def runoff_inputs(config: Config, grid: Grid, cells: np.ndarray, checksums: dict, notes: list):
+    """The catchment's cell weights (``[runoff] catchment``, default all 1) and the gauge record
+    (``[observations] discharge``, checked here so a bad file stops the run before computing)."""
+    from .catchment import catchment_weight, whole_grid_weight
+    from .runoff import read_discharge
+
+    ro = config.runoff
+    if ro is not None and ro.catchment is not None:
+        weight, warn = catchment_weight(ro.catchment, ro.layer, grid.crs, grid.transform, grid.shape,
+                                        grid.valid, grid.cell_area_m2, cells)
+        notes += warn
+        checksums["catchment"] = file_checksum(ro.catchment)
+    else:
+        weight = whole_grid_weight(cells)
+    observed = None
+    obs = config.observations
+    if obs is not None and obs.discharge is not None:
+        observed = read_discharge(obs.discharge)
+        checksums["discharge"] = file_checksum(obs.discharge)
+    return weight, observed
 
 
 def input_checksums(config: Config, grid: Grid) -> dict:
@@ -367,6 +397,11 @@ class RunResult:
     profiles: pd.DataFrame
     gradients: pd.DataFrame
     timings: dict
+    #: Daily routed runoff of every region (firnline.runoff.RunoffSeries), once the kernel
+    #: gives the daily region volumes (``KernelResult.daily``); None before.
+    runoff: object = None
+    #: Scores against ``[observations] discharge`` (firnline.runoff.gauge_scores), or None.
+    gauge: dict | None = None
 
     def write(self, out_dir: str | Path | None = None) -> list[Path]:
         """Write every output file into ``out_dir`` (default: ``[output] dir``)."""
@@ -487,12 +522,44 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
     summary, profiles, gradients = tables(met, years)
     ds = fields_dataset(setup, f, years)
     t2 = time.perf_counter()
-    timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1)
+    series, gauge = runoff_of(setup, config, kres, 0)
+    t3 = time.perf_counter()
+    timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1, runoff_s=t3 - t2)
     return RunResult(setup=setup, config=config, warming_k=warming_k,
                      precip_change_pct=precip_change_pct, fields=ds, summary=summary,
-                     profiles=profiles, gradients=gradients, timings=timings)
+                     profiles=profiles, gradients=gradients, timings=timings, runoff=series, gauge=gauge)
+
+
+def region_names(setup: Setup) -> list[str]:
+    """The kernel's regions of the daily series: each glacier, ``ice_free``, ``catchment``."""
+    return [*map(str, setup.glaciers.names), "ice_free", "catchment"]
+
+
+def runoff_of(setup: Setup, config: Config, kres: KernelResult, scenario: int = 0):
+    """The routed daily runoff of one scenario and its scores against the gauge.
+
+    Returns ``(RunoffSeries, scores or None)``; ``(None, None)`` while the kernel gives no
+    daily region volumes (``KernelResult.daily``, issue 11's seam).
+    """
+    daily = getattr(kres, "daily", None)
+    if daily is None:
+        return None, None
+    from . import parameters
+    from .kernel import Daily
+    from .runoff import CATCHMENT, gauge_scores, runoff_series
+
+    series = runoff_series(daily[scenario], Daily, region_names(setup), kres.region_area_m2,
+                           setup.forcing.dates, parameters.storage_days(config))
+    gauge = None
+    if setup.discharge is not None:
+        gauge = gauge_scores(series.dates, series.discharge_m3s[series.region(CATCHMENT)], setup.discharge)
+    return series, gauge
 
 
 def parameters_used(config: Config) -> dict:
     """The model parameters of a config, as plain numbers (for run.json)."""
-    return {"downscaling": dataclasses.asdict(config.downscaling), "melt": dataclasses.asdict(config.melt)}
+    out = {"downscaling": dataclasses.asdict(config.downscaling), "melt": dataclasses.asdict(config.melt)}
+    if config.runoff is not None:
+        from . import parameters
+        out["runoff"] = {p.key: getattr(config.runoff, p.key) for p in parameters.in_section("runoff")}
+    return out

@@ -92,6 +92,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
         "notes": setup.notes,
+        **({"discharge_check": result.gauge} if result.gauge is not None else {}),
         "timings_s": result.timings,
         "files": files,
     }
@@ -193,6 +194,12 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
         outlines = gis.outline_geometries(result.config, grid, setup.glaciers)
         lines = ela_lines_all(result, summary)
         write_glaciers_gpkg(st.path("glaciers.gpkg"), result, summary, budget, outlines, lines)
+        if result.runoff is not None:
+            from .runoff_products import write_run_runoff
+            write_run_runoff(st, result.runoff, result.config.balance.year_start,
+                             {"title": f"firnline daily runoff, {result.config.site.name}",
+                              **{k: tags[k] for k in ("dem_sha256", "config_sha256", "warming_k",
+                                                       "precip_change_pct")}})
         if report:
             t0 = time.perf_counter()
             from .documents import run_document
@@ -309,8 +316,13 @@ def run_figures(result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame, 
             label = f"mean of the balance years {years[0]}-{years[-1]}" if p == "mean" else f"balance year {p}"
             maps[(view.key, p)] = (f"map_{view.key}_{p}.png", drawer.draw(label, fields, ela))
         drawer.close()
+    hydrograph = None
+    if result.runoff is not None:
+        from .runoff_products import hydrograph_figure
+        fig = hydrograph_figure(result.runoff, cfg.balance.year_start, setup.discharge, result.gauge, site)
+        hydrograph = ("chart_hydrograph.png", png_bytes(fig))
     return RunFigures(overview=overview, glacier_charts=charts, maps=maps, views=views, periods=periods,
-                      ela_text=ela_text)
+                      ela_text=ela_text, hydrograph=hydrograph)
 
 
 def figures_files(figures) -> list[tuple[str, bytes]]:
@@ -318,6 +330,8 @@ def figures_files(figures) -> list[tuple[str, bytes]]:
     if figures.overview is not None:
         out.append(figures.overview)
     out += list(figures.glacier_charts.values())
+    if figures.hydrograph is not None:
+        out.append(figures.hydrograph)
     out += [figures.maps[k] for k in figures.maps]
     return out
 

@@ -17,6 +17,14 @@ def add_parser(sub) -> None:
                    help="skip report.html and its maps and charts (map_*.png, chart_*.png)")
 
 
+def gauge_line(g: dict) -> str:
+    """One line of the scores against the gauge (NSE, KGE, volume error)."""
+    def f(x, scale=1.0):
+        return "n/a" if x is None else f"{scale * x:.2f}"
+    return (f"discharge against {g['source']} over {g['days']} days ({g['first_day']} .. {g['last_day']}): "
+            f"NSE {f(g['nse'])}, KGE {f(g['kge'])}, volume error {f(g['volume_error'], 100.0)} %")
+
+
 def main(args) -> int:
     from ..model import run
     from ..products import summary_table, write_run
@@ -31,5 +39,7 @@ def main(args) -> int:
         say(args, *result.setup.notes)
         files = write_run(result, out, report=not args.no_report)
     print(summary_table(result.summary))
+    if result.gauge is not None:
+        say(args, gauge_line(result.gauge))
     wrote(args, files, out)
     return 0

@@ -184,10 +184,12 @@ def test_gauge_scores_over_the_overlapping_days():
         gauge_scores(dates, sim, late)
 
 
-def test_discharge_sigma_is_relative_with_a_low_flow_floor():
-    q = np.array([0.0, 1.0, 10.0, np.nan, 29.0])          # mean of the values: 10
-    s = discharge_sigma_m3s(q, 20.0)
-    assert np.allclose(s[[0, 1, 2, 4]], [0.2, 0.2, 2.0, 5.8])
+def test_discharge_sigma_is_relative_to_the_flow_level_with_a_low_flow_floor():
+    q = np.array([0.0, 1.0, 10.0, np.nan, 29.0])          # mean of the values: 10, floor 1
+    s = discharge_sigma_m3s(q, 20.0, window_days=1)        # level = the day's own value
+    assert np.allclose(s[[0, 1, 2, 4]], [0.2, 0.2, 2.0, 5.8]) and np.isnan(s[3])
+    s = discharge_sigma_m3s(q, 20.0, window_days=3)        # centred 3-day means: 0.5, 11/3, 5.5, 19.5, 29
+    assert np.allclose(s[[0, 1, 2, 4]], [0.2, 0.2 * 11 / 3, 1.1, 5.8])
 
 
 def test_runoff_section_in_the_registry_and_config(tmp_path):

@@ -512,9 +512,9 @@ def load_observations(config, setup) -> tuple[PointBalances | None, GlacierBalan
         No ``[observations]`` section or no file named in it, or any problem of the rows.
     """
     obs = config.observations
-    if obs is None or (obs.point_balances is None and obs.glacier_balances is None):
+    if obs is None or (obs.point_balances is None and obs.glacier_balances is None and obs.discharge is None):
         raise InputError("the config has no observations; add an [observations] section naming "
-                         "point_balances and/or glacier_balances (see configs/demo_calibrate.toml).")
+                         "point_balances, glacier_balances and/or discharge (see configs/demo_calibrate.toml).")
     grid = setup.grid
     record = setup.forcing.dates
     points = glaciers = None

@@ -1,10 +1,12 @@
-"""Calibration: fit model parameters to stakes, snow probing and glacier-wide balances.
+"""Calibration: fit model parameters to stakes, snow probing, glacier-wide balances and discharge.
 
 A small package, one job a module:
 
 * :mod:`~firnline.calibrate.spec`: what is fitted; every check of ``[calibration]``;
 * :mod:`~firnline.calibrate.operator`: the observation operator (modelled values over
   the exact observation periods);
+* :mod:`~firnline.calibrate.discharge`: daily gauged discharge as observations (stated
+  errors, the routed catchment discharge on the gauged days);
 * :mod:`~firnline.calibrate.fit`: the weighted least-squares fit, its covariance and
   warnings (:func:`calibrate`);
 * :mod:`~firnline.calibrate.outputs`: calibrated.toml, calibration.json, the residuals

@@ -41,9 +41,10 @@ from scipy.optimize import least_squares
 from .. import provenance
 from ..config import Config
 from ..errors import InputError
-from ..model import Setup, prepare
+from ..model import Setup, prepare, simulate
 from ..observations import PointBalances, load_observations
 from ..progress import Progress, stage
+from .discharge import check_routing_fit, discharge_target, modelled_discharge, routing_keys
 from .operator import build_operator, first_days, modelled_values, observation_table
 from .spec import FitSpec, fit_spec
 
@@ -121,6 +122,7 @@ class CalibrationResult:
     warnings: list
     notes: list
     elapsed_s: float
+    discharge: dict | None = None
 
     def to_json(self) -> dict:
         """The content of calibration.json."""
@@ -158,6 +160,7 @@ class CalibrationResult:
             "point_cells": "each point uses the DEM cell that contains it, at that cell's elevation "
                            "(no elevation correction)",
             "observations": recs,
+            **({"discharge": self.discharge} if self.discharge is not None else {}),
             "warnings": self.warnings,
             "notes": self.notes,
             "elapsed_s": self.elapsed_s,
@@ -215,23 +218,50 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
     if setup is None:
         setup = prepare(config, progress)
     points, glaciers = load_observations(config, setup)
-    table = observation_table(setup, points, glaciers)
-    op = build_operator(setup, points, glaciers)
-    short = first_days(setup, op.n_days)
+    target = discharge_target(setup, config.calibration.discharge_sigma_pct)
+    check_routing_fit(spec.parameters, target)
+    balances = (points is not None and len(points)) or (glaciers is not None and len(glaciers))
+    table = observation_table(setup, points, glaciers) if balances else pd.DataFrame(columns=RESIDUAL_COLUMNS[:13])
+    op = build_operator(setup, points, glaciers) if balances else None
+    n_days = max(op.n_days if op is not None else 0, target.n_days if target is not None else 0)
+    short = first_days(setup, n_days)
     observed = table["observed_mwe"].to_numpy(dtype="float64")
     sigma = table["sigma_mwe"].to_numpy(dtype="float64")
+    n_bal = len(observed)
+    if target is not None:
+        observed = np.concatenate([observed, target.observed_m3s])
+        sigma = np.concatenate([sigma, target.sigma_m3s])
     n_obs, n_par = len(observed), len(spec.parameters)
     max_nfev = MAX_NFEV_PER_PARAMETER * n_par
     bar = stage(progress, "model runs", max_nfev * (n_par + 1))
     cache: dict[bytes, np.ndarray] = {}
     count = {"n": 0}
+    last_kernel: dict = {}
+    routing = set(routing_keys(list(spec.parameters) + list(spec.ratios)))
+
+    def kernel_run(trial, values):
+        """The kernel over all cells for a trial; reused when only storage constants changed."""
+        key = tuple(sorted((k, v) for k, v in values.items() if k not in routing))
+        if last_kernel.get("key") != key:
+            snaps = op.snapshot_days if op is not None else None
+            last_kernel.update(key=key, kres=simulate(short, trial, snapshot_days=snaps))
+            count["n"] += 1
+        return last_kernel["kres"]
+
+    def evaluate(values) -> np.ndarray:
+        trial = config.with_values(**values)
+        if target is None:
+            count["n"] += 1
+            return modelled_values(short, trial, op)
+        kres = kernel_run(trial, values)
+        parts = [op.apply(kres.snapshots[:, 0, op.positions])] if op is not None else []
+        parts.append(modelled_discharge(short, trial, kres, target))
+        return np.concatenate(parts)
 
     def model_at(u: np.ndarray) -> np.ndarray:
         key = np.asarray(u, dtype="float64").tobytes()
         if key not in cache:
-            trial = config.with_values(**spec.values(spec.to_values(u)))
-            cache[key] = modelled_values(short, trial, op)
-            count["n"] += 1
+            cache[key] = evaluate(spec.values(spec.to_values(u)))
             if bar:
                 bar(count["n"])
         return cache[key]
@@ -258,22 +288,25 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
         corr = cov / np.outer(se, se)
 
     warnings = _warnings(spec, x, res, corr, undetermined, np.atleast_2d(res.jac), n_obs, dof)
+    flow = target.summary(initial_model[n_bal:], modelled[n_bal:]) if target is not None else None
     off_ice = _points_off_glacier(setup, points)
     warnings += off_ice
     values = spec.values(x)
     fitted = config.with_values(**values)
-    records = table.assign(modelled_initial_mwe=initial_model, modelled_mwe=modelled,
-                           residual_mwe=resid, normalised_residual=r)[RESIDUAL_COLUMNS]
-    rmse0 = float(np.sqrt(np.mean((initial_model - observed) ** 2)))
+    records = table.assign(modelled_initial_mwe=initial_model[:n_bal], modelled_mwe=modelled[:n_bal],
+                           residual_mwe=resid[:n_bal], normalised_residual=r[:n_bal])[RESIDUAL_COLUMNS]
+    bal = resid[:n_bal]
+    rmse0 = float(np.sqrt(np.mean((initial_model[:n_bal] - observed[:n_bal]) ** 2))) if n_bal else math.nan
     return CalibrationResult(
         config=config, fitted=fitted, spec=spec,
         value={p: float(v) for p, v in zip(spec.parameters, x)},
         std_error={p: float(s) for p, s in zip(spec.parameters, se)},
         correlation=corr, tied={k: values[k] for k in spec.ratios}, records=records,
-        rmse_mwe=float(np.sqrt(np.mean(resid ** 2))), bias_mwe=float(np.mean(resid)),
+        rmse_mwe=float(np.sqrt(np.mean(bal ** 2))) if n_bal else math.nan,
+        bias_mwe=float(np.mean(bal)) if n_bal else math.nan,
         rmse_initial_mwe=rmse0, chi_square_reduced=chi2_red, n_obs=n_obs,
         n_evaluations=count["n"], dof=dof, converged=bool(res.status > 0), message=str(res.message),
-        warnings=warnings, notes=list(setup.notes), elapsed_s=time.perf_counter() - t0)
+        warnings=warnings, notes=list(setup.notes), elapsed_s=time.perf_counter() - t0, discharge=flow)
 
 
 def _check_finite(table, modelled: np.ndarray, observed: np.ndarray, sigma: np.ndarray) -> None:

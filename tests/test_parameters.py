@@ -29,7 +29,7 @@ def test_each_parameter_is_declared_completely():
     keys = [p.key for p in parameters.PARAMETERS]
     assert len(keys) == len(set(keys))
     for p in parameters.PARAMETERS:
-        assert p.section in ("melt", "downscaling", "snow") and p.unit and p.source and p.description
+        assert p.section in ("melt", "downscaling", "snow", "runoff") and p.unit and p.source and p.description
         assert set(p.methods) <= set(parameters.METHODS) and p.methods
         assert p.kind in ("number", "monthly", "pair")
         assert (p.bounds is None) == bool(p.not_calibratable)
@@ -53,7 +53,8 @@ def test_calibration_defaults_come_from_the_registry():
     assert DEFAULT_BOUNDS == {p.key: p.bounds for p in parameters.PARAMETERS if p.bounds}
     assert calibratable_keys("degree-day") == sorted(
         ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k", "threshold_c", "precip_gradient_per_m",
-         "precip_factor", "lapse_rate_k_per_m"])
+         "precip_factor", "lapse_rate_k_per_m", "storage_days_snow", "storage_days_firn", "storage_days_ice",
+         "storage_days_ground"])
     assert "transmissivity" not in calibratable_keys("radiation")
     assert "radiation_factor_ice" in calibratable_keys("radiation")
 

@@ -87,7 +87,8 @@ def _with_daily(monkeypatch):
         area = setup.grid.cell_area_m2 * setup.cells.size
         z = float(setup.z_m.mean())
         t = f.temperature_c + cfg.downscaling.lapse_rate_k_per_m[0] * (z - cfg.climate.station_elevation_m)
-        melt = cfg.melt.ddf_ice_mm_per_day_k * np.maximum(t, 0.0) * 1e-3 * area
+        warming = np.asarray(a[0] if a else k.get("warming_k", (0.0,)), dtype=float)
+        melt = cfg.melt.ddf_ice_mm_per_day_k * np.maximum(t[None, :] + warming[:, None], 0.0) * 1e-3 * area
         daily = np.zeros((kres.sums.shape[2], f.n_days, n_g + 2, len(Daily)))
         for r in (0, n_g + 1):
             daily[:, :, r, Daily.ICE_MELT] = melt
@@ -180,3 +181,29 @@ def test_storage_constants_need_a_gauge(tmp_path):
     cfg = write_config(tmp_path / "c.toml", sec)
     r = run_cli("calibrate", cfg, "--out", tmp_path / "out")
     assert r.returncode == 2 and "storage_days_ice" in r.stderr and "[observations] discharge" in r.stderr
+
+
+def test_scenarios_write_the_runoff_regimes(tmp_path, monkeypatch):
+    import firnline.model as model
+    import firnline.scenarios as scenarios
+    from firnline.cli import main
+    from firnline.runoff import REGIME_COLUMNS
+
+    _with_daily(monkeypatch)
+    monkeypatch.setattr(scenarios, "simulate", model.simulate)
+    monkeypatch.setattr(model, "kernel_gives_daily", lambda: True)
+    write_dem(tmp_path / "dem.tif", ramp())
+    dates = pd.date_range("2016-10-01", "2018-09-30", freq="D")
+    t = 8.0 - 10.0 * np.cos(2 * np.pi * (dates.day_of_year.to_numpy() - 15) / 365.0)
+    write_station(tmp_path / "station.csv", "2016-10-01", "2018-09-30", np.round(t, 1), 2.0)
+    cfg = write_config(tmp_path / "c.toml", base_sections(station_elevation=2500.0))
+    out = tmp_path / "sweep"
+    assert main(["scenarios", str(cfg), "--warming", "2", "--out", str(out), "--quiet"]) == 0
+    reg = pd.read_csv(out / "scenario_runoff_monthly.csv")
+    assert list(reg.columns) == REGIME_COLUMNS
+    cat = reg[reg.region == "catchment"]
+    assert set(cat.warming_k) == {0.0, 2.0} and len(cat) == 24
+    jul = cat[cat.month == 7].set_index("warming_k")
+    assert jul.loc[2.0, "ice_melt_mm"] > jul.loc[0.0, "ice_melt_mm"]       # the stand-in melts more when warmer
+    assert (out / "runoff_regimes.png").exists()
+    assert "runoff_regimes.png" in (out / "scenarios_report.html").read_text()

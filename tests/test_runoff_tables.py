@@ -247,7 +247,8 @@ def test_runoff_files_and_cf_time_axis(tmp_path):
 
 def test_hydrograph_and_regime_figures(tmp_path):
     from firnline.charts import png_bytes
-    from firnline.runoff_products import hydrograph_figure, regime_figure, scenario_regimes
+    from firnline.runoff import scenario_regimes
+    from firnline.runoff_products import hydrograph_figure, regime_figure
 
     v, dates = synthetic()
     s = runoff_series(v, Daily, REGIONS, AREA, dates, K)

@@ -535,6 +535,11 @@ def region_names(setup: Setup) -> list[str]:
     return [*map(str, setup.glaciers.names), "ice_free", "catchment"]
 
 
+def kernel_gives_daily() -> bool:
+    """Whether the kernel returns the daily region volumes (``KernelResult.daily``, issue 11)."""
+    return "daily" in {f.name for f in dataclasses.fields(KernelResult)}
+
+
 def runoff_of(setup: Setup, config: Config, kres: KernelResult, scenario: int = 0):
     """The routed daily runoff of one scenario and its scores against the gauge.
 

@@ -419,6 +419,25 @@ def regime(monthly: "pd.DataFrame") -> "pd.DataFrame":
     return out
 
 
+def scenario_regimes(runs: list[tuple[str, float, float, RunoffSeries]], year_start: str) -> "pd.DataFrame":
+    """scenario_runoff_monthly.csv: the mean monthly regime of each scenario and region.
+
+    Parameters
+    ----------
+    runs : list of (scenario name, warming_k, precip_change_pct, RunoffSeries)
+    """
+    import pandas as pd
+
+    frames = []
+    for name, warming, precip, series in runs:
+        r = regime(monthly_table(series, year_start))
+        r.insert(0, "precip_change_pct", float(precip))
+        r.insert(0, "warming_k", float(warming))
+        r.insert(0, "scenario", str(name))
+        frames.append(r)
+    return pd.concat(frames, ignore_index=True)[REGIME_COLUMNS]
+
+
 def gauge_scores(dates, simulated_m3s, observed: "ObservedDischarge") -> dict:
     """Scores of the modelled discharge against the gauge over the days both have.
 

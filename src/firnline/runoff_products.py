@@ -26,8 +26,8 @@ from . import __version__
 from .charts import OKABE_ITO, _style
 from .outputs import write_csv
 from .provenance import CAUTION
-from .runoff import (CATCHMENT, MM_COLUMNS, RESERVOIRS, REGIME_COLUMNS, ObservedDischarge, RunoffSeries,
-                     daily_table, monthly_table, regime)
+from .runoff import (CATCHMENT, MM_COLUMNS, RESERVOIRS, ObservedDischarge, RunoffSeries, daily_table,
+                     monthly_table)
 
 MONTH_LETTERS = "JFMAMJJASOND"
 #: Colours of the four reservoirs (snow, firn, ice, ground), Okabe-Ito.
@@ -93,23 +93,6 @@ def write_run_runoff(staging, series: RunoffSeries, year_start: str, attrs: dict
     write_csv(staging.path("runoff_monthly.csv"), monthly)
     write_runoff_netcdf(staging.path("runoff.nc"), series, attrs)
     return {"monthly": monthly}
-
-
-def scenario_regimes(runs: list[tuple[str, float, float, RunoffSeries]], year_start: str) -> pd.DataFrame:
-    """scenario_runoff_monthly.csv: the mean monthly regime of each scenario and region.
-
-    Parameters
-    ----------
-    runs : list of (scenario name, warming_k, precip_change_pct, RunoffSeries)
-    """
-    frames = []
-    for name, warming, precip, series in runs:
-        r = regime(monthly_table(series, year_start))
-        r.insert(0, "precip_change_pct", float(precip))
-        r.insert(0, "warming_k", float(warming))
-        r.insert(0, "scenario", str(name))
-        frames.append(r)
-    return pd.concat(frames, ignore_index=True)[REGIME_COLUMNS]
 
 
 # ----------------------------------------------------------------------------

@@ -58,6 +58,10 @@ def write_sweep(result: Sweep, out_dir: Path, report: bool = True) -> list[Path]
                                                      site)),
                    ("balance_vs_warming.png", balance_figure(result.table, result.glaciers, years, site)),
                    ("balance_profiles.png", profile_figure(result.profiles, result.glaciers, years, site))]
+        if result.runoff_regimes is not None:
+            from .runoff_products import regime_figure
+            write_csv(st.path("scenario_runoff_monthly.csv"), result.runoff_regimes)
+            figures.append(("runoff_regimes.png", regime_figure(result.runoff_regimes, cfg.balance.year_start, site)))
         pngs = []
         for name, fig in figures:
             png = _png(fig)
@@ -77,6 +81,8 @@ FIGURE_CAPTIONS = {
     "ela_vs_warming.png": "mean ELA against warming, one panel per glacier, one line per precipitation change.",
     "balance_vs_warming.png": "mean annual balance against warming, one panel per precipitation change.",
     "balance_profiles.png": "balance profiles of the record-mean balance, one line per scenario.",
+    "runoff_regimes.png": "mean monthly discharge of the catchment and its glacier-ice share, one line per "
+                          "scenario (scenario_runoff_monthly.csv).",
 }
 
 

@@ -245,6 +245,9 @@ class Sweep:
     budgets: pd.DataFrame | None = None
     offsets: pd.DataFrame | None = None
     timings: dict = field(default_factory=dict)
+    #: scenario_runoff_monthly.csv (firnline.runoff.REGIME_COLUMNS), once the kernel gives daily
+    #: region volumes; None before.
+    runoff_regimes: pd.DataFrame | None = None
 
     def mean_balance_map(self, scenario: int) -> np.ndarray:
         """(ny, nx) float32 record-mean annual balance of one scenario, m w.e., NaN off glaciers."""
@@ -292,6 +295,7 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
     cfg = check_config(setup, config)
     defs = scenario_definitions(warming_k, precip_change_pct, changes)
     scen = [(s.mean_warming_k, s.mean_precip_change_pct) for s in defs]
+    full = setup
     setup = glacier_view(setup)
     t0 = time.perf_counter()
     kres = run_scenarios(setup, cfg, defs, progress)
@@ -319,6 +323,7 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
                              zip(prof.band_bottom_m, prof.band_top_m, prof.area_m2, prof.balance_mwe)]
             ela, flag = ela_from_profile(prof)
             profile_ela.append([name, d.name, ela, flag])
+    regimes = runoff_regimes(full, cfg, defs, kres if setup is full else None)
     del kres
     reference = [d.name for d in defs].index(REFERENCE)
     rank = {name: i for i, name in enumerate(gl.names)}   # glaciers in outline order, then scenarios
@@ -342,7 +347,27 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
                  profiles=pd.DataFrame(profile_rows, columns=PROFILE_COLUMNS),
                  flags=flag_counts(years_df), glaciers=glaciers, mean_balance=mean_balance,
                  definitions=list(defs), budgets=scenario_budgets(years_df),
-                 offsets=precip_offsets(table), timings=dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1))
+                 offsets=precip_offsets(table), timings=dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1),
+                 runoff_regimes=regimes)
+
+
+def runoff_regimes(full: Setup, cfg: Config, defs: Sequence, kres=None) -> pd.DataFrame | None:
+    """The mean monthly runoff regime of every scenario (scenario_runoff_monthly.csv).
+
+    The catchment's runoff needs every cell of the catchment, not only the glacier cells of
+    the balance products: the kernel runs on the whole setup (``kres`` reused when the sweep's
+    run already covered it). None while the kernel gives no daily region volumes.
+    """
+    from .model import kernel_gives_daily, runoff_of
+    from .runoff import scenario_regimes
+
+    if not kernel_gives_daily():
+        return None
+    if kres is None:
+        kres = run_scenarios(full, cfg, defs)
+    runs = [(d.name, d.mean_warming_k, d.mean_precip_change_pct, runoff_of(full, cfg, kres, i)[0])
+            for i, d in enumerate(defs)]
+    return scenario_regimes(runs, cfg.balance.year_start)
 
 
 def glacier_view(setup: Setup) -> Setup:

@@ -228,9 +228,10 @@ def _check_elevations(elevation: np.ndarray, name: str) -> None:
         bad = (elevation < lo) | (elevation > hi)
     if bad.any():
         r, c = np.unravel_index(int(np.argmax(bad)), bad.shape)
-        raise InputError(f"{name}: {int(bad.sum())} cells have elevations outside {lo:g}..{hi:g} m (the first, row "
-                         f"{r} column {c}, is {elevation[r, c]:g}); set the DEM's nodata value to its void code "
-                         "or convert the elevations to metres.")
+        n = int(bad.sum())
+        raise InputError(f"{name}: {n} cell{'s have' if n > 1 else ' has'} elevations outside {lo:g}..{hi:g} m "
+                         f"(the first, row {r} column {c}, is {elevation[r, c]:g}); set the DEM's nodata value "
+                         "to its void code or convert the elevations to metres.")
 
 
 def _to_utm(elevation, transform, crs):

@@ -360,6 +360,10 @@ class OutputFolder:
                 pass
             existing = existing.parent
         limit = _name_max(existing)
+        text = str(p)
+        if any(ord(ch) < 32 or ord(ch) == 127 for ch in text):
+            raise InputError(f"The output folder {text!r} has a control character (such as a line break) in its "
+                             "name, which GIS programs and GDAL's drivers cannot handle; choose a plain name.")
         for part in parts:
             if len(os.fsencode(part)) > limit:
                 raise InputError(f"The output folder {self.given}: the name \"{part[:40]}...\" is "

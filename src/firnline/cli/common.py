@@ -6,6 +6,7 @@ import sys
 from pathlib import Path
 
 from ..config import load_config
+from ..errors import InputError
 
 #: How the command line names the scenario lists (for the messages of firnline.scenarios).
 SCENARIO_OPTIONS = ("--warming", "--precip-change")
@@ -63,6 +64,9 @@ def wrote(args, files, out, then: str = "") -> None:
 
 
 def config_and_out(args):
+    if getattr(args, "out", None) is not None and not str(args.out).strip():
+        raise InputError("--out is empty; give the output folder's path, or leave --out out to use "
+                         "[output] dir of the config.")
     cfg = load_config(args.config)
     out = Path(args.out) if getattr(args, "out", None) else cfg.output.dir
     return cfg, out
@@ -83,16 +87,18 @@ def input_paths(cfg) -> list[Path]:
     return paths
 
 
-def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1):
+def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1, extra_inputs=()):
     """Check the inputs, the memory and the output folder, then lock it; all before any computation.
 
-    Returns the claimed :class:`firnline.outdir.OutputFolder` (a context manager).
+    ``extra_inputs`` are input files named on the command line rather than in the config
+    (they too must be regular files and may not lie in the output folder). Returns the
+    claimed :class:`firnline.outdir.OutputFolder` (a context manager).
     """
     from .. import budget
     from ..files import regular_file
     from ..outdir import claim
 
-    inputs = input_paths(cfg)
+    inputs = input_paths(cfg) + [Path(p) for p in extra_inputs]
     for p in inputs:
         if p.exists():            # a missing file is named by its reader, with its key
             regular_file(p, "input file")

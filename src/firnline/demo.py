@@ -1033,7 +1033,7 @@ def make_station_network(seed: int = DEFAULT_SEED, base: pd.DataFrame | None = N
     lapse = np.asarray(_TRUE_LAPSE_K_PER_M)[month - 1]
 
     def xy(r, c):
-        x, y = transform * (c + 0.5, r + 0.5)
+        x, y = transform @ (c + 0.5, r + 0.5)
         return round(float(x), 1), round(float(y), 1)
 
     r0, c0 = np.unravel_index(np.nanargmin(np.where(np.isfinite(elevation), elevation, np.inf)), elevation.shape)

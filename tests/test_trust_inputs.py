@@ -379,8 +379,9 @@ def test_demo_refuses_files_of_its_names_that_are_not_its_own(builders, tmp_path
     assert not any(p.name.startswith(".firnline-demo-staging") for p in folder.iterdir())
 
 
-def test_empty_out_and_out_with_a_line_break_are_refused(tmp_path, capsys):
-    cfg = case(tmp_path)
-    refused(["run", str(cfg), "--out", ""], capsys, "--out is empty")
-    refused(["run", str(cfg), "--out", str(tmp_path / "a\nb")], capsys, "control character")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["case.toml", "dem.tif", "station.csv"]
+def test_empty_out_and_out_with_a_line_break_are_refused(builders, tmp_path, capsys):
+    cfg = builders.folder_case(tmp_path)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    refused(builders, ["run", str(cfg), "--out", ""], capsys, "--out is empty")
+    refused(builders, ["run", str(cfg), "--out", str(tmp_path / "a\nb")], capsys, "control character")
+    assert sorted(p.name for p in tmp_path.iterdir()) == before

@@ -8,7 +8,6 @@ import dataclasses
 import json
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -37,7 +36,8 @@ def case(tmp_path, discharge_text=None, runoff=None):
 @pytest.mark.parametrize("text,culprit", [
     ("date,discharge_m3s\n2017-01-01,1.0\n2017-01-32,2.0\n", "discharge.csv, line 3: date '2017-01-32'"),
     ("date,discharge_m3s\n2017-01-01,1.0\n2017-01-02,-2.0\n", "discharge.csv, line 3: discharge_m3s -2"),
-    ("date,discharge_m3s\n2017-01-01,1.0\n2017-01-01,2.0\n", "discharge.csv, line 3: the date 2017-01-01 appears twice"),
+    ("date,discharge_m3s\n2017-01-01,1.0\n2017-01-01,2.0\n",
+     "discharge.csv, line 3: the date 2017-01-01 appears twice"),
     ("date,discharge_m3s\n2017-01-01,1.0\n2017-01-02,abc\n", "discharge.csv, line 3: discharge_m3s 'abc'"),
     ("day,flow\n2017-01-01,1.0\n", "discharge.csv"),
 ])
@@ -169,7 +169,6 @@ def test_calibration_to_discharge_recovers_the_true_ice_factor_and_storage_const
 
 
 def test_storage_constants_need_a_gauge(tmp_path):
-    from firnline.cli import main
 
     write_dem(tmp_path / "dem.tif", ramp())
     write_station(tmp_path / "station.csv", "2016-10-01", "2018-09-30", 5.0, 5.0)

@@ -18,9 +18,20 @@ import pytest
 from firnline import parameters
 from firnline.errors import InputError
 from firnline.observations import parse_table
-from firnline.runoff import (DAILY_COLUMNS, DEFAULT_STORAGE_DAYS, MONTHLY_COLUMNS, RESERVOIRS,
-                             check_discharge, daily_table, discharge_sigma_m3s, gauge_scores,
-                             glacier_ice_share, monthly_table, regime, runoff_series)
+from firnline.runoff import (
+    DAILY_COLUMNS,
+    DEFAULT_STORAGE_DAYS,
+    MONTHLY_COLUMNS,
+    RESERVOIRS,
+    check_discharge,
+    daily_table,
+    discharge_sigma_m3s,
+    gauge_scores,
+    glacier_ice_share,
+    monthly_table,
+    regime,
+    runoff_series,
+)
 
 
 class Daily(enum.IntEnum):

@@ -264,7 +264,8 @@ def run_document(result, summary: pd.DataFrame, budget: pd.DataFrame, figures: R
                         ("days compared", f"{sc['days']} ({sc['first_day']} to {sc['last_day']})"),
                         ("Nash-Sutcliffe efficiency", "n/a" if sc["nse"] is None else f"{sc['nse']:.2f}"),
                         ("Kling-Gupta efficiency", "n/a" if sc["kge"] is None else f"{sc['kge']:.2f}"),
-                        ("volume error", "n/a" if sc["volume_error"] is None else f"{100 * sc['volume_error']:+.1f} %")])
+                        ("volume error", "n/a" if sc["volume_error"] is None
+                         else f"{100 * sc['volume_error']:+.1f} %")])
         page.figure(figures.hydrograph[1], "daily discharge and monthly regime of the catchment",
                     f"{figures.hydrograph[0]}: routed daily discharge with the routed glacier-ice melt shaded, "
                     "and the mean monthly regime by reservoir; runoff.csv and runoff_monthly.csv hold the "

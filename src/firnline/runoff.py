@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Sequence
 
 import numpy as np
+import pandas as pd
 
 from .errors import InputError
 

@@ -26,8 +26,7 @@ from . import __version__
 from .charts import OKABE_ITO, _style
 from .outputs import write_csv
 from .provenance import CAUTION
-from .runoff import (CATCHMENT, MM_COLUMNS, RESERVOIRS, ObservedDischarge, RunoffSeries, daily_table,
-                     monthly_table)
+from .runoff import CATCHMENT, MM_COLUMNS, RESERVOIRS, ObservedDischarge, RunoffSeries, daily_table, monthly_table
 
 MONTH_LETTERS = "JFMAMJJASOND"
 #: Colours of the four reservoirs (snow, firn, ice, ground), Okabe-Ito.
@@ -123,7 +122,8 @@ def hydrograph_figure(series: RunoffSeries, year_start: str, observed: ObservedD
         def f(x):
             return "n/a" if x is None else f"{x:.2f}"
         title += (f" (against the gauge over {scores['days']} days: NSE {f(scores['nse'])}, "
-                  f"KGE {f(scores['kge'])}, volume error {f(None if scores['volume_error'] is None else 100 * scores['volume_error'])} %)")
+                  f"KGE {f(scores['kge'])}, volume error "
+                  f"{f(None if scores['volume_error'] is None else 100 * scores['volume_error'])} %)")
     _style(ax, title)
     ax.legend(fontsize=7, frameon=False, loc="upper left", ncols=3)
     # the regime: mean monthly routed water per reservoir, balance-year order

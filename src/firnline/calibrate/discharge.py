@@ -4,7 +4,8 @@ Each day with a gauged value inside the modelled record is one observation: the 
 daily mean discharge of the ``catchment`` region (:func:`firnline.model.runoff_of`)
 against the gauge, weighted by its stated error (:func:`firnline.runoff.discharge_sigma_m3s`:
 ``[calibration] discharge_sigma_pct`` of the flow level, the 31-day running mean of the
-gauged values, with a low-flow floor of a tenth of the mean gauged discharge). The normalised residuals ``(Q_mod - Q_obs) / sigma`` join those
+gauged values, with a low-flow floor of a tenth of the mean gauged discharge). The normalised
+residuals ``(Q_mod - Q_obs) / sigma`` join those
 of the stakes and glacier-wide balances in one weighted least-squares fit, so each kind
 counts by its stated uncertainty.
 

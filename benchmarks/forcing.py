@@ -29,6 +29,8 @@ import rasterio
 import xarray as xr
 from rasterio.transform import from_origin
 
+from timing import best_of  # noqa: E402  (benchmarks/ is on sys.path when run)
+
 X0, Y0, CELL = 600000.0, 5200000.0, 25.0
 
 
@@ -91,13 +93,6 @@ def make_case(folder: Path, size: int) -> dict[str, Path]:
     return out
 
 
-def best_of(fn, repeat: int) -> float:
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
 
 
 def main() -> None:

@@ -30,6 +30,7 @@ import numpy as np
 
 from firnline import snowslide
 from firnline.terrain import slope_aspect
+from timing import best_of as best  # noqa: E402  (benchmarks/ is on sys.path when run)
 
 CELL_M = 25.0
 
@@ -47,13 +48,6 @@ def rough_dem(n: int, cell_m: float = CELL_M, seed: int = 7):
     return z, np.ones((n, n), dtype=bool)
 
 
-def best(fn, repeat: int) -> float:
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
 
 
 def numpy_add_seconds(n: int, repeat: int = 100) -> float:

@@ -24,6 +24,8 @@ from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 
 #: ``[snow] redistribution``: gravitational snow redistribution (firnline.snowslide) or none
 REDISTRIBUTION_CHOICES = ("gravitational", "none")
+#: ``[snow] refreezing``: the cold-content scheme of firnline.kernel (retention and refreezing) or none
+REFREEZING_CHOICES = ("cold-content", "none")
 
 REQUIRED = object()  # marker: the key has no default and must be given
 OPTIONAL = None
@@ -190,6 +192,12 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
     },
     "snow": {
         "redistribution": (_string(REDISTRIBUTION_CHOICES), REDISTRIBUTION_CHOICES[0]),
+        "refreezing": (_string(REFREEZING_CHOICES), REFREEZING_CHOICES[0]),
+        # firn older than this many balance years becomes glacier ice; 0: no firn. Default 5:
+        # parameters.FIRN_YEARS_SOURCE (Cuffey & Paterson 2010, from memory)
+        "firn_years": (_integer(0, 100), 5),
+        # balance years cycled before the first modelled year (common practice); 0: empty start
+        "spinup_years": (_integer(0, 50), 5),
     },
     "runoff": {
         "catchment": (_path, OPTIONAL),

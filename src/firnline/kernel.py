@@ -104,6 +104,7 @@ from __future__ import annotations
 
 import os
 from collections import namedtuple
+import dataclasses
 from dataclasses import dataclass
 from enum import IntEnum
 from typing import Callable, Protocol, Sequence
@@ -149,25 +150,50 @@ class Method(IntEnum):
 
 
 class State(IntEnum):
-    """Per-cell state, mm w.e. (cold content: mm w.e. of refreezing capacity)."""
+    """Per-column state, mm w.e. (cold content: mm w.e. of water it can refreeze)."""
 
-    SNOW = 0          #: snow water equivalent of the pack
-    FIRN = 1          #: laid out; zero until firn is modelled (issue 11)
-    LIQUID = 2        #: laid out; zero until liquid water retention is modelled
-    COLD_CONTENT = 3  #: laid out; zero until refreezing is modelled
+    SNOW = 0          #: snow water equivalent of the pack (this balance year's snow, movable)
+    FIRN = 1          #: firn: snow that survived a balance year (glacier surfaces only), all ages
+    LIQUID = 2        #: liquid water held in the snow and firn
+    COLD_CONTENT = 3  #: cold content of the pack, as the mass of water it can refreeze
 
 
 class Flux(IntEnum):
-    """Daily fluxes summed per season, mm w.e.
+    """Daily fluxes summed per season, mm w.e. over the column (see DEVELOPERS.md, "How to add a
+    kernel process")."""
 
-    Refreezing, redistribution, firn melt and released water are appended here when
-    their processes arrive (see DEVELOPERS.md, "How to add a kernel process").
+    SNOWFALL = 0        #: solid precipitation (accumulation)
+    RAIN = 1            #: liquid precipitation
+    SNOW_MELT = 2       #: melt of the snowpack
+    ICE_MELT = 3        #: melt of glacier ice (glacier surfaces only)
+    FIRN_MELT = 4       #: melt of firn (glacier surfaces only)
+    REFREEZING = 5      #: rain and meltwater refrozen in the pack (accumulation)
+    RELEASED_SNOW = 6   #: water leaving the snow pack (on ice-free ground: all released water)
+    RELEASED_FIRN = 7   #: firn melt leaving the firn
+    RELEASED_ICE = 8    #: ice melt and rain on bare ice
+    REDISTRIBUTION = 9  #: net gain (+) or loss (-) by sliding snow, its export included
+    EXPORTED = 10       #: snow sent off the DEM edge or into nodata by sliding
+    FIRN_TO_ICE = 11    #: firn older than firn_years turned into glacier ice (internal to storage)
+
+
+class Daily(IntEnum):
+    """Terms of the daily region sums (:attr:`KernelResult.daily`), m3 of water.
+
+    Released water by origin: on glacier surfaces, water leaving the snow pack is ``SNOW``,
+    firn melt leaving the firn ``FIRN``, ice melt and rain on bare ice ``ICE``; on ice-free
+    ground everything released is ``GROUND``.
     """
 
-    SNOWFALL = 0   #: solid precipitation (accumulation)
-    RAIN = 1       #: liquid precipitation
-    SNOW_MELT = 2  #: melt of the snowpack
-    ICE_MELT = 3   #: melt of glacier ice (glacier surfaces only)
+    RAIN = 0
+    SNOWFALL = 1
+    SNOW_MELT = 2
+    FIRN_MELT = 3
+    ICE_MELT = 4
+    REFREEZING = 5
+    RELEASED_SNOW = 6
+    RELEASED_FIRN = 7
+    RELEASED_ICE = 8
+    RELEASED_GROUND = 9
 
 
 class Season(IntEnum):
@@ -177,12 +203,24 @@ class Season(IntEnum):
     SUMMER = 1
 
 
-N_STATE, N_FLUX, N_SEASON = len(State), len(Flux), len(Season)
+N_STATE, N_FLUX, N_SEASON, N_DAILY = len(State), len(Flux), len(Season), len(Daily)
 # the same names as plain ints for compiled code (numba indexes tuples by int constants);
 # _state_rows and _flux_rows list one entry per member
 _SNOW, _FIRN, _LIQUID, _COLD_CONTENT = (int(x) for x in State)
-_SNOWFALL, _RAIN, _SNOW_MELT, _ICE_MELT = (int(x) for x in Flux)
-if (N_STATE, N_FLUX) != (4, 4):  # pragma: no cover - a reminder for whoever adds a member
+(_SNOWFALL, _RAIN, _SNOW_MELT, _ICE_MELT, _FIRN_MELT, _REFREEZING, _REL_SNOW, _REL_FIRN, _REL_ICE,
+ _REDIST, _EXPORTED, _FIRN_TO_ICE) = (int(x) for x in Flux)
+#: the fluxes of a cell-day that go into the daily region sums, in :class:`Daily` order up to
+#: RELEASED_ICE (RELEASED_GROUND is RELEASED_SNOW of ice-free columns)
+_DAY_FLUXES = (_RAIN, _SNOWFALL, _SNOW_MELT, _FIRN_MELT, _ICE_MELT, _REFREEZING, _REL_SNOW, _REL_FIRN,
+               _REL_ICE)
+N_DAY_ROWS = len(_DAY_FLUXES)
+#: heat capacity of ice over the latent heat of fusion, K-1: 2097 J kg-1 K-1 / 334 kJ kg-1
+#: (common practice): the mass of water 1 kg of pack 1 K below 0 C can refreeze
+COLD_PER_K = 2097.0 / 334000.0
+#: redistribution runs at the day boundaries every this many days of the record, and before
+#: the last day of each balance year (see the module docstring, "Snow redistribution")
+SLIDE_INTERVAL_DAYS = 5
+if (N_STATE, N_FLUX) != (4, 12):  # pragma: no cover - a reminder for whoever adds a member
     raise ImportError("kernel: list every State and Flux member in _state_rows / _flux_rows")
 #: cells per chunk: the chunk's state and sums (~10 kB) stay in the L1/L2 cache
 CHUNK_CELLS = 256
@@ -216,6 +254,17 @@ class KernelParams:
     ddf_snow, ddf_ice : mm w.e. d-1 K-1 (degree-day method)
     melt_factor : mm w.e. d-1 K-1 (radiation method)
     radiation_factor_snow, radiation_factor_ice : mm w.e. d-1 K-1 per W m-2
+    firn_years : int
+        Firn older than this many balance years becomes glacier ice; 0: no firn (snow that
+        survives a year stays snow, the behaviour before firn was modelled).
+    firn_share : 1
+        Firn melt factor = F_snow + firn_share * (F_ice - F_snow).
+    holding_fraction : 1
+        Liquid water a snow or firn pack holds, share of its mass (refreezing scheme on).
+    cold_days : d
+        Time constant of the pack's cold content following the air below 0 C.
+    refreezing : str
+        ``"cold-content"`` (retention and refreezing on) or ``"none"``.
     method : str
         The ``[melt] method`` name (a :class:`Method` is accepted and stored by its name);
         :attr:`code` is the :class:`Method` the kernel dispatches on.
@@ -232,10 +281,19 @@ class KernelParams:
     melt_factor: float = 0.0
     radiation_factor_snow: float = 0.0
     radiation_factor_ice: float = 0.0
+    firn_years: int = 0
+    firn_share: float = 0.5
+    holding_fraction: float = 0.0
+    cold_days: float = 7.0
+    refreezing: str = "none"
     method: str = "degree-day"
 
     def __post_init__(self):
         object.__setattr__(self, "method", Method.from_name(self.method).config_name)
+        if self.refreezing not in ("cold-content", "none"):
+            raise ValueError('refreezing is "cold-content" or "none"')
+        if int(self.firn_years) != self.firn_years or self.firn_years < 0:
+            raise ValueError("firn_years must be a whole number >= 0")
 
     @property
     def code(self) -> Method:
@@ -267,15 +325,62 @@ class Cells:
         Potential direct radiation over the same cells (``values`` (n_nodes, n_cells),
         ``scale_w_m2``, ``node_weights(doys)``; see
         :class:`firnline.radiation.RadiationTable`); required by the radiation method.
+    region : ndarray (n_cells,) int, optional
+        Region of each column for the daily sums: a glacier ``0 .. n_glaciers-1``, or
+        ``n_glaciers`` for ice-free ground (default: glacier columns in region 0 when there is
+        one glacier, else everything ice-free... give it explicitly when ``n_glaciers`` > 1).
+    area_m2 : ndarray (n_cells,) float, optional
+        Surface area each column stands for (cell area x share), m2 (default 1).
+    catchment_weight : ndarray (n_cells,) float, optional
+        Weight of each column in the ``catchment`` region (default 1).
+    n_glaciers : int
+        Number of glacier regions (regions: glaciers, ``ice_free``, ``catchment``).
     """
 
     z_m: np.ndarray
     ice: np.ndarray
     radiation: object | None = None
+    region: np.ndarray | None = None
+    area_m2: np.ndarray | None = None
+    catchment_weight: np.ndarray | None = None
+    n_glaciers: int = 1
 
     @property
     def n(self) -> int:
         return int(np.shape(self.z_m)[0])
+
+    @property
+    def n_regions(self) -> int:
+        """Regions of the daily sums: the glaciers, ``ice_free``, ``catchment``."""
+        return int(self.n_glaciers) + 2
+
+    def region_ids(self) -> np.ndarray:
+        """int64 region of each column (see ``region``)."""
+        if self.region is not None:
+            r = np.ascontiguousarray(self.region, dtype=np.int64)
+            if r.shape != (self.n,) or (r.size and (r.min() < 0 or r.max() > self.n_glaciers)):
+                raise ValueError(f"Cells.region needs one value 0..{self.n_glaciers} per column")
+            return r
+        if self.n_glaciers > 1:
+            raise ValueError("Cells.region is needed with more than one glacier")
+        ice = np.asarray(self.ice, dtype=bool)
+        return np.where(ice, 0, int(self.n_glaciers)).astype(np.int64)
+
+
+@dataclass(frozen=True)
+class Slide:
+    """Gravitational snow redistribution between kernel days (:mod:`firnline.snowslide`).
+
+    routing : snowslide.Routing over the DEM cells the columns belong to
+    column_cell : ndarray (n_cols,) int, the cell of each column (position in the routing's cells)
+    column_share : ndarray (n_cols,) float, the share of its cell's area each column stands for
+    every_days : int, days between calls (and one call before the last day of each balance year)
+    """
+
+    routing: object
+    column_cell: np.ndarray
+    column_share: np.ndarray
+    every_days: int = SLIDE_INTERVAL_DAYS
 
 
 @dataclass(frozen=True)
@@ -376,6 +481,18 @@ class KernelResult:
     snapshots : ndarray (n_snapshots, scenarios, cells) float64 or None
         Cumulative balance since the start of the record at the requested day
         boundaries, mm w.e.
+    firn_end : ndarray (scenarios, years, cells) float32
+        Firn on the last day of each balance year (after the year's firn turnover), mm w.e.
+    storage_end : ndarray (scenarios, years, cells) float64
+        Snow + firn + liquid water at the end of each balance year, mm w.e.
+    storage_start : ndarray (scenarios, cells) float64
+        The same before the first day.
+    daily : ndarray (scenarios, days, regions, :class:`Daily`) float64
+        Daily sums per region of water volumes, m3 (mm w.e. x column area x 1e-3); regions:
+        the glaciers (``Cells.region`` 0 .. n_glaciers - 1), ``ice_free``, ``catchment``
+        (every column, weighted by ``Cells.catchment_weight``).
+    region_area_m2 : ndarray (regions,) float64
+        Area of each region (the catchment's weighted), m2; daily mm = m3 / area x 1e3.
     """
 
     sums: np.ndarray
@@ -383,6 +500,46 @@ class KernelResult:
     state_initial: np.ndarray
     state_final: np.ndarray
     snapshots: np.ndarray | None = None
+    year_days: np.ndarray | None = None
+    firn_end: np.ndarray | None = None
+    storage_end: np.ndarray | None = None
+    storage_start: np.ndarray | None = None
+    daily: np.ndarray | None = None
+    region_area_m2: np.ndarray | None = None
+    slide_seconds: float = 0.0
+
+    def released(self) -> np.ndarray:
+        """Water released per balance year (snow, firn and ice origins), (scenarios, years, cells)."""
+        return (self.year_sum(Flux.RELEASED_SNOW) + self.year_sum(Flux.RELEASED_FIRN)
+                + self.year_sum(Flux.RELEASED_ICE))
+
+    def after_spinup(self, n_years: int) -> "KernelResult":
+        """The result without its first ``n_years`` balance years and their days (the spin-up):
+        the starting storage becomes the storage at the end of the spin-up."""
+        if n_years <= 0:
+            return self
+        days = self.daily
+        if days is not None:
+            days = days[:, self.spinup_days_of(n_years):]
+        return KernelResult(sums=self.sums[:, :, :, n_years:], snow_end=self.snow_end[:, n_years:],
+                            state_initial=self.state_initial, state_final=self.state_final,
+                            snapshots=self.snapshots, firn_end=self.firn_end[:, n_years:],
+                            storage_end=self.storage_end[:, n_years:],
+                            storage_start=self.storage_end[:, n_years - 1], daily=days,
+                            region_area_m2=self.region_area_m2, year_days=self.year_days[n_years:])
+
+    def spinup_days_of(self, n_years: int) -> int:
+        return int(np.sum(self.year_days[:n_years]))
+
+    def columns(self, keep) -> "KernelResult":
+        """The result of some columns only (the daily region sums are kept as they are)."""
+        k = np.asarray(keep, dtype=np.int64)
+        return dataclasses.replace(
+            self, sums=self.sums[..., k], snow_end=self.snow_end[..., k], state_initial=self.state_initial[..., k],
+            state_final=self.state_final[..., k],
+            snapshots=None if self.snapshots is None else self.snapshots[..., k],
+            firn_end=self.firn_end[..., k], storage_end=self.storage_end[..., k],
+            storage_start=self.storage_start[..., k])
 
     def season_sum(self, flux: Flux, season: Season) -> np.ndarray:
         """One flux summed over one season, (scenarios, years, cells) float32, mm w.e."""
@@ -504,18 +661,113 @@ def snow_then_ice(snow, t, threshold_c, f_snow, f_ice, inv_f_snow, ice):
     return smelt, f_ice * left * ice
 
 
+@njit(inline="always", cache=True, error_model="numpy")
+def firn_then_ice(firn, left, f_firn, f_ice, inv_f_firn, ice):
+    """Melt of firn with the degree-days ``left`` once the snow is gone, then of glacier ice.
+
+    Parameters
+    ----------
+    firn : float
+        Firn, mm w.e.
+    left : float
+        Degree-days left once the snow is gone, K d.
+    f_firn, f_ice : float
+        Melt factors of firn and ice, mm w.e. d-1 K-1.
+    inv_f_firn : float
+        1 / f_firn.
+    ice : float
+        1.0 on glacier surfaces, else 0.0.
+
+    Returns
+    -------
+    firn_melt, ice_melt : float
+        mm w.e.; as for snow, the degree-days left once the firn is gone,
+        ``left - firn / f_firn``, melt ice (common practice in temperature-index models
+        with a firn factor, e.g. Hock, 2003). With no firn the ice melt is exactly that of
+        :func:`snow_then_ice`.
+    """
+    pot = f_firn * left
+    fmelt = min(firn, pot)
+    rest = left - firn * inv_f_firn
+    rest = rest if pot > firn else 0.0
+    rest = left if firn <= 0.0 else rest
+    return fmelt, f_ice * rest * ice
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def cold_content_step(cold, pack, t, exchange):
+    """One day of the pack's cold content following the air below 0 C (the cold-content scheme).
+
+    The cold content is the mass of water the pack can refreeze, mm w.e.: a pack of mass
+    ``M`` (mm w.e.) at a mean ``dT`` below 0 C holds ``M * dT * c_i / L_f`` of it, with
+    c_i = 2097 J kg-1 K-1 and L_f = 334 kJ kg-1 (common practice). On days below 0 C it
+    relaxes towards the air's, ``target = M * (-T) * c_i / L_f``, by the share
+    ``exchange = 1 - exp(-1 d / tau)`` of the difference (a bulk heat exchange with time
+    constant tau, ``[snow] cold_exchange_days``); on days at or above 0 C it is only spent by
+    refreezing; it vanishes with the pack.
+
+    Parameters
+    ----------
+    cold : float
+        Cold content before the day, mm w.e.
+    pack : float
+        Snow + firn after the day's melt, mm w.e.
+    t : float
+        Air temperature, deg C.
+    exchange : float
+        Daily exchange share (0 turns the scheme off).
+
+    Returns
+    -------
+    float
+        Cold content, mm w.e.
+    """
+    target = COLD_PER_K * pack * max(-t, 0.0)
+    c = cold + exchange * (target - cold)
+    c = c if t < 0.0 else cold
+    return c if pack > 0.0 else 0.0
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def refreeze_and_hold(water, cold, pack, holding_fraction):
+    """Refreezing as far as the cold content allows, then retention up to the holding capacity.
+
+    Parameters
+    ----------
+    water : float
+        Rain, meltwater and the liquid water already held, mm w.e.
+    cold : float
+        Cold content, mm w.e. of water it can refreeze.
+    pack : float
+        Snow + firn, mm w.e.
+    holding_fraction : float
+        Liquid water the pack holds, share of its mass (a few per cent: common practice).
+
+    Returns
+    -------
+    refrozen, held, released : float
+        mm w.e.; ``refrozen + held + released = water``; the refrozen water joins the pack
+        (accumulation: Cogley et al., 2011, glossary), the held water stays liquid in it.
+    """
+    refrozen = min(water, cold)
+    rest = water - refrozen
+    held = min(rest, holding_fraction * (pack + refrozen))
+    return refrozen, held, rest - held
+
+
 # ----------------------------------------------------------------------------
 # the compiled core
 # ----------------------------------------------------------------------------
 
 # named groups passed into the compiled core (numba compiles namedtuples of arrays)
-CellArrays = namedtuple("CellArrays", "dz orog ice rad_values")
+CellArrays = namedtuple("CellArrays", "dz orog ice rad_values region vol wcat")
 DayArrays = namedtuple("DayArrays", "t_station p_station lapse month season year year_end "
-                                    "snapshot rad_lo rad_hi rad_w_lo rad_w_hi")
+                                    "snapshot rad_lo rad_hi rad_w_lo rad_w_hi index")
 ScenarioArrays = namedtuple("ScenarioArrays", "warming precip_scale")
 ParamValues = namedtuple("ParamValues", "snow_c rain_c inv_span threshold_c ddf_snow ddf_ice "
-                                        "inv_ddf_snow melt_factor rad_snow rad_ice")
-Targets = namedtuple("Targets", "state running cum sums snow_end snapshots")
+                                        "inv_ddf_snow melt_factor rad_snow rad_ice firn_share ddf_firn "
+                                        "inv_ddf_firn holding exchange firn_years n_glaciers want_daily")
+Targets = namedtuple("Targets", "state running cum sums snow_end snapshots layers firn_end storage_end daily")
 
 
 @njit(parallel=True, cache=True, error_model="numpy")
@@ -523,7 +775,8 @@ def _advance(method, mode, carry, cells, days, t_block, p_block, scen, par, c_lo
     """Advance cells ``c_lo .. c_hi-1`` over the days of ``days`` (see the module docstring).
 
     ``mode`` is STATION or CELL (then ``t_block``/``p_block`` are (n_days, n_cells)
-    float32); ``carry``: load and store the running sums (cell mode, blocks cut years).
+    float32); ``carry``: load and store the running sums (cell mode, blocks cut years; and
+    station mode with snow redistribution, whose calls cut the record).
     """
     n_chunks = (c_hi - c_lo + CHUNK_CELLS - 1) // CHUNK_CELLS
     n_tasks = (n_chunks + CHUNKS_PER_TASK - 1) // CHUNKS_PER_TASK
@@ -533,9 +786,11 @@ def _advance(method, mode, carry, cells, days, t_block, p_block, scen, par, c_lo
     for task in prange(n_tasks):
         state = np.empty((N_STATE, CHUNK_CELLS))
         run = np.empty((N_SEASON, N_FLUX, CHUNK_CELLS))
+        day_rows = np.zeros((N_DAY_ROWS, CHUNK_CELLS))   # the day's fluxes of the chunk (daily sums)
         t_cells = np.empty(CHUNK_CELLS)      # cell mode: the day's forcing of the chunk
         p_cells = np.empty(CHUNK_CELLS)
         rad_chunk = np.zeros((n_nodes, CHUNK_CELLS))   # float64: converted once, not every day
+        runs = np.empty(CHUNK_CELLS + 1, dtype=np.int64)   # the chunk's runs of one region
         for k in range(task * CHUNKS_PER_TASK, min(n_chunks, (task + 1) * CHUNKS_PER_TASK)):
             c0 = c_lo + k * CHUNK_CELLS
             m = min(CHUNK_CELLS, c_hi - c0)
@@ -547,7 +802,7 @@ def _advance(method, mode, carry, cells, days, t_block, p_block, scen, par, c_lo
                         rad_chunk[j, i] = cells.rad_values[j, c0 + i]
             for s in range(n_scen):
                 _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out,
-                       c0, m, s, n_days, state, run, rad_chunk, t_cells, p_cells)
+                       c0, m, s, n_days, state, run, rad_chunk, t_cells, p_cells, day_rows, runs)
 
 
 @njit(inline="always", cache=True, error_model="numpy")
@@ -559,24 +814,60 @@ def _reciprocal(x):
 
 
 @njit(inline="always", cache=True, error_model="numpy")
-def _cell_day(st, acc, i, t, p, f_snow, f_ice, inv_f_snow, ice, par):
+def _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, inv_f_snow, inv_f_firn, ice, par):
     """The processes of one cell-day after downscaling, in order: the precipitation split,
-    snowfall onto the pack, melt of snow, then of glacier ice.
+    snowfall onto the pack, melt of snow, then of firn, then of glacier ice; the cold content
+    of the pack; refreezing and retention of rain and meltwater; the water released.
 
-    ``st`` holds the chunk's state rows and ``acc`` the running-sum rows of the day's season
-    (tuples of 1-d arrays over the chunk's cells, in :class:`State` and :class:`Flux` order,
-    see :func:`_rows`); cell ``i`` is updated. Branch-free, so the loop over the chunk's
+    ``st`` holds the chunk's state rows, ``acc`` the running-sum rows of the day's season and
+    ``dv`` the rows of the day's values for the daily sums (tuples of 1-d arrays over the
+    chunk's cells, in :class:`State`, :class:`Flux` and ``_DAY_FLUXES`` order, see
+    :func:`_state_rows`); cell ``i`` is updated. Branch-free, so the loop over the chunk's
     cells that calls it compiles to packed SIMD code. A new process goes here: read and
     write its state rows, add its flux rows.
     """
     snowfall = p * snowfall_fraction(t, par.snow_c, par.rain_c, par.inv_span)
+    rain = p - snowfall
     snow = st[_SNOW][i] + snowfall
-    snow_melt, ice_melt = snow_then_ice(snow, t, par.threshold_c, f_snow, f_ice, inv_f_snow, ice)
-    st[_SNOW][i] = snow - snow_melt
+    firn = st[_FIRN][i]
+    # the degree-days left once the snow is gone (f_ice = 1 on "ice" gives them unscaled)
+    snow_melt, left = snow_then_ice(snow, t, par.threshold_c, f_snow, 1.0, inv_f_snow, 1.0)
+    firn_melt, ice_melt = firn_then_ice(firn, left, f_firn, f_ice, inv_f_firn, ice)
+    snow -= snow_melt
+    firn -= firn_melt
+    pack = snow + firn
+    cold = cold_content_step(st[_COLD_CONTENT][i], pack, t, par.exchange)
+    water = rain + snow_melt + firn_melt + st[_LIQUID][i]
+    refrozen, held, out = refreeze_and_hold(water, cold, pack, par.holding)
+    snow += refrozen
+    # released water by origin: firn melt leaves the firn, rain on bare ice runs off the ice
+    r_firn = min(firn_melt, out)
+    bare = 1.0 if snow + firn <= 0.0 else 0.0
+    r_rain_ice = min(rain * bare * ice, out - r_firn)
+    r_snow = out - r_firn - r_rain_ice
+    r_ice = ice_melt + r_rain_ice
+    st[_SNOW][i] = snow
+    st[_FIRN][i] = firn
+    st[_LIQUID][i] = held
+    st[_COLD_CONTENT][i] = cold - refrozen
     acc[_SNOWFALL][i] += snowfall
-    acc[_RAIN][i] += p - snowfall
+    acc[_RAIN][i] += rain
     acc[_SNOW_MELT][i] += snow_melt
     acc[_ICE_MELT][i] += ice_melt
+    acc[_FIRN_MELT][i] += firn_melt
+    acc[_REFREEZING][i] += refrozen
+    acc[_REL_SNOW][i] += r_snow
+    acc[_REL_FIRN][i] += r_firn
+    acc[_REL_ICE][i] += r_ice
+    dv[0][i] = rain
+    dv[1][i] = snowfall
+    dv[2][i] = snow_melt
+    dv[3][i] = firn_melt
+    dv[4][i] = ice_melt
+    dv[5][i] = refrozen
+    dv[6][i] = r_snow
+    dv[7][i] = r_firn
+    dv[8][i] = r_ice
 
 
 @njit(inline="always", cache=True, error_model="numpy")
@@ -590,21 +881,67 @@ def _state_rows(a):
 @njit(inline="always", cache=True, error_model="numpy")
 def _flux_rows(a):
     """The rows of a season's running sums (N_FLUX, cells) as a tuple, one per :class:`Flux`."""
-    return (a[_SNOWFALL], a[_RAIN], a[_SNOW_MELT], a[_ICE_MELT])
+    return (a[_SNOWFALL], a[_RAIN], a[_SNOW_MELT], a[_ICE_MELT], a[_FIRN_MELT], a[_REFREEZING],
+            a[_REL_SNOW], a[_REL_FIRN], a[_REL_ICE], a[_REDIST], a[_EXPORTED], a[_FIRN_TO_ICE])
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _day_rows(a):
+    """The rows of the day's values (N_DAY_ROWS, cells) as a tuple."""
+    return (a[0], a[1], a[2], a[3], a[4], a[5], a[6], a[7], a[8])
 
 
 @njit(inline="always", cache=True, error_model="numpy")
 def _balance(run, i):
-    """Balance of cell ``i`` of a chunk from its running sums: accumulation - ablation, mm w.e."""
+    """Balance of cell ``i`` of a chunk from its running sums: accumulation - ablation, mm w.e.
+
+    Accumulation = snowfall + refreezing + deposition by sliding snow; ablation = melt of
+    snow, firn and ice + loss by sliding snow (the net of the two is ``REDISTRIBUTION``).
+    """
     b = 0.0
     for q in range(N_SEASON):
-        b += run[q, _SNOWFALL, i] - run[q, _SNOW_MELT, i] - run[q, _ICE_MELT, i]
+        b += (run[q, _SNOWFALL, i] + run[q, _REFREEZING, i] + run[q, _REDIST, i]
+              - run[q, _SNOW_MELT, i] - run[q, _FIRN_MELT, i] - run[q, _ICE_MELT, i])
     return b
+
+
+@njit(inline="always", cache=True, error_model="numpy")
+def _firn_turnover(layers, s, c, snow, firn, ice, n_layers):
+    """The firn of one column at the end of a balance year (Cogley et al., 2011: firn is snow
+    that has survived one melt season).
+
+    ``layers[k, s, c]`` holds the firn of age k + 1 years at the last year end. The year's
+    firn melt is taken from the youngest layers first (the surface); the oldest layer becomes
+    glacier ice (it leaves the pack); the others age by one year and the surviving snow
+    becomes the youngest layer. Ice-free columns (``ice`` = 0) keep their snow as snow.
+
+    Returns
+    -------
+    snow, firn, to_ice : float
+        mm w.e. after the turnover.
+    """
+    loss = 0.0
+    for k in range(n_layers):
+        loss += layers[k, s, c]
+    loss -= firn
+    for k in range(n_layers):
+        take = min(layers[k, s, c], max(loss, 0.0))
+        layers[k, s, c] -= take
+        loss -= take
+    to_ice = layers[n_layers - 1, s, c]
+    for k in range(n_layers - 1, 0, -1):
+        layers[k, s, c] = layers[k - 1, s, c]
+    new = snow * ice
+    layers[0, s, c] = new
+    total = 0.0
+    for k in range(n_layers):
+        total += layers[k, s, c]
+    return snow - new, total, to_ice
 
 
 @njit(cache=True, error_model="numpy")
 def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c0, m, s, n_days,
-           state, run, rad_chunk, t_cells, p_cells):
+           state, run, rad_chunk, t_cells, p_cells, day_rows, runs):
     """One chunk of ``m`` cells from ``c0`` and one scenario over all days of the call
     (``rad_chunk``: the chunk's columns of the radiation table)."""
     for j in range(N_STATE):
@@ -617,7 +954,20 @@ def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c
     dz = cells.dz[c0:c0 + m]
     orog = cells.orog[c0:c0 + m]
     ice = cells.ice[c0:c0 + m]
+    vol = cells.vol[c0:c0 + m]
+    wcat = cells.wcat[c0:c0 + m]
+    region = cells.region[c0:c0 + m]
     st = _state_rows(state)
+    dv = _day_rows(day_rows)
+    # the chunk's runs of columns in one region (for the daily region sums)
+    n_runs = 0
+    for i in range(m):
+        if i == 0 or region[i] != region[i - 1]:
+            runs[n_runs] = i
+            n_runs += 1
+    runs[n_runs] = m
+    ice_free = par.n_glaciers
+    tid = numba.get_thread_id()
     for d in range(n_days):
         mo = days.month[d]
         warm = scen.warming[s, mo]
@@ -640,7 +990,8 @@ def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c
             for i in range(m):
                 t = t0 + lapse * x_t[i] + warm
                 p = p0 * x_p[i] * pscale
-                _cell_day(st, acc, i, t, p, f_snow, f_ice, par.inv_ddf_snow, ice[i], par)
+                _cell_day(st, acc, dv, i, t, p, f_snow, par.ddf_firn, f_ice, par.inv_ddf_snow,
+                          par.inv_ddf_firn, ice[i], par)
         else:
             r_lo, r_hi = rad_chunk[days.rad_lo[d]], rad_chunk[days.rad_hi[d]]
             w_lo, w_hi = days.rad_w_lo[d], days.rad_w_hi[d]
@@ -649,12 +1000,45 @@ def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c
                 p = p0 * x_p[i] * pscale
                 f_snow, f_ice = hock1999_factors(par.melt_factor, par.rad_snow, par.rad_ice,
                                                  w_lo * r_lo[i] + w_hi * r_hi[i])
-                _cell_day(st, acc, i, t, p, f_snow, f_ice, _reciprocal(f_snow), ice[i], par)
+                f_firn = f_snow + par.firn_share * (f_ice - f_snow)
+                _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, _reciprocal(f_snow),
+                          _reciprocal(f_firn), ice[i], par)
+        if par.want_daily:
+            # the day's volumes per region (a run of columns at a time) and over the catchment
+            dd = days.index[d]
+            for r in range(n_runs):
+                g = region[runs[r]]
+                for f in range(N_DAY_ROWS):
+                    v = 0.0
+                    for i in range(runs[r], runs[r + 1]):
+                        v += day_rows[f, i] * vol[i]
+                    term = N_DAY_ROWS if (f == N_DAY_ROWS - 3 and g == ice_free) else f
+                    out.daily[tid, s, dd, g, term] += v
+            for f in range(N_DAY_ROWS):
+                v = 0.0
+                v_free = 0.0
+                for i in range(m):
+                    v += day_rows[f, i] * wcat[i]
+                    v_free += day_rows[f, i] * wcat[i] * (1.0 - ice[i])
+                if f == N_DAY_ROWS - 3:
+                    out.daily[tid, s, dd, ice_free + 1, f] += v - v_free
+                    out.daily[tid, s, dd, ice_free + 1, N_DAY_ROWS] += v_free
+                else:
+                    out.daily[tid, s, dd, ice_free + 1, f] += v
         if days.year_end[d]:
             y = days.year[d]
+            if par.firn_years > 0:
+                for i in range(m):
+                    sn, fi, to_ice = _firn_turnover(out.layers, s, c0 + i, state[_SNOW, i], state[_FIRN, i],
+                                                    ice[i], par.firn_years)
+                    state[_SNOW, i] = sn
+                    state[_FIRN, i] = fi
+                    run[q, _FIRN_TO_ICE, i] += to_ice
             for i in range(m):
                 out.cum[s, c0 + i] += _balance(run, i)
                 out.snow_end[s, y, c0 + i] = state[_SNOW, i]
+                out.firn_end[s, y, c0 + i] = state[_FIRN, i]
+                out.storage_end[s, y, c0 + i] = state[_SNOW, i] + state[_FIRN, i] + state[_LIQUID, i]
             for qq in range(N_SEASON):
                 for f in range(N_FLUX):
                     for i in range(m):
@@ -712,36 +1096,98 @@ def _day_arrays(calendar: Calendar, params: KernelParams, station: StationForcin
                      year_end=year_end, snapshot=snap,
                      rad_lo=np.ascontiguousarray(lo, dtype=np.int64),
                      rad_hi=np.ascontiguousarray(hi, dtype=np.int64),
-                     rad_w_lo=np.ascontiguousarray(w_lo), rad_w_hi=np.ascontiguousarray(w_hi))
+                     rad_w_lo=np.ascontiguousarray(w_lo), rad_w_hi=np.ascontiguousarray(w_hi),
+                     index=np.arange(n_days, dtype=np.int64))
 
 
-def _param_values(params: KernelParams) -> ParamValues:
+def _param_values(params: KernelParams, n_glaciers: int = 1, want_daily: bool = False) -> ParamValues:
     span = params.rain_c - params.snow_c
 
     def inv(x):
         return 1.0 / x if x != 0 else np.inf
+    on = params.refreezing != "none"
+    ddf_firn = params.ddf_snow + params.firn_share * (params.ddf_ice - params.ddf_snow)
     return ParamValues(snow_c=float(params.snow_c), rain_c=float(params.rain_c),
                        inv_span=1.0 / span if span > 0 else 0.0,
                        threshold_c=float(params.threshold_c), ddf_snow=float(params.ddf_snow),
                        ddf_ice=float(params.ddf_ice), inv_ddf_snow=float(inv(params.ddf_snow)),
                        melt_factor=float(params.melt_factor),
                        rad_snow=float(params.radiation_factor_snow),
-                       rad_ice=float(params.radiation_factor_ice))
+                       rad_ice=float(params.radiation_factor_ice), firn_share=float(params.firn_share),
+                       ddf_firn=float(ddf_firn), inv_ddf_firn=float(inv(ddf_firn)),
+                       holding=float(params.holding_fraction) if on else 0.0,
+                       exchange=float(-np.expm1(-1.0 / params.cold_days)) if on else 0.0,
+                       firn_years=int(params.firn_years), n_glaciers=int(n_glaciers),
+                       want_daily=bool(want_daily))
 
 
 def _slice_days(days: DayArrays, a: int, b: int) -> DayArrays:
     return DayArrays(*(np.ascontiguousarray(v[a:b]) for v in days))
 
 
+def _slide_boundaries(calendar: Calendar, every: int) -> list[int]:
+    """Day boundaries k (before day k) at which snow slides: every ``every`` days and before the
+    last day of each balance year (so each year's sums close with the snow moved)."""
+    n = calendar.n_days
+    year = np.asarray(calendar.year_index)
+    last = [int(k) for k in np.flatnonzero(np.r_[year[1:] != year[:-1], True])]
+    ks = set(range(every, n, every)) | set(last)
+    return sorted(k for k in ks if 0 < k < n)
+
+
+def _slide(slide: Slide, out: Targets, season: int, n_cells: int) -> float:
+    """Move snow between cells at a day boundary (:func:`firnline.snowslide.redistribute`) and
+    share each cell's change back to its columns; returns the time spent, s.
+
+    A cell's snow is the share-weighted sum of its columns'; a gain adds the same mm to each
+    column of the cell, a loss takes the same fraction of each column's snow (and the export
+    in proportion), so every column keeps the cell's budget. Firn is immobile and fills the
+    holding capacity first.
+    """
+    import time
+
+    from . import snowslide
+    t0 = time.perf_counter()
+    col, share = slide.column_cell, slide.column_share
+    snow_col = out.state[_SNOW]            # (n_scen, n_cols) views
+    ns = snow_col.shape[0]
+    cell_snow = np.zeros((ns, n_cells))
+    cell_firn = np.zeros((ns, n_cells))
+    for sc in range(ns):
+        cell_snow[sc] = np.bincount(col, weights=share * snow_col[sc], minlength=n_cells)
+        cell_firn[sc] = np.bincount(col, weights=share * out.state[_FIRN, sc], minlength=n_cells)
+    before = cell_snow.copy()
+    change = np.zeros_like(cell_snow)
+    exported = np.zeros_like(cell_snow)
+    snowslide.redistribute(slide.routing, cell_snow, change=change, exported=exported, immobile=cell_firn)
+    for sc in range(ns):
+        moved = np.flatnonzero((change[sc] != 0.0) | (exported[sc] != 0.0))
+        if moved.size == 0:
+            continue
+        hit = np.isin(col, moved)
+        c = col[hit]
+        ch, ex, b = change[sc, c], exported[sc, c], before[sc, c]
+        frac = np.divide(snow_col[sc, hit], b, out=np.zeros_like(b), where=b > 0)
+        loss = ch < 0.0
+        col_change = np.where(loss, ch * frac, ch)
+        col_ex = np.where(loss, ex * frac, ex)
+        snow_col[sc, hit] = np.maximum(snow_col[sc, hit] + col_change, 0.0)
+        out.running[season, _REDIST, sc, hit] += col_change
+        out.running[season, _EXPORTED, sc, hit] += col_ex
+    return time.perf_counter() - t0
+
+
 def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                scenarios: Scenarios | None = None, snapshot_days: Sequence[int] | None = None,
-               progress: Callable[[int], None] | None = None) -> KernelResult:
+               progress: Callable[[int], None] | None = None, slide: Slide | None = None,
+               daily: bool = True) -> KernelResult:
     """Run the daily balance over a record.
 
     Parameters
     ----------
     cells : Cells
-        Per-cell inputs (elevation, glacier ice, radiation table).
+        Per-column inputs (elevation, glacier ice, radiation table, region, area, catchment
+        weight).
     calendar : Calendar
         Per-day calendar.
     forcing : StationForcing or CellForcing
@@ -756,6 +1202,10 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     progress : callable, optional
         Called with the number of days done (in station mode, the share of cells done
         times the number of days) after each step.
+    slide : Slide, optional
+        Gravitational snow redistribution between days (either forcing mode); none without it.
+    daily : bool
+        Keep the daily region sums (:attr:`KernelResult.daily`).
 
     Returns
     -------
@@ -784,51 +1234,90 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
         dz = orog = np.zeros(n)
     rad = cells.radiation if method == Method.RADIATION else None
     rad_values = rad.values if rad is not None else np.zeros((1, n), dtype="float32")
-    cell_arrays = CellArrays(dz=dz, orog=np.ascontiguousarray(orog),
-                             ice=np.ascontiguousarray(cells.ice, dtype=np.bool_).astype("float64"),
-                             rad_values=np.ascontiguousarray(rad_values))
+    area = np.ones(n) if cells.area_m2 is None else np.asarray(cells.area_m2, dtype="float64")
+    weight = np.ones(n) if cells.catchment_weight is None else np.asarray(cells.catchment_weight, dtype="float64")
+    if area.shape != (n,) or weight.shape != (n,):
+        raise ValueError("Cells.area_m2 and Cells.catchment_weight need one value per column")
+    region = cells.region_ids()
+    ice = np.ascontiguousarray(cells.ice, dtype=np.bool_).astype("float64")
+    cell_arrays = CellArrays(dz=dz, orog=np.ascontiguousarray(orog), ice=ice,
+                             rad_values=np.ascontiguousarray(rad_values), region=region,
+                             vol=np.ascontiguousarray(area * 1e-3),
+                             wcat=np.ascontiguousarray(area * 1e-3 * weight))
     days = _day_arrays(calendar, params, station, rad, snaps)
-    par = _param_values(params)
+    n_regions = cells.n_regions
+    par = _param_values(params, cells.n_glaciers, daily)
     scen = ScenarioArrays(warming=scenarios.warming_k, precip_scale=scenarios.precip_scale)
 
     state = np.zeros((N_STATE, ns, n), dtype="float64")
     state_initial = state.copy()
-    carry = station is None
+    carry = station is None or slide is not None
+    n_threads = numba.get_num_threads()
     out = Targets(state=state,
                   running=np.zeros((N_SEASON, N_FLUX, ns, n) if carry else (N_SEASON, N_FLUX, 1, 1)),
                   cum=np.zeros((ns, n)),
                   sums=np.zeros((N_SEASON, N_FLUX, ns, n_years, n), dtype="float32"),
                   snow_end=np.zeros((ns, n_years, n), dtype="float32"),
-                  snapshots=np.zeros((max(len(snaps), 1), ns, n)))
+                  snapshots=np.zeros((max(len(snaps), 1), ns, n)),
+                  layers=np.zeros((max(int(params.firn_years), 1), ns, n) if params.firn_years else (1, 1, 1)),
+                  firn_end=np.zeros((ns, n_years, n), dtype="float32"),
+                  storage_end=np.zeros((ns, n_years, n)),
+                  daily=np.zeros((n_threads, ns, n_days, n_regions, N_DAILY) if daily else (1, 1, 1, 1, 1)))
     # a snapshot at boundary 0 is the zero balance before the first day (already zero)
+    slide_s = 0.0
     if n and n_days:
         with numba.parallel_chunksize(TASK_CHUNKSIZE):
-            _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress)
+            slide_s = _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days,
+                             progress, slide, calendar)
+    region_area = np.concatenate([np.bincount(region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
+                                  [float(np.sum(area * weight))]])
+    year_days = np.bincount(np.asarray(calendar.year_index, dtype=np.int64), minlength=n_years)
     return KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
-                        state_final=out.state, snapshots=out.snapshots if snaps else None)
+                        state_final=out.state, snapshots=out.snapshots if snaps else None,
+                        year_days=year_days, firn_end=out.firn_end, storage_end=out.storage_end,
+                        storage_start=np.zeros((ns, n)), daily=out.daily.sum(axis=0) if daily else None,
+                        region_area_m2=region_area, slide_seconds=slide_s)
 
 
-def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress):
-    """The Python-level loop: groups of cells over the whole record (station mode), or blocks
-    of days over all cells with the state carried between them (cell mode)."""
-    if station is not None:
-        unused = np.zeros((1, 1), dtype="float32")
+def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress,
+           slide, calendar) -> float:
+    """The Python-level loop: groups of cells over the whole record (station mode), or segments
+    of days over all cells with the state carried between them (cell mode, and any mode with
+    snow redistribution, which moves snow between cells at the segments' boundaries).
+
+    Returns the time spent redistributing snow, s.
+    """
+    unused = np.zeros((1, 1), dtype="float32")
+    if station is not None and slide is None:
         for c_lo in range(0, n, GROUP_CELLS):
             c_hi = min(n, c_lo + GROUP_CELLS)
             _advance(int(method), STATION, False, cell_arrays, days, unused, unused, scen, par,
                      c_lo, c_hi, out)
             if progress is not None:
                 progress(int(n_days * c_hi // n))
-        return
-    step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
-    for a in range(0, n_days, step):
-        b = min(n_days, a + step)
-        t, p = forcing.block(a, b)
-        t = np.ascontiguousarray(t, dtype="float32")
-        p = np.ascontiguousarray(p, dtype="float32")
-        if t.shape != (b - a, n) or p.shape != (b - a, n):
-            raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
-        _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen, par,
-                 0, n, out)
+        return 0.0
+    edges = {0, n_days}
+    if station is None:
+        step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
+        edges |= set(range(0, n_days, step))
+    slides = set(_slide_boundaries(calendar, int(slide.every_days))) if slide is not None else set()
+    edges = sorted(edges | slides)
+    slide_s = 0.0
+    n_cells = int(slide.routing.n_cells) if slide is not None else 0
+    for a, b in zip(edges[:-1], edges[1:]):
+        if a in slides:
+            slide_s += _slide(slide, out, int(days.season[a]), n_cells)
+        if station is None:
+            t, p = forcing.block(a, b)
+            t = np.ascontiguousarray(t, dtype="float32")
+            p = np.ascontiguousarray(p, dtype="float32")
+            if t.shape != (b - a, n) or p.shape != (b - a, n):
+                raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
+            _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen, par,
+                     0, n, out)
+        else:
+            _advance(int(method), STATION, True, cell_arrays, _slice_days(days, a, b), unused, unused,
+                     scen, par, 0, n, out)
         if progress is not None:
             progress(b)
+    return slide_s

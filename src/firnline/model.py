@@ -31,7 +31,8 @@ from .config import Config
 from .forcing import Forcing, load_forcing
 from .glaciers import Glaciers
 from .grid import Grid, file_checksum, read_dem
-from .kernel import Calendar, Cells, KernelParams, KernelResult, Scenarios, StationForcing, run_kernel
+from .kernel import (Calendar, Cells, Flux, KernelParams, KernelResult, Scenarios, Season, Slide, StationForcing,
+                     run_kernel)
 from .metrics import YearMetrics, glacier_year
 from .progress import Progress, stage
 from .provenance import CAUTION
@@ -42,6 +43,96 @@ SUMMARY_COLUMNS = ["glacier", "balance_year", "area_km2", "annual_balance_mwe", 
                    "summer_balance_mwe", "ela_m", "aar", "ela_flag"]
 PROFILE_COLUMNS = ["glacier", "balance_year", "band_bottom_m", "band_top_m", "area_km2",
                    "annual_balance_mwe"]
+
+@dataclass(frozen=True)
+class Columns:
+    """Surface columns of the kernel: a DEM cell is one column, or several when it is partly glacier.
+
+    The first ``n_cells`` columns are the cells themselves, in ``Setup.cells`` order: a cell
+    with any glacier cover is the column of its glacier surface (its main glacier, the one
+    with the largest share), any other cell the column of its ice-free ground. Appended after
+    them: one ice-free column for each partly covered cell (share ``1 - F``, ``F`` the cell's
+    total glacier share) and one glacier column for each further glacier sharing a cell.
+    Columns of the same surface type in one cell see the same forcing and state, so their
+    values per mm are equal; they differ in the area (``share``) and region they count for.
+
+    cell : ndarray (n_cols,) int64
+        Position of the column's cell in ``Setup.cells`` order.
+    share : ndarray (n_cols,) float64
+        Share of the cell's area the column stands for (the shares of a cell sum to 1).
+    ice : ndarray (n_cols,) bool
+        Glacier surface (ice melt, firn) or ice-free ground.
+    region : ndarray (n_cols,) int32
+        Index of the column's glacier (``Glaciers.names`` order), or ``n_glaciers`` for
+        ice-free ground (the ``ice_free`` region).
+    n_cells : int
+    """
+
+    cell: np.ndarray
+    share: np.ndarray
+    ice: np.ndarray
+    region: np.ndarray
+    n_cells: int
+
+    @property
+    def n(self) -> int:
+        return int(self.cell.size)
+
+    @classmethod
+    def build(cls, n_cells: int, glacier_pos, fractions) -> "Columns":
+        """Columns of ``n_cells`` cells from the glaciers' cell positions and shares."""
+        n_gl = len(glacier_pos)
+        total = np.zeros(n_cells)
+        best = np.zeros(n_cells)
+        main = np.full(n_cells, n_gl, dtype=np.int32)
+        for g, (pos, frac) in enumerate(zip(glacier_pos, fractions)):
+            pos = np.asarray(pos, dtype=np.int64)
+            frac = np.asarray(frac, dtype="float64")
+            np.add.at(total, pos, frac)
+            better = frac > best[pos]          # the first glacier in file order wins a tie
+            main[pos[better]] = g
+            best[pos[better]] = frac[better]
+        total = np.minimum(total, 1.0)
+        glacier = main < n_gl
+        share = np.where(glacier, best, 1.0)
+        cell = [np.arange(n_cells, dtype=np.int64)]
+        shares, ices, regions = [share], [glacier], [main]
+        for g, (pos, frac) in enumerate(zip(glacier_pos, fractions)):
+            pos = np.asarray(pos, dtype=np.int64)
+            other = main[pos] != g
+            cell.append(pos[other])
+            shares.append(np.asarray(frac, dtype="float64")[other])
+            ices.append(np.ones(int(other.sum()), bool))
+            regions.append(np.full(int(other.sum()), g, dtype=np.int32))
+        part = np.flatnonzero(glacier & (total < 1.0))
+        cell.append(part)
+        shares.append(1.0 - total[part])
+        ices.append(np.zeros(part.size, bool))
+        regions.append(np.full(part.size, n_gl, dtype=np.int32))
+        return cls(cell=np.concatenate(cell), share=np.concatenate(shares), ice=np.concatenate(ices),
+                   region=np.concatenate(regions).astype(np.int32), n_cells=int(n_cells))
+
+    def select(self, positions: np.ndarray) -> "Columns":
+        """The columns of some cells (ascending positions), their cells renumbered."""
+        sub = np.asarray(positions, dtype=np.int64)
+        new = np.full(self.n_cells, -1, dtype=np.int64)
+        new[sub] = np.arange(sub.size)
+        first = sub                                     # the cells' own columns, in order
+        extra = np.arange(self.n_cells, self.n)
+        extra = extra[new[self.cell[extra]] >= 0]
+        keep = np.concatenate([first, extra])
+        return Columns(cell=new[self.cell[keep]], share=self.share[keep], ice=self.ice[keep],
+                       region=self.region[keep], n_cells=int(sub.size))
+
+    def blend(self, values: np.ndarray) -> np.ndarray:
+        """Per-cell area means (..., n_cells) of per-column values (..., n_cols), by share."""
+        v = np.asarray(values, dtype="float64")
+        out = v[..., :self.n_cells] * self.share[:self.n_cells]
+        if self.n > self.n_cells:
+            extra = v[..., self.n_cells:] * self.share[self.n_cells:]
+            np.add.at(np.moveaxis(out, -1, 0), self.cell[self.n_cells:], np.moveaxis(extra, -1, 0))
+        return out
+
 
 @dataclass(frozen=True)
 class Setup:
@@ -76,6 +167,15 @@ class Setup:
     catchment_weight: np.ndarray | None = None
     #: The gauge record of ``[observations] discharge`` (firnline.runoff.ObservedDischarge), or None.
     discharge: object = None
+    columns: Columns | None = None
+    routing: object | None = None
+
+    @property
+    def surface_columns(self) -> Columns:
+        """The kernel's surface columns (:class:`Columns`)."""
+        if self.columns is not None:
+            return self.columns
+        return Columns.build(self.cells.size, self.glacier_pos, self.glaciers.fractions)
 
     def select(self, positions) -> "Setup":
         """The setup restricted to some cells, given as ascending positions in ``cells`` order.
@@ -95,9 +195,14 @@ class Setup:
         pos = tuple(np.searchsorted(sub, p) for p in self.glacier_pos) if whole else ()
         rad = self.radiation.subset(sub) if self.radiation is not None else None
         cw = self.catchment_weight[sub] if self.catchment_weight is not None else None
+        routing = None
+        if self.routing is not None:
+            from . import snowslide
+            routing = snowslide.subset(self.routing, sub)
         return dataclasses.replace(self, cells=self.cells[sub], z_m=self.z_m[sub],
                                    glacier_mask=self.glacier_mask[sub], radiation=rad,
-                                   glacier_pos=pos, catchment_weight=cw)
+                                   glacier_pos=pos, catchment_weight=cw,
+                                   columns=self.surface_columns.select(sub), routing=routing)
 
 
 def check_config(setup: Setup, config: Config | None) -> Config:
@@ -180,12 +285,23 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
         table, _, note = radiation_climatology(grid, slope, aspect, config, progress)
         notes.append(note)
         timings["radiation_s"] = time.perf_counter() - t1
+    routing = None
+    if config.snow.redistribution == "gravitational":
+        from . import slide_cache
+        t2 = time.perf_counter()
+        routing, note = slide_cache.cached_routing(
+            config.radiation.cache_dir, grid.checksum, grid.transform, grid.elevation, grid.valid,
+            grid.cell_size_m, slope, config.snow.snow_density_kg_m3, config.snow.min_slide_slope_deg)
+        notes.append(note)
+        timings["routing_s"] = time.perf_counter() - t2
+    glacier_pos = tuple(np.searchsorted(cells, c) for c in gl.cells)
     return Setup(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, glaciers=gl,
                  forcing=forcing, cells=cells, z_m=grid.elevation.ravel()[cells],
                  glacier_mask=gl.total_fraction.ravel()[cells] > 0,
-                 glacier_pos=tuple(np.searchsorted(cells, c) for c in gl.cells),
+                 glacier_pos=glacier_pos,
                  radiation=table, checksums=checksums, notes=tuple(notes), timings=timings,
-                 catchment_weight=weight, discharge=observed)
+                 catchment_weight=weight, discharge=observed,
+                 columns=Columns.build(cells.size, glacier_pos, gl.fractions), routing=routing)
 
 
 def runoff_inputs(config: Config, grid: Grid, cells: np.ndarray, checksums: dict, notes: list):
@@ -330,11 +446,75 @@ def cell_forcing(setup: Setup, params: KernelParams, positions: np.ndarray | Non
     return src.cells(x[c], y[r], z, params, month, (MIN_LAPSE_K_PER_M, MAX_INVERSION_K_PER_M))
 
 
+class ColumnDays:
+    """A cell-mode forcing provider seen through the kernel's day order and surface columns.
+
+    ``days`` maps the kernel's days (spin-up years first, then the record) to days of the
+    record, ``column_cell`` each surface column to its cell; :meth:`block` asks the
+    provider for each run of consecutive record days and gives (b - a, n_cols) float32.
+    """
+
+    def __init__(self, provider, days: np.ndarray, column_cell: np.ndarray):
+        self.provider = provider
+        self.days = np.asarray(days, dtype=np.int64)
+        self.column_cell = np.asarray(column_cell, dtype=np.int64)
+        n = int(np.max(self.column_cell)) + 1 if self.column_cell.size else 0
+        self._identity = self.column_cell.size == n and np.array_equal(self.column_cell, np.arange(n))
+
+    def block(self, a: int, b: int):
+        d = self.days[a:b]
+        cut = np.flatnonzero(np.diff(d) != 1) + 1
+        parts_t, parts_p = [], []
+        for run in np.split(d, cut):
+            if run.size == 0:
+                continue
+            t, p = self.provider.block(int(run[0]), int(run[-1]) + 1)
+            parts_t.append(np.asarray(t, dtype="float32"))
+            parts_p.append(np.asarray(p, dtype="float32"))
+        t = parts_t[0] if len(parts_t) == 1 else np.concatenate(parts_t)
+        p = parts_p[0] if len(parts_p) == 1 else np.concatenate(parts_p)
+        if not self._identity:
+            t, p = t[:, self.column_cell], p[:, self.column_cell]
+        return t, p
+
+
+def spinup_days(forcing: Forcing, spinup_years: int) -> np.ndarray:
+    """Indices of the days cycled before the record: its first balance years, repeated as needed.
+
+    ``spinup_years`` balance years are taken from the start of the record (the first
+    ``min(spinup_years, n_years)`` years, cycled when the record is shorter), so the state
+    (snow, firn, liquid water, cold content) meets the first modelled year spun up. Common
+    practice in distributed mass-balance modelling; 0 gives an empty start.
+
+    Returns
+    -------
+    days : ndarray int64
+        Indices into the record of the spin-up days, in the order they are run.
+    year : ndarray int64
+        Their spin-up year, 0 .. spinup_years - 1.
+    """
+    n_years = len(forcing.years)
+    if spinup_years <= 0 or n_years == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    yi = np.asarray(forcing.year_index)
+    per_year = [np.flatnonzero(yi == y) for y in range(n_years)]
+    days = [per_year[k % n_years] for k in range(int(spinup_years))]
+    labels = [np.full(d.size, k, dtype=np.int64) for k, d in enumerate(days)]
+    return np.concatenate(days).astype(np.int64), np.concatenate(labels)
+
+
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
              precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
              snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
-             scenarios: Scenarios | None = None) -> KernelResult:
+             scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None) -> KernelResult:
     """Run the kernel on a prepared setup.
+
+    The kernel runs over the setup's surface columns (:class:`Columns`); the result's last
+    axis is the columns, the first ``n_cells`` of which are the cells in ``cells`` order
+    (the glacier surface of a glacier cell), so ``result.sums[..., :n_cells]`` is per cell.
+    With ``[snow] spinup_years`` > 0 the first years of the record are cycled first
+    (:func:`spinup_days`) and only the record's years are returned; ``state_initial`` is
+    then the spun-up state, ``storage_start`` its snow + firn + liquid water.
 
     Parameters
     ----------
@@ -350,26 +530,74 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     snapshot_days : day boundaries at which to keep the cumulative balance (see kernel).
     cells : ndarray of int, optional
         Positions (into ``setup.cells`` order, ascending) to restrict the run to
-        (:meth:`Setup.select`).
+        (:meth:`Setup.select`). With snow redistribution the run covers every cell
+        upslope of them too (exact for the asked cells); the result holds the columns of
+        the asked cells only, in :meth:`Columns.select` order.
     scenarios : firnline.kernel.Scenarios, optional
         Monthly scenarios; replaces ``warming_k`` and ``precip_change_pct`` when given.
+    catchment_weight : ndarray (n_cells,) float, optional
+        Weight of each cell in the ``catchment`` region of the daily sums (default 1).
     """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
+    keep = None
     if cells is not None:
+        cells = np.asarray(cells, dtype=np.int64)
+        if setup.routing is not None:
+            from .snowslide import upslope
+            wide = np.flatnonzero(upslope(setup.routing, cells))
+            if wide.size != cells.size:
+                inner = setup.surface_columns.select(wide)
+                keep_cells = np.searchsorted(wide, cells)
+                mark = np.zeros(wide.size, bool)
+                mark[keep_cells] = True
+                keep = np.concatenate([keep_cells, inner.n_cells + np.flatnonzero(mark[inner.cell[inner.n_cells:]])])
+                cells = wide
+        if catchment_weight is not None:
+            catchment_weight = np.asarray(catchment_weight)[cells]
         setup = setup.select(cells)
     f = setup.forcing
     if params.use_radiation and setup.radiation is None:
         raise RuntimeError("the setup was prepared without the radiation table")
     if scenarios is None:
         scenarios = Scenarios.uniform(warming_k, precip_change_pct)
+    cols = setup.surface_columns
+    spin, spin_year = spinup_days(f, cfg.snow.spinup_years)
+    n_spin_years = int(spin_year[-1]) + 1 if spin.size else 0
+    days = np.concatenate([spin, np.arange(f.n_days)])
+    calendar = Calendar(np.asarray(f.month)[days], np.asarray(f.day_of_year)[days],
+                        np.concatenate([spin_year, np.asarray(f.year_index) + n_spin_years]),
+                        np.asarray(f.winter)[days])
     if f.cells_source is not None:      # several stations or a gridded file: the kernel's cell mode
-        forcing = cell_forcing(setup, params)
+        forcing = ColumnDays(cell_forcing(setup, params), days, cols.cell)
     else:
-        forcing = StationForcing(f.temperature_c, f.precipitation_mm, cfg.climate.station_elevation_m)
-    return run_kernel(Cells(setup.z_m, setup.glacier_mask, setup.radiation if params.use_radiation else None),
-                      Calendar.from_forcing(f), forcing, params, scenarios, snapshot_days=snapshot_days,
-                      progress=stage(progress, "days", f.n_days))
+        forcing = StationForcing(f.temperature_c[days], f.precipitation_mm[days], cfg.climate.station_elevation_m)
+    rad = None
+    if params.use_radiation:
+        rad = setup.radiation if cols.n == cols.n_cells else setup.radiation.subset(cols.cell)
+    if catchment_weight is None:
+        catchment_weight = setup.catchment_weight
+    weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
+    kcells = Cells(setup.z_m[cols.cell], cols.ice, rad, region=cols.region,
+                   area_m2=setup.grid.cell_area_m2 * cols.share, catchment_weight=weight,
+                   n_glaciers=len(setup.glaciers.names))
+    slide = None
+    if setup.routing is not None and cfg.snow.redistribution == "gravitational":
+        slide = Slide(setup.routing, cols.cell, cols.share)
+    asked = None if snapshot_days is None else sorted(set(int(k) for k in snapshot_days))
+    snaps = None if asked is None else sorted({k + spin.size for k in asked} | {int(spin.size)})
+    kres = run_kernel(kcells, calendar, forcing, params, scenarios, snapshot_days=snaps,
+                      progress=stage(progress, "days", calendar.n_days), slide=slide)
+    if spin.size:
+        kres = kres.after_spinup(n_spin_years)
+    if asked is not None:
+        # balances since the start of the record (the end of the spin-up)
+        ref = kres.snapshots[snaps.index(int(spin.size))]
+        kres = dataclasses.replace(kres, snapshots=np.stack([kres.snapshots[snaps.index(k + spin.size)] - ref
+                                                             for k in asked]))
+    if keep is not None:
+        kres = kres.columns(keep)
+    return kres
 
 
 # ----------------------------------------------------------------------------
@@ -386,6 +614,8 @@ class RunResult:
     summary : DataFrame with :data:`SUMMARY_COLUMNS`
     profiles : DataFrame with :data:`PROFILE_COLUMNS`
     gradients : DataFrame (glacier, balance_year, gradient_mwe_per_100m)
+    water_budget : DataFrame with :data:`firnline.water_budget.COLUMNS`
+    kernel : the kernel's result (per surface column; ``daily`` region sums for runoff)
     """
 
     setup: Setup
@@ -402,6 +632,8 @@ class RunResult:
     runoff: object = None
     #: Scores against ``[observations] discharge`` (firnline.runoff.gauge_scores), or None.
     gauge: dict | None = None
+    water_budget: pd.DataFrame | None = None
+    kernel: KernelResult | None = None
 
     def write(self, out_dir: str | Path | None = None) -> list[Path]:
         """Write every output file into ``out_dir`` (default: ``[output] dir``)."""
@@ -409,17 +641,60 @@ class RunResult:
         return write_run(self, Path(out_dir) if out_dir is not None else self.config.output.dir)
 
 
-def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray]:
-    """Per-year per-cell balances of one scenario, m w.e., each (n_years, n_cells) float32."""
+def column_fields(kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray]:
+    """Per-year per-column accumulation, ablation and seasonal balances, mm w.e., (n_years, n_cols).
+
+    Accumulation = snowfall + refreezing + deposition by sliding snow; ablation = melt of
+    snow, firn and ice + loss by sliding snow (the net gain or loss of a season by sliding
+    counts as deposition or as ablation: Cogley et al., 2011, glossary).
+    """
     s = scenario
-    acc_w, acc_s = kres.acc_winter[s], kres.acc_summer[s]
-    abl_w = kres.snow_melt_winter[s] + kres.ice_melt_winter[s]
-    abl_s = kres.snow_melt_summer[s] + kres.ice_melt_summer[s]
-    k = np.float32(1e-3)  # mm w.e. -> m w.e. (1 kg m-2 = 1 mm w.e.; common practice)
-    winter = (acc_w - abl_w) * k
-    summer = (acc_s - abl_s) * k
-    return {"accumulation": (acc_w + acc_s) * k, "ablation": (abl_w + abl_s) * k,
-            "winter_balance": winter, "summer_balance": summer, "annual_balance": winter + summer}
+    out = {}
+    for season, name in ((Season.WINTER, "winter"), (Season.SUMMER, "summer")):
+        def f(flux):
+            return kres.sums[season, flux, s].astype("float64")
+        redist = f(Flux.REDISTRIBUTION)
+        out[f"acc_{name}"] = f(Flux.SNOWFALL) + f(Flux.REFREEZING) + np.maximum(redist, 0.0)
+        out[f"abl_{name}"] = (f(Flux.SNOW_MELT) + f(Flux.FIRN_MELT) + f(Flux.ICE_MELT)
+                              + np.maximum(-redist, 0.0))
+    return out
+
+
+def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray]:
+    """Per-year per-cell fields of one scenario, m w.e., each (n_years, n_cells) float32.
+
+    The balances are those of each cell's glacier surface (its first column); accumulation,
+    ablation, snow at the year end (snow + firn), refreezing and the net gain by sliding snow
+    are area means over the whole cell, its columns blended by share (:meth:`Columns.blend`).
+    """
+    s = scenario
+    cols = setup.surface_columns
+    n = cols.n_cells
+    c = column_fields(kres, s)
+    k = 1e-3  # mm w.e. -> m w.e. (1 kg m-2 = 1 mm w.e.; common practice)
+    winter = (c["acc_winter"] - c["abl_winter"])[:, :n] * k
+    summer = (c["acc_summer"] - c["abl_summer"])[:, :n] * k
+    blend = cols.blend if kres.sums.shape[-1] == cols.n else (lambda v: v[..., :n])
+    out = {"accumulation": blend(c["acc_winter"] + c["acc_summer"]) * k,
+           "ablation": blend(c["abl_winter"] + c["abl_summer"]) * k,
+           "winter_balance": winter, "summer_balance": summer, "annual_balance": winter + summer}
+    if kres.firn_end is not None:
+        out["snow_end"] = blend(kres.snow_end[s].astype("float64") + kres.firn_end[s]) * k
+        out["refreezing"] = blend(kres.year_sum(Flux.REFREEZING)[s].astype("float64")) * k
+        out["redistribution"] = blend(kres.year_sum(Flux.REDISTRIBUTION)[s].astype("float64")) * k
+    return {name: v.astype("float32") for name, v in out.items()}
+
+
+def water_budget(setup: Setup, kres: KernelResult, scenario: int = 0,
+                 catchment_weight: np.ndarray | None = None) -> pd.DataFrame:
+    """``water_budget.csv`` of one scenario (see :mod:`firnline.water_budget`)."""
+    from . import water_budget as wb
+    cols = setup.surface_columns
+    s = scenario
+    terms = wb.column_budget(lambda flux: kres.year_sum(flux)[s], kres.storage_start[s], kres.storage_end[s])
+    weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
+    return wb.budget_table(terms, setup.grid.cell_area_m2 * cols.share, cols.region, weight,
+                           wb.region_names(setup.glaciers.names), [int(y) for y in setup.forcing.years])
 
 
 def glacier_metrics(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> dict:
@@ -469,11 +744,16 @@ def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[
         "annual_balance": "annual surface mass balance of the glacier surface",
         "winter_balance": "winter surface mass balance of the glacier surface (fixed-date system)",
         "summer_balance": "summer surface mass balance of the glacier surface (fixed-date system)",
-        "accumulation": "accumulation (snowfall) in the balance year",
-        "ablation": "ablation (melt of snow and ice) in the balance year",
+        "accumulation": "accumulation (snowfall, refreezing and deposition by sliding snow) in the balance year",
+        "ablation": "ablation (melt of snow, firn and ice and loss by sliding snow) in the balance year",
+        "snow_end": "snow and firn at the end of the balance year",
+        "refreezing": "rain and meltwater refrozen in the snow and firn in the balance year",
+        "redistribution": "net gain (+) or loss (-) by sliding snow in the balance year",
     }
     data = {}
     for name, ln in long_names.items():
+        if name not in fields:
+            continue
         where = on_glacier if name.endswith("balance") else None
         data[name] = (("balance_year", "y", "x"), to_grid(setup, fields[name], where),
                       {"units": "m w.e.", "long_name": ln})
@@ -521,13 +801,16 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
     met = glacier_metrics(setup, f, years)
     summary, profiles, gradients = tables(met, years)
     ds = fields_dataset(setup, f, years)
+    budget = water_budget(setup, kres, 0)
     t2 = time.perf_counter()
     series, gauge = runoff_of(setup, config, kres, 0)
     t3 = time.perf_counter()
-    timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1, runoff_s=t3 - t2)
+    timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1, runoff_s=t3 - t2,
+                   redistribution_s=float(kres.slide_seconds))
     return RunResult(setup=setup, config=config, warming_k=warming_k,
                      precip_change_pct=precip_change_pct, fields=ds, summary=summary,
-                     profiles=profiles, gradients=gradients, timings=timings, runoff=series, gauge=gauge)
+                     profiles=profiles, gradients=gradients, timings=timings, runoff=series, gauge=gauge,
+                     water_budget=budget, kernel=kres)
 
 
 def region_names(setup: Setup) -> list[str]:
@@ -563,7 +846,8 @@ def runoff_of(setup: Setup, config: Config, kres: KernelResult, scenario: int = 
 
 def parameters_used(config: Config) -> dict:
     """The model parameters of a config, as plain numbers (for run.json)."""
-    out = {"downscaling": dataclasses.asdict(config.downscaling), "melt": dataclasses.asdict(config.melt)}
+    out = {"downscaling": dataclasses.asdict(config.downscaling), "melt": dataclasses.asdict(config.melt),
+           "snow": dataclasses.asdict(config.snow)}
     if config.runoff is not None:
         from . import parameters
         out["runoff"] = {p.key: getattr(config.runoff, p.key) for p in parameters.in_section("runoff")}

@@ -58,6 +58,20 @@ STORAGE_SOURCE = ("Hock & Noetzli (1997), Nordic Hydrology 28, after Baker et al
                   "of glacier runoff about 350 h (firn), 30-100 h (snow) and 4-16 h (ice) (from memory)")
 ROUTING_STEP = ("it only routes the water released each day (firnline.runoff); fit it against "
                 "[observations] discharge")
+# firn, retention and refreezing ([snow]; see firnline.kernel and DEVELOPERS.md)
+FIRN_YEARS_SOURCE = ("Cuffey & Paterson (2010), The Physics of Glaciers, 4th ed., ch. 2 (from memory: on temperate "
+                     "glaciers with abundant meltwater firn turns to ice within a few years, e.g. 3-5 years at "
+                     "Upper Seward Glacier; decades to centuries on cold dry glaciers); 0 turns firn off (surviving "
+                     "snow stays snow, the behaviour before firn was modelled)")
+FIRN_FACTOR_SOURCE = ("common practice: the firn melt factor lies between those of snow and ice (firn is darker "
+                      "than snow, brighter than ice); 0.5 puts it midway")
+HOLDING_SOURCE = ("common practice (from memory: the irreducible liquid-water content of snow and firn is a few per "
+                  "cent of the pack mass, about 3-6 %)")
+COLD_DAYS_SOURCE = ("common practice (from memory): the thermal diffusivity of seasonal snow, about 4e-7 m2 s-1, "
+                    "gives (0.5 m)^2 / 4e-7 m2 s-1 = 7 days for a cold spell to reach half a metre into the pack; "
+                    "heat capacity of ice 2097 J kg-1 K-1 and latent heat 334 kJ kg-1 (common practice)")
+PROCESS_ONLY = ("a process constant of common practice that stake and geodetic balances hardly constrain; "
+                "set it from field knowledge")
 
 HOCK_2003 = ("Hock (2003), J. Hydrology 282: published ranges about 2.5-11.6 (snow) and "
              "6.6-20 (ice) mm w.e. d-1 K-1 (from memory)")
@@ -88,6 +102,7 @@ class Parameter:
     kind : str
         ``"number"``; ``"monthly"`` (one value or twelve, January first; the kernel gets
         twelve); ``"pair"`` (two numbers, low <= high; the kernel gets two names).
+
     low_open : bool
         ``low`` itself is not allowed.
     not_calibratable : str
@@ -146,6 +161,15 @@ PARAMETERS: tuple[Parameter, ...] = (
               (), low_open=True,
               not_calibratable="it shapes the radiation table built once from the DEM; fit "
                                "radiation_factor_snow and radiation_factor_ice instead"),
+    Parameter("snow", "firn_factor_share", "1", 0.0, 1.0, 0.5, None, ALL_METHODS, FIRN_FACTOR_SOURCE,
+              "firn melt factor = snow factor + share x (ice factor - snow factor)", ("firn_share",),
+              not_calibratable=PROCESS_ONLY),
+    Parameter("snow", "liquid_holding_fraction", "1", 0.0, 0.2, 0.05, None, ALL_METHODS, HOLDING_SOURCE,
+              "liquid water a snow or firn pack holds, share of its mass", ("holding_fraction",),
+              not_calibratable=PROCESS_ONLY),
+    Parameter("snow", "cold_exchange_days", "d", 0.0, 365.0, 7.0, None, ALL_METHODS, COLD_DAYS_SOURCE,
+              "time constant of the pack temperature following the air below 0 C", ("cold_days",),
+              low_open=True, not_calibratable=PROCESS_ONLY),
     Parameter("snow", "snow_density_kg_m3", "kg m-3", 50.0, 917.0, 250.0, None, ALL_METHODS,
               SNOW_DENSITY_SOURCE, "snow density that turns the slope's holding depth into a mass",
               (), not_calibratable=ROUTING_ONLY),
@@ -223,7 +247,7 @@ def kernel_values(cfg) -> dict[str, Any]:
     -------
     dict
         For example ``{"lapse_rate_k_per_m": (-0.0065,) * 12, "snow_c": 0.5, ...,
-        "ddf_snow": 3.0, ..., "method": "degree-day"}``.
+        "ddf_snow": 3.0, ..., "method": "degree-day", "refreezing": "cold-content"}``.
     """
     out: dict[str, Any] = {}
     for p in PARAMETERS:
@@ -235,4 +259,6 @@ def kernel_values(cfg) -> dict[str, Any]:
         elif p.kernel:
             out[p.kernel[0]] = float(value)
     out["method"] = cfg.melt.method
+    out["refreezing"] = cfg.snow.refreezing
+    out["firn_years"] = int(cfg.snow.firn_years)
     return out

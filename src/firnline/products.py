@@ -24,8 +24,11 @@ MAPS = [  # (variable in fields, file prefix, description)
     ("annual_balance", "annual_balance", "annual surface mass balance"),
     ("winter_balance", "winter_balance", "winter surface mass balance (fixed-date system)"),
     ("summer_balance", "summer_balance", "summer surface mass balance (fixed-date system)"),
-    ("accumulation", "accumulation", "accumulation (snowfall)"),
-    ("ablation", "ablation", "ablation (melt of snow and ice)"),
+    ("accumulation", "accumulation", "accumulation (snowfall, refreezing, deposition by sliding snow)"),
+    ("ablation", "ablation", "ablation (melt of snow, firn and ice, loss by sliding snow)"),
+    ("snow_end", "snow_end", "snow and firn at the end of the balance year"),
+    ("refreezing", "refreezing", "refrozen rain and meltwater"),
+    ("redistribution", "redistribution", "net gain (+) or loss (-) by sliding snow"),
 ]
 
 
@@ -87,8 +90,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
                  "valid_cells": setup.grid.n_valid},
         "record": {"first_day": str(setup.forcing.dates[0]), "last_day": str(setup.forcing.dates[-1]),
                    "balance_years": [int(y) for y in setup.forcing.years]},
-        "initial_condition": "no snow on any cell on the first day of the record; the snowpack "
-                             "then carries over between balance years",
+        "initial_condition": initial_condition(cfg, setup),
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
         "notes": setup.notes,
@@ -96,6 +98,19 @@ def run_json(result: RunResult, files: list[str]) -> dict:
         "timings_s": result.timings,
         "files": files,
     }
+
+
+def initial_condition(cfg, setup) -> dict:
+    """How the run started (run.json): the spin-up and the processes of ``[snow]``."""
+    n = int(cfg.snow.spinup_years)
+    years = [int(y) for y in setup.forcing.years]
+    cycled = [years[k % len(years)] for k in range(n)] if years else []
+    return {"spinup_years": n, "spinup_balance_years": cycled,
+            "description": (f"snow, firn, liquid water and cold content spun up by cycling the balance years "
+                            f"{', '.join(map(str, cycled))} before the first modelled year" if n else
+                            "no snow, firn, liquid water or cold content on the first day of the record"),
+            "redistribution": cfg.snow.redistribution, "refreezing": cfg.snow.refreezing,
+            "firn_years": int(cfg.snow.firn_years)}
 
 
 AGGREGATE = "all_glaciers"
@@ -147,8 +162,12 @@ def netcdf_cell_methods(config) -> dict:
                           "area: mean where land_ice",
         "winter_balance": f"time: sum (comment: daily balances summed over the {winter}) area: mean where land_ice",
         "summer_balance": f"time: sum (comment: daily balances summed over the {summer}) area: mean where land_ice",
-        "accumulation": "time: sum (comment: snowfall summed over the balance year) area: mean",
-        "ablation": "time: sum (comment: melt summed over the balance year) area: mean",
+        "accumulation": "time: sum (comment: snowfall, refreezing and deposition summed over the balance year) "
+                        "area: mean",
+        "ablation": "time: sum (comment: melt and loss by sliding summed over the balance year) area: mean",
+        "snow_end": "time: point (comment: snow and firn on the last day of the balance year) area: mean",
+        "refreezing": "time: sum (comment: refreezing summed over the balance year) area: mean",
+        "redistribution": "time: sum (comment: net gain by sliding snow over the balance year) area: mean",
     }
 
 
@@ -171,7 +190,11 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
         write_csv(st.path("summary.csv"), summary)
         write_csv(st.path("profiles.csv"), result.profiles)
         write_csv(st.path("balanced_budget.csv"), budget)
+        if result.water_budget is not None:
+            write_csv(st.path("water_budget.csv"), result.water_budget)
         for var, prefix, desc in MAPS:
+            if var not in ds:
+                continue
             for i, year in enumerate(years):
                 write_geotiff(st.path(f"{prefix}_{year}.tif"), ds[var].values[i], grid.transform, grid.crs,
                               [f"{desc}, balance year {year}"], "m w.e.", tags)

@@ -377,10 +377,15 @@ def glacier_view(setup: Setup) -> Setup:
     glaciers) depends only on glacier cells, and each cell's balance depends only on its
     own inputs, so ice-free cells need not be modelled. The grid, glaciers, forcing and
     notes are shared; ``cells``, ``z_m``, ``glacier_mask``, ``glacier_pos`` and the
-    radiation table are cut to the glacier cells.
+    radiation table are cut to the glacier cells (with snow redistribution: the glacier
+    cells and every cell upslope of them, whose sliding snow can reach them).
     """
     if setup.glacier_mask.all():
         return setup
+    if setup.routing is not None:
+        # snow slides onto the glaciers from above: keep every cell upslope of them (exact)
+        from .snowslide import upslope
+        return setup.select(np.flatnonzero(upslope(setup.routing, setup.glacier_mask)))
     return setup.select(np.flatnonzero(setup.glacier_mask))
 
 

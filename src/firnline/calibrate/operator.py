@@ -173,4 +173,4 @@ def modelled_values(setup: Setup, config: Config, operator: ObservationOperator)
     if setup.forcing.n_days > operator.n_days:
         setup = first_days(setup, operator.n_days)
     kres = simulate(setup, config, snapshot_days=operator.snapshot_days, cells=operator.positions)
-    return operator.apply(kres.snapshots[:, 0, :])
+    return operator.apply(kres.snapshots[:, 0, :operator.positions.size])   # the cells' own columns

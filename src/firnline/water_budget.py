@@ -1,0 +1,122 @@
+"""The water budget of each region per balance year (``water_budget.csv``): the books of the catchment.
+
+Regions: each glacier (its glacier surface columns, in the order of the outlines),
+``ice_free`` (every ice-free surface column: ice-free cells and the ice-free share of
+partly covered cells) and ``catchment`` (every modelled column, weighted by its catchment
+weight, 1 by default). Every term is a volume over the region divided by its area, mm.
+
+Budget identity
+---------------
+Per surface column and balance year (all mm w.e. over the column's area)::
+
+    precipitation = snowfall + rain
+    exchange      = redistribution change + exported     (snow moved to or from other valid cells)
+    storage       = snow + firn + liquid water (held in the pack) + glacier ice
+    storage_change = [snow + firn + liquid](year end) - [snow + firn + liquid](year start)
+                     + firn turned to ice - ice melt     (the change of glacier ice)
+    precipitation + redistribution_in - redistribution_out - exported
+        - runoff - storage_change = residual ~ 0
+
+with ``redistribution_in`` / ``redistribution_out`` the positive / negative parts of each
+column's yearly exchange, ``exported`` the snow it sent off the DEM edge or into nodata
+and ``runoff`` the water released by the column (rain and meltwater neither held nor
+refrozen, and ice melt). The kernel conserves water exactly (to float64 rounding per
+step), so the residual is float rounding of the stored per-year sums (float32 per
+column: about 1e-7 of the terms). The glacier ice itself is not a state of the model
+(its thickness is unlimited): only its change enters.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+COLUMNS = ["region", "balance_year", "area_km2", "precipitation_mm", "snowfall_mm", "rain_mm",
+           "redistribution_in_mm", "redistribution_out_mm", "exported_mm", "refreezing_mm", "snow_melt_mm",
+           "firn_melt_mm", "ice_melt_mm", "runoff_mm", "storage_change_mm", "residual_mm"]
+
+#: names of the two regions besides the glaciers
+ICE_FREE, CATCHMENT = "ice_free", "catchment"
+
+
+def region_names(glacier_names) -> list[str]:
+    """Region names in the order of the kernel's regions: the glaciers, ``ice_free``, ``catchment``."""
+    return [str(n) for n in glacier_names] + [ICE_FREE, CATCHMENT]
+
+
+def column_budget(year_sum, storage_start, storage_end) -> dict[str, np.ndarray]:
+    """The yearly budget terms of every surface column, mm w.e. over the column (float64).
+
+    Parameters
+    ----------
+    year_sum : callable(Flux) -> ndarray (n_years, n_cols)
+        The yearly sum of a kernel flux for one scenario.
+    storage_start : ndarray (n_cols,)
+        Snow + firn + liquid water before the first year, mm w.e.
+    storage_end : ndarray (n_years, n_cols)
+        The same at the end of each year.
+
+    Returns
+    -------
+    dict of ndarray (n_years, n_cols): the terms of :data:`COLUMNS` (without region, year, area).
+    """
+    from .kernel import Flux
+
+    def f(flux):
+        return np.asarray(year_sum(flux), dtype="float64")
+    snowfall, rain = f(Flux.SNOWFALL), f(Flux.RAIN)
+    change, exported = f(Flux.REDISTRIBUTION), f(Flux.EXPORTED)
+    exchange = change + exported
+    end = np.asarray(storage_end, dtype="float64")
+    start = np.concatenate([np.asarray(storage_start, dtype="float64")[None], end[:-1]])
+    ice_melt = f(Flux.ICE_MELT)
+    storage_change = end - start + f(Flux.FIRN_TO_ICE) - ice_melt
+    runoff = f(Flux.RELEASED_SNOW) + f(Flux.RELEASED_FIRN) + f(Flux.RELEASED_ICE)
+    precip = snowfall + rain
+    r_in, r_out = np.maximum(exchange, 0.0), np.maximum(-exchange, 0.0)
+    return {"precipitation_mm": precip, "snowfall_mm": snowfall, "rain_mm": rain,
+            "redistribution_in_mm": r_in, "redistribution_out_mm": r_out, "exported_mm": exported,
+            "refreezing_mm": f(Flux.REFREEZING), "snow_melt_mm": f(Flux.SNOW_MELT),
+            "firn_melt_mm": f(Flux.FIRN_MELT), "ice_melt_mm": ice_melt, "runoff_mm": runoff,
+            "storage_change_mm": storage_change,
+            "residual_mm": precip + r_in - r_out - exported - runoff - storage_change}
+
+
+def budget_table(terms: dict[str, np.ndarray], area_m2: np.ndarray, region: np.ndarray,
+                 catchment_weight: np.ndarray, names: list[str], years) -> pd.DataFrame:
+    """``water_budget.csv``: region means (mm) of the column terms, one row per region and year.
+
+    Parameters
+    ----------
+    terms : from :func:`column_budget`, each (n_years, n_cols)
+    area_m2 : ndarray (n_cols,)
+        Area each column stands for, m2.
+    region : ndarray (n_cols,) int
+        Region index of each column (glaciers, then ice-free = ``len(names) - 2``).
+    catchment_weight : ndarray (n_cols,)
+        Weight of each column in the ``catchment`` region.
+    names : from :func:`region_names`
+    years : balance-year labels
+    """
+    n_reg = len(names)
+    region = np.asarray(region, dtype=np.int64)
+    area = np.asarray(area_m2, dtype="float64")
+    w_cat = area * np.asarray(catchment_weight, dtype="float64")
+    # (n_regions, n_cols) weights: one row per region (a column counts once in its region), plus the catchment
+    reg_area = np.bincount(region, weights=area, minlength=n_reg - 1)[:n_reg - 1]
+    tot = {}
+    for key, v in terms.items():
+        per = np.stack([np.bincount(region, weights=v[y] * area, minlength=n_reg - 1)[:n_reg - 1]
+                        for y in range(v.shape[0])]) if v.shape[0] else np.zeros((0, n_reg - 1))
+        cat = v @ w_cat
+        tot[key] = np.concatenate([per, cat[:, None]], axis=1)         # (n_years, n_regions) volumes, mm m2
+    areas = np.concatenate([reg_area, [w_cat.sum()]])
+    rows = []
+    for r, name in enumerate(names):
+        a = areas[r]
+        for y, year in enumerate(years):
+            row = {"region": name, "balance_year": int(year), "area_km2": a / 1e6}
+            for key in terms:
+                row[key] = tot[key][y, r] / a if a > 0 else np.nan
+            rows.append(row)
+    return pd.DataFrame(rows, columns=COLUMNS)

@@ -30,9 +30,9 @@ def test_scenarios_report(builders, tmp_path):
     assert main(["scenarios", str(cfg), "--warming", "1", "2", "--out", str(out), "--quiet"]) == 0
     text = (out / "scenarios_report.html").read_text(encoding="utf-8")
     assert text.startswith("<!DOCTYPE html>") and "Warming and precipitation scenarios" in text
-    # the sweep's three figures, embedded byte for byte
+    # the sweep's four figures, embedded byte for byte
     figs = {(out / n).read_bytes() for n in ("ela_vs_warming.png", "balance_vs_warming.png",
-                                             "balance_profiles.png")}
+                                             "balance_profiles.png", "runoff_regimes.png")}
     assert set(_images(text)) == figs
     # every scenario row of scenarios.csv, the sensitivity, the rules, inputs, the caution
     t = pd.read_csv(out / "scenarios.csv")

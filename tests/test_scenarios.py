@@ -146,9 +146,9 @@ def test_more_precipitation_lowers_the_ela_and_raises_the_balance(builders, tmp_
 
 
 def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs(builders, tmp_path, monkeypatch):
-    """The scenarios are the kernel's extra axis: one simulate() call over the glacier cells only
-    (ice-free ground is not needed by any sweep product), with the numbers of one full run per
-    scenario."""
+    """The scenarios are the kernel's extra axis: one simulate() call over the glacier cells for the
+    balance products, with the numbers of one full run per scenario, and one over the whole
+    catchment for the runoff regimes (scenario_runoff_monthly.csv needs the ice-free ground)."""
     import firnline.scenarios as scen_mod
 
     cfg_path = builders.seasonal(tmp_path, years=2)
@@ -162,7 +162,7 @@ def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs
     real = scen_mod.simulate
     monkeypatch.setattr(scen_mod, "simulate", lambda st, *a, **k: calls.append(st.z_m.size) or real(st, *a, **k))
     sw = sweep(setup, [0.5, 1.5], [-10.0, 10.0])
-    assert calls == [72] and setup.z_m.size == 120 and len(sw.scenarios) == 5   # 24 x 3 of 40 x 3 cells
+    assert calls == [72, 120] and setup.z_m.size == 120 and len(sw.scenarios) == 5   # 24 x 3 of 40 x 3 cells
     for w, p in [(1.5, 10.0), (0.0, 0.0)]:
         one = firnline.run(cfg, warming_k=w, precip_change_pct=p, setup=setup)
         mine = sw.year_table[(sw.year_table.warming_k == w) & (sw.year_table.precip_change_pct == p)]
@@ -289,7 +289,7 @@ def test_scenarios_command_writes_every_file_with_the_contract_columns(builders,
     assert "mean_annual_balance_w+1.0_p-10.tif" in maps
     expected = {"scenarios.csv", "scenario_years.csv", "sensitivity.csv", "scenario_profiles.csv",
                 "scenario_budget.csv", "precip_offset.csv", "ela_vs_warming.png", "balance_vs_warming.png",
-                "balance_profiles.png",
+                "balance_profiles.png", "scenario_runoff_monthly.csv", "runoff_regimes.png",
                 "scenarios.json"} | maps
     assert names == expected                        # and no staging folder left behind
     t = pd.read_csv(out / "scenarios.csv")

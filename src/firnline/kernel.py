@@ -263,6 +263,8 @@ class KernelParams:
         Liquid water a snow or firn pack holds, share of its mass (refreezing scheme on).
     cold_days : d
         Time constant of the pack's cold content following the air below 0 C.
+    cold_layer_mm : mm w.e.
+        Mass of the top of the pack whose cold content follows the air.
     refreezing : str
         ``"cold-content"`` (retention and refreezing on) or ``"none"``.
     method : str
@@ -285,6 +287,7 @@ class KernelParams:
     firn_share: float = 0.5
     holding_fraction: float = 0.0
     cold_days: float = 7.0
+    cold_layer_mm: float = 500.0
     refreezing: str = "none"
     method: str = "degree-day"
 
@@ -524,6 +527,7 @@ class KernelResult:
         return KernelResult(sums=self.sums[:, :, :, n_years:], snow_end=self.snow_end[:, n_years:],
                             state_initial=self.state_initial, state_final=self.state_final,
                             snapshots=self.snapshots, firn_end=self.firn_end[:, n_years:],
+                            slide_seconds=self.slide_seconds,
                             storage_end=self.storage_end[:, n_years:],
                             storage_start=self.storage_end[:, n_years - 1], daily=days,
                             region_area_m2=self.region_area_m2, year_days=self.year_days[n_years:])
@@ -695,16 +699,18 @@ def firn_then_ice(firn, left, f_firn, f_ice, inv_f_firn, ice):
 
 
 @njit(inline="always", cache=True, error_model="numpy")
-def cold_content_step(cold, pack, t, exchange):
+def cold_content_step(cold, pack, t, exchange, layer):
     """One day of the pack's cold content following the air below 0 C (the cold-content scheme).
 
     The cold content is the mass of water the pack can refreeze, mm w.e.: a pack of mass
     ``M`` (mm w.e.) at a mean ``dT`` below 0 C holds ``M * dT * c_i / L_f`` of it, with
     c_i = 2097 J kg-1 K-1 and L_f = 334 kJ kg-1 (common practice). On days below 0 C it
-    relaxes towards the air's, ``target = M * (-T) * c_i / L_f``, by the share
+    relaxes towards the air's, ``target = min(M, layer) * (-T) * c_i / L_f``, by the share
     ``exchange = 1 - exp(-1 d / tau)`` of the difference (a bulk heat exchange with time
     constant tau, ``[snow] cold_exchange_days``); on days at or above 0 C it is only spent by
-    refreezing; it vanishes with the pack.
+    refreezing; it vanishes with the pack. Only the top ``layer`` mm w.e. of the pack
+    (``[snow] cold_layer_mm``, about the depth the yearly temperature wave reaches) follows
+    the air: deep firn holds no cold content.
 
     Parameters
     ----------
@@ -716,13 +722,15 @@ def cold_content_step(cold, pack, t, exchange):
         Air temperature, deg C.
     exchange : float
         Daily exchange share (0 turns the scheme off).
+    layer : float
+        Mass of the pack's top layer that follows the air, mm w.e.
 
     Returns
     -------
     float
         Cold content, mm w.e.
     """
-    target = COLD_PER_K * pack * max(-t, 0.0)
+    target = COLD_PER_K * min(pack, layer) * max(-t, 0.0)
     c = cold + exchange * (target - cold)
     c = c if t < 0.0 else cold
     return c if pack > 0.0 else 0.0
@@ -766,7 +774,7 @@ DayArrays = namedtuple("DayArrays", "t_station p_station lapse month season year
 ScenarioArrays = namedtuple("ScenarioArrays", "warming precip_scale")
 ParamValues = namedtuple("ParamValues", "snow_c rain_c inv_span threshold_c ddf_snow ddf_ice "
                                         "inv_ddf_snow melt_factor rad_snow rad_ice firn_share ddf_firn "
-                                        "inv_ddf_firn holding exchange firn_years n_glaciers want_daily")
+                                        "inv_ddf_firn holding exchange cold_layer firn_years n_glaciers want_daily weighted")
 Targets = namedtuple("Targets", "state running cum sums snow_end snapshots layers firn_end storage_end daily")
 
 
@@ -836,7 +844,7 @@ def _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, inv_f_snow, inv_f_fir
     snow -= snow_melt
     firn -= firn_melt
     pack = snow + firn
-    cold = cold_content_step(st[_COLD_CONTENT][i], pack, t, par.exchange)
+    cold = cold_content_step(st[_COLD_CONTENT][i], pack, t, par.exchange, par.cold_layer)
     water = rain + snow_melt + firn_melt + st[_LIQUID][i]
     refrozen, held, out = refreeze_and_hold(water, cold, pack, par.holding)
     snow += refrozen
@@ -1014,7 +1022,7 @@ def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c
                         v += day_rows[f, i] * vol[i]
                     term = N_DAY_ROWS if (f == N_DAY_ROWS - 3 and g == ice_free) else f
                     out.daily[tid, s, dd, g, term] += v
-            for f in range(N_DAY_ROWS):
+            for f in range(N_DAY_ROWS if par.weighted else 0):   # else: the sum of the regions, later
                 v = 0.0
                 v_free = 0.0
                 for i in range(m):
@@ -1100,7 +1108,8 @@ def _day_arrays(calendar: Calendar, params: KernelParams, station: StationForcin
                      index=np.arange(n_days, dtype=np.int64))
 
 
-def _param_values(params: KernelParams, n_glaciers: int = 1, want_daily: bool = False) -> ParamValues:
+def _param_values(params: KernelParams, n_glaciers: int = 1, want_daily: bool = False,
+                  weighted: bool = True) -> ParamValues:
     span = params.rain_c - params.snow_c
 
     def inv(x):
@@ -1117,8 +1126,9 @@ def _param_values(params: KernelParams, n_glaciers: int = 1, want_daily: bool = 
                        ddf_firn=float(ddf_firn), inv_ddf_firn=float(inv(ddf_firn)),
                        holding=float(params.holding_fraction) if on else 0.0,
                        exchange=float(-np.expm1(-1.0 / params.cold_days)) if on else 0.0,
+                       cold_layer=float(params.cold_layer_mm),
                        firn_years=int(params.firn_years), n_glaciers=int(n_glaciers),
-                       want_daily=bool(want_daily))
+                       want_daily=bool(want_daily), weighted=bool(weighted))
 
 
 def _slice_days(days: DayArrays, a: int, b: int) -> DayArrays:
@@ -1148,33 +1158,49 @@ def _slide(slide: Slide, out: Targets, season: int, n_cells: int) -> float:
 
     from . import snowslide
     t0 = time.perf_counter()
-    col, share = slide.column_cell, slide.column_share
-    snow_col = out.state[_SNOW]            # (n_scen, n_cols) views
-    ns = snow_col.shape[0]
+    col = np.ascontiguousarray(slide.column_cell, dtype=np.int64)
+    share = np.ascontiguousarray(slide.column_share, dtype="float64")
+    ns = out.state.shape[1]
     cell_snow = np.zeros((ns, n_cells))
     cell_firn = np.zeros((ns, n_cells))
-    for sc in range(ns):
-        cell_snow[sc] = np.bincount(col, weights=share * snow_col[sc], minlength=n_cells)
-        cell_firn[sc] = np.bincount(col, weights=share * out.state[_FIRN, sc], minlength=n_cells)
+    _gather_cells(col, share, out.state, cell_snow, cell_firn)
     before = cell_snow.copy()
     change = np.zeros_like(cell_snow)
     exported = np.zeros_like(cell_snow)
     snowslide.redistribute(slide.routing, cell_snow, change=change, exported=exported, immobile=cell_firn)
-    for sc in range(ns):
-        moved = np.flatnonzero((change[sc] != 0.0) | (exported[sc] != 0.0))
-        if moved.size == 0:
-            continue
-        hit = np.isin(col, moved)
-        c = col[hit]
-        ch, ex, b = change[sc, c], exported[sc, c], before[sc, c]
-        frac = np.divide(snow_col[sc, hit], b, out=np.zeros_like(b), where=b > 0)
-        loss = ch < 0.0
-        col_change = np.where(loss, ch * frac, ch)
-        col_ex = np.where(loss, ex * frac, ex)
-        snow_col[sc, hit] = np.maximum(snow_col[sc, hit] + col_change, 0.0)
-        out.running[season, _REDIST, sc, hit] += col_change
-        out.running[season, _EXPORTED, sc, hit] += col_ex
+    _scatter_columns(col, out.state, out.running, season, before, change, exported)
     return time.perf_counter() - t0
+
+
+@njit(cache=True, error_model="numpy")
+def _gather_cells(col, share, state, cell_snow, cell_firn):
+    """Share-weighted snow and firn of each cell from its columns (scenarios x cells)."""
+    for sc in range(state.shape[1]):
+        for j in range(col.size):
+            c = col[j]
+            cell_snow[sc, c] += share[j] * state[_SNOW, sc, j]
+            cell_firn[sc, c] += share[j] * state[_FIRN, sc, j]
+
+
+@njit(cache=True, error_model="numpy")
+def _scatter_columns(col, state, running, season, before, change, exported):
+    """Each cell's change by sliding back to its columns (see :func:`_slide`), with the
+    season's REDISTRIBUTION and EXPORTED sums of each column."""
+    for sc in range(state.shape[1]):
+        for j in range(col.size):
+            c = col[j]
+            ch = change[sc, c]
+            ex = exported[sc, c]
+            if ch == 0.0 and ex == 0.0:
+                continue
+            if ch < 0.0:
+                b = before[sc, c]
+                frac = state[_SNOW, sc, j] / b if b > 0.0 else 0.0
+                ch *= frac
+                ex *= frac
+            state[_SNOW, sc, j] = max(state[_SNOW, sc, j] + ch, 0.0)
+            running[season, _REDIST, sc, j] += ch
+            running[season, _EXPORTED, sc, j] += ex
 
 
 def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
@@ -1246,7 +1272,8 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                              wcat=np.ascontiguousarray(area * 1e-3 * weight))
     days = _day_arrays(calendar, params, station, rad, snaps)
     n_regions = cells.n_regions
-    par = _param_values(params, cells.n_glaciers, daily)
+    weighted = bool(np.any(weight != 1.0))
+    par = _param_values(params, cells.n_glaciers, daily, weighted)
     scen = ScenarioArrays(warming=scenarios.warming_k, precip_scale=scenarios.precip_scale)
 
     state = np.zeros((N_STATE, ns, n), dtype="float64")
@@ -1269,13 +1296,18 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
         with numba.parallel_chunksize(TASK_CHUNKSIZE):
             slide_s = _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days,
                              progress, slide, calendar)
+    daily_sums = None
+    if daily:
+        daily_sums = out.daily.sum(axis=0)
+        if not weighted:    # every catchment weight is 1: the catchment is the sum of the regions
+            daily_sums[:, :, n_regions - 1] = daily_sums[:, :, :n_regions - 1].sum(axis=2)
     region_area = np.concatenate([np.bincount(region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
                                   [float(np.sum(area * weight))]])
     year_days = np.bincount(np.asarray(calendar.year_index, dtype=np.int64), minlength=n_years)
     return KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
                         state_final=out.state, snapshots=out.snapshots if snaps else None,
                         year_days=year_days, firn_end=out.firn_end, storage_end=out.storage_end,
-                        storage_start=np.zeros((ns, n)), daily=out.daily.sum(axis=0) if daily else None,
+                        storage_start=np.zeros((ns, n)), daily=daily_sums,
                         region_area_m2=region_area, slide_seconds=slide_s)
 
 

@@ -506,7 +506,8 @@ def spinup_days(forcing: Forcing, spinup_years: int) -> np.ndarray:
 def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
              precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
              snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
-             scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None) -> KernelResult:
+             scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None,
+             daily: bool = True) -> KernelResult:
     """Run the kernel on a prepared setup.
 
     The kernel runs over the setup's surface columns (:class:`Columns`); the result's last
@@ -536,7 +537,10 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     scenarios : firnline.kernel.Scenarios, optional
         Monthly scenarios; replaces ``warming_k`` and ``precip_change_pct`` when given.
     catchment_weight : ndarray (n_cells,) float, optional
-        Weight of each cell in the ``catchment`` region of the daily sums (default 1).
+        Weight of each cell in the ``catchment`` region of the daily sums (default:
+        ``setup.catchment_weight``, else 1).
+    daily : bool
+        Keep the daily region sums (``KernelResult.daily``, for runoff); False saves their cost.
     """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
@@ -587,7 +591,8 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     asked = None if snapshot_days is None else sorted(set(int(k) for k in snapshot_days))
     snaps = None if asked is None else sorted({k + spin.size for k in asked} | {int(spin.size)})
     kres = run_kernel(kcells, calendar, forcing, params, scenarios, snapshot_days=snaps,
-                      progress=stage(progress, "days", calendar.n_days), slide=slide)
+                      progress=stage(progress, "days", calendar.n_days), slide=slide,
+                      daily=daily)
     if spin.size:
         kres = kres.after_spinup(n_spin_years)
     if asked is not None:

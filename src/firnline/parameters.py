@@ -70,6 +70,10 @@ HOLDING_SOURCE = ("common practice (from memory: the irreducible liquid-water co
 COLD_DAYS_SOURCE = ("common practice (from memory): the thermal diffusivity of seasonal snow, about 4e-7 m2 s-1, "
                     "gives (0.5 m)^2 / 4e-7 m2 s-1 = 7 days for a cold spell to reach half a metre into the pack; "
                     "heat capacity of ice 2097 J kg-1 K-1 and latent heat 334 kJ kg-1 (common practice)")
+COLD_LAYER_SOURCE = ("common practice (from memory): the yearly temperature wave reaches an e-folding depth "
+                     "sqrt(kappa P / pi) = 2 m into snow and firn (kappa about 4e-7 m2 s-1, P one year); "
+                     "2 m at about 400 kg m-3, half of it as cold as the air on average, is about 500 mm w.e. "
+                     "Deeper snow and firn do not follow the air and hold no cold content")
 PROCESS_ONLY = ("a process constant of common practice that stake and geodetic balances hardly constrain; "
                 "set it from field knowledge")
 
@@ -170,6 +174,9 @@ PARAMETERS: tuple[Parameter, ...] = (
     Parameter("snow", "cold_exchange_days", "d", 0.0, 365.0, 7.0, None, ALL_METHODS, COLD_DAYS_SOURCE,
               "time constant of the pack temperature following the air below 0 C", ("cold_days",),
               low_open=True, not_calibratable=PROCESS_ONLY),
+    Parameter("snow", "cold_layer_mm", "mm w.e.", 0.0, 10000.0, 500.0, None, ALL_METHODS, COLD_LAYER_SOURCE,
+              "mass of the top of the pack whose cold content follows the air", ("cold_layer_mm",),
+              not_calibratable=PROCESS_ONLY),
     Parameter("snow", "snow_density_kg_m3", "kg m-3", 50.0, 917.0, 250.0, None, ALL_METHODS,
               SNOW_DENSITY_SOURCE, "snow density that turns the slope's holding depth into a mass",
               (), not_calibratable=ROUTING_ONLY),

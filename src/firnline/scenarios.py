@@ -254,15 +254,16 @@ class Sweep:
         return to_grid(self.setup, self.mean_balance[scenario], where=self.setup.glacier_mask)
 
 
-def run_scenarios(setup: Setup, cfg: Config, defs: Sequence[Scenario], progress: Progress = None):
+def run_scenarios(setup: Setup, cfg: Config, defs: Sequence[Scenario], progress: Progress = None,
+                  daily: bool = True):
     """One kernel call for every scenario (uniform ones as uniform steps, monthly ones per month)."""
     if all(s.uniform for s in defs):
         return simulate(setup, cfg, [s.warming_k[0] for s in defs], [s.precip_change_pct[0] for s in defs],
-                        progress=progress)
+                        progress=progress, daily=daily)
     from .kernel import Scenarios
     scen = Scenarios(np.array([s.warming_k for s in defs], dtype="float64"),
                      np.array([s.precip_scale for s in defs], dtype="float64"))
-    return simulate(setup, cfg, progress=progress, scenarios=scen)
+    return simulate(setup, cfg, progress=progress, scenarios=scen, daily=daily)
 
 
 def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequence[float] = (0.0,),
@@ -298,7 +299,7 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
     full = setup
     setup = glacier_view(setup)
     t0 = time.perf_counter()
-    kres = run_scenarios(setup, cfg, defs, progress)
+    kres = run_scenarios(setup, cfg, defs, progress, daily=setup is full)   # daily: for the runoff regimes
     t1 = time.perf_counter()
     years = [int(y) for y in setup.forcing.years]
     area = setup.grid.cell_area_m2

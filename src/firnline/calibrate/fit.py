@@ -244,7 +244,8 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
         key = tuple(sorted((k, v) for k, v in values.items() if k not in routing))
         if last_kernel.get("key") != key:
             snaps = op.snapshot_days if op is not None else None
-            last_kernel.update(key=key, kres=simulate(short, trial, snapshot_days=snaps))
+            last_kernel.update(key=key, kres=simulate(short, trial, snapshot_days=snaps,
+                                                                daily=target is not None))
             count["n"] += 1
         return last_kernel["kres"]
 

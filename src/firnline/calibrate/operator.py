@@ -172,5 +172,5 @@ def modelled_values(setup: Setup, config: Config, operator: ObservationOperator)
     """
     if setup.forcing.n_days > operator.n_days:
         setup = first_days(setup, operator.n_days)
-    kres = simulate(setup, config, snapshot_days=operator.snapshot_days, cells=operator.positions)
+    kres = simulate(setup, config, snapshot_days=operator.snapshot_days, cells=operator.positions, daily=False)
     return operator.apply(kres.snapshots[:, 0, :operator.positions.size])   # the cells' own columns

@@ -10,8 +10,17 @@ import pytest
 
 from conftest import constant_record, kernel_params
 from firnline import snowslide
-from firnline.kernel import (COLD_PER_K, Calendar, Cells, Daily, Flux, Scenarios, Slide, State, StationForcing,
-                             run_kernel)
+from firnline.kernel import (
+    COLD_PER_K,
+    Calendar,
+    Cells,
+    Daily,
+    Flux,
+    Slide,
+    State,
+    StationForcing,
+    run_kernel,
+)
 from firnline.model import Columns
 from firnline.terrain import slope_aspect
 from firnline.water_budget import budget_table, column_budget

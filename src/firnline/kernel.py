@@ -102,9 +102,9 @@ and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from collections import namedtuple
-import dataclasses
 from dataclasses import dataclass
 from enum import IntEnum
 from typing import Callable, Protocol, Sequence
@@ -774,7 +774,8 @@ DayArrays = namedtuple("DayArrays", "t_station p_station lapse month season year
 ScenarioArrays = namedtuple("ScenarioArrays", "warming precip_scale")
 ParamValues = namedtuple("ParamValues", "snow_c rain_c inv_span threshold_c ddf_snow ddf_ice "
                                         "inv_ddf_snow melt_factor rad_snow rad_ice firn_share ddf_firn "
-                                        "inv_ddf_firn holding exchange cold_layer firn_years n_glaciers want_daily weighted")
+                                        "inv_ddf_firn holding exchange cold_layer firn_years n_glaciers "
+                                        "want_daily weighted")
 Targets = namedtuple("Targets", "state running cum sums snow_end snapshots layers firn_end storage_end daily")
 
 

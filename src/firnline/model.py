@@ -31,8 +31,18 @@ from .config import Config
 from .forcing import Forcing, load_forcing
 from .glaciers import Glaciers
 from .grid import Grid, file_checksum, read_dem
-from .kernel import (Calendar, Cells, Flux, KernelParams, KernelResult, Scenarios, Season, Slide, StationForcing,
-                     run_kernel)
+from .kernel import (
+    Calendar,
+    Cells,
+    Flux,
+    KernelParams,
+    KernelResult,
+    Scenarios,
+    Season,
+    Slide,
+    StationForcing,
+    run_kernel,
+)
 from .metrics import YearMetrics, glacier_year
 from .progress import Progress, stage
 from .provenance import CAUTION

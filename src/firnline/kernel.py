@@ -12,7 +12,9 @@ Each day, for each cell ``c`` and each scenario ``s`` (``m`` the day's calendar 
     snow += snowfall                              (snowfall is added before melt)
     potential snow melt = F_snow * (T - threshold)+
     snow melt = min(snow, potential)
-    ice melt (glacier ice only) = F_ice * degree-days left once the snow is gone
+    firn melt (glacier surfaces) = F_firn * degree-days left once the snow is gone,
+                                   F_firn = F_snow + firn_share * (F_ice - F_snow)
+    ice melt (glacier surfaces)  = F_ice * degree-days left once snow and firn are gone
 
 with the melt factors ``F`` of the chosen method (:class:`Method`), one small jitted
 function per published equation:
@@ -23,21 +25,39 @@ function per published equation:
   radiation_factor * I, I the cell's potential clear-sky direct radiation for that day
   of year (W m-2).
 
-Rain is not accumulation (it runs off; no refreezing yet). Accumulation = snowfall,
-ablation = snow melt + ice melt, balance = accumulation - ablation, all mm w.e. The
-balance of a glacier cell is that of its glacier surface; ice-free ground keeps a
-seasonal snowpack but cannot lose ice.
+Then the cold-content scheme (``refreezing = "cold-content"``): the pack's cold content
+(the water its top ``cold_layer_mm`` can refreeze) follows the air below 0 C with the
+time constant ``cold_days`` (:func:`cold_content_step`); rain, the day's melt and the
+water already held refreeze as far as the cold content allows, then are held up to
+``holding_fraction`` of the pack's mass, and the rest is released
+(:func:`refreeze_and_hold`). Released water is labelled by origin: firn melt leaving the
+firn, ice melt and rain on bare ice, the rest leaving the snow pack (on ice-free ground
+everything released is "ground" water).
 
-State and initial condition: no snow on any cell at the first day of the record (the
-start of a balance year, by default 1 October); the snowpack then carries over from one
-balance year to the next. Snow that survives a summer stays in the pack and counts as
-accumulation of the year it fell in.
+At the end of each balance year the firn turns over (:func:`_firn_turnover`): snow that
+survived the year on a glacier surface becomes the youngest firn layer, the year's firn
+melt is taken from the youngest layers, and the layer older than ``firn_years`` becomes
+glacier ice (it leaves the pack). Ice-free ground keeps its snow as snow.
+
+Snow redistribution (``Slide``): at day boundaries every :data:`SLIDE_INTERVAL_DAYS` days
+and before the last day of each balance year, the snow above each cell's holding
+capacity slides down the steepest descent (:mod:`firnline.snowslide`, Gruber 2007 with
+the holding depth of Bernhardt & Schulz 2010); the change of each column is its
+``REDISTRIBUTION`` flux, snow sent off the DEM or into nodata is ``EXPORTED``.
+
+Accumulation = snowfall + refreezing + deposition by sliding snow; ablation = melt of
+snow, firn and ice + loss by sliding snow; balance = accumulation - ablation, all mm w.e.
+(Cogley et al., 2011, glossary). Rain that is not refrozen is not accumulation.
+
+State and initial condition: the state (snow, firn and its age layers, liquid water,
+cold content) starts empty at the first kernel day; the caller (:func:`firnline.model.simulate`)
+spins it up by running the first ``[snow] spinup_years`` balance years before the record
+and keeps only the record's years (:meth:`KernelResult.after_spinup`).
 
 Names, not positions
 --------------------
-:class:`State` names the per-cell state (``SNOW`` today; ``FIRN``, ``LIQUID`` and
-``COLD_CONTENT`` are laid out and carried, zero until the processes that fill them
-arrive), :class:`Flux` the daily fluxes that are summed per season (:class:`Season`),
+:class:`State` names the per-column state, :class:`Flux` the daily fluxes that are summed
+per season (:class:`Season`), :class:`Daily` the terms of the daily region sums and
 :class:`Method` the melt equations. Results are indexed by these names
 (``result.season_sum(Flux.SNOWFALL, Season.WINTER)``), never by literal positions.
 
@@ -48,10 +68,12 @@ built from a config in one place, :meth:`KernelParams.from_config`).
 Surfaces
 --------
 A kernel cell is one *surface column*: ``Cells.ice`` says whether its surface is glacier
-ice. Today a cell with any glacier cover is one glacier column. Partial cells as two
-surfaces (glacier share and ice-free share, issue 11) become two columns of the same
-DEM cell - the kernel loop does not change; the caller lists the cell twice (once with
-``ice=True``, once with ``ice=False``) and blends the two columns' results by share.
+ice. A DEM cell partly covered by glacier is two (or more) columns: its glacier surface
+and its ice-free share (:class:`firnline.model.Columns`); the kernel loop does not care,
+the caller blends the columns' results by share. ``Cells.region``, ``area_m2`` and
+``catchment_weight`` say which region each column counts in and with what area for the
+daily region sums (:attr:`KernelResult.daily`, m3 per day: each glacier, ``ice_free``,
+``catchment``).
 
 Forcing: two modes
 ------------------
@@ -95,9 +117,10 @@ dynamically (:data:`TASK_CHUNKSIZE`), so a thread slowed by a competing program 
 hold up the other, and station mode makes few parallel calls (:data:`GROUP_CELLS` cells
 each) so there are few barriers to wait at.
 
-Memory: state (states x scenarios x cells, float64) and results (seasons x fluxes x
-scenarios x years x cells, float32); no (days x cells) array is ever made in station mode,
-and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
+Memory: state (states x scenarios x cells and firn_years age layers, float64), results
+(seasons x fluxes x scenarios x years x cells, float32) and the daily region sums (threads x
+scenarios x days x regions x terms, float64, only when asked for); no (days x cells) array is
+ever made in station mode, and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
 """
 
 from __future__ import annotations

@@ -6,6 +6,7 @@ no test module imports from another.
 
 from __future__ import annotations
 
+import enum
 import warnings
 from pathlib import Path
 from types import SimpleNamespace
@@ -191,6 +192,22 @@ def _calibration_case(tmp_path, truth_values: dict, start: dict) -> dict:
             "stake_rows": CALIBRATION_STAKE_ROWS}
 
 
+class Daily(enum.IntEnum):
+    """The daily terms of the runoff contract (the kernel's ``firnline.kernel.Daily`` has the same
+    names and values; tests/test_runoff_books.py checks that), for hand-made daily arrays."""
+
+    RAIN = 0
+    SNOWFALL = 1
+    SNOW_MELT = 2
+    FIRN_MELT = 3
+    ICE_MELT = 4
+    REFREEZING = 5
+    RELEASED_SNOW = 6
+    RELEASED_FIRN = 7
+    RELEASED_ICE = 8
+    RELEASED_GROUND = 9
+
+
 def one_sentence_no_traceback(err: str) -> str:
     assert "Traceback" not in err
     lines = [ln for ln in err.strip().splitlines() if ln.strip()]
@@ -274,4 +291,4 @@ def builders():
                            calibration_sections=calibration_sections,
                            one_sentence_no_traceback=one_sentence_no_traceback,
                            kernel_params=kernel_params, constant_record=constant_record,
-                           station_run=station_run)
+                           station_run=station_run, Daily=Daily)

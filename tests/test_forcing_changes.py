@@ -209,6 +209,23 @@ def test_scenarios_command_with_change_files_writes_their_maps(builders, tmp_pat
     assert s["monthly_warming_k"][5] == 2.0 and s["map"] == "mean_annual_balance_summer.tif"
 
 
+@pytest.mark.parametrize("force", [False, True])
+def test_a_change_file_inside_the_output_folder_is_never_overwritten(builders, tmp_path, capsys, force):
+    """The change files named on the command line are inputs of the claim: --force never
+    replaces them (DESIGN.md: `--force` never overwrites an input)."""
+    cfg = plane(builders, tmp_path)
+    out = tmp_path / "sw"
+    out.mkdir()
+    a = write_change_file(out / "summer.csv", [0, 0, 0, 0, 1, 2, 2, 2, 1, 0, 0, 0], [0.0] * 12)
+    before = builders.snapshot(out)
+    rc = main(["scenarios", str(cfg), "--changes", str(a), "--out", str(out), "--quiet"]
+              + (["--force"] if force else []))
+    assert rc == 2
+    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+    assert "summer.csv" in line and "input" in line
+    assert builders.snapshot(out) == before
+
+
 @pytest.mark.parametrize("args,words", [
     (["--changes"], "--changes needs one or more change files"),
     (["--changes", "nowhere.csv"], "change file not found"),

@@ -1,20 +1,20 @@
 """From the kernel's daily water volumes per region to runoff.csv, runoff_monthly.csv and
 the regime; the [runoff] config rows; gauge scores.
 
-The kernel's daily seam (``KernelResult.daily``, (n_scen, n_days, n_regions, n_terms) m3 per
-day, terms named by the IntEnum ``Daily``) is stood in for by a small synthetic array with
-the same term names.
+The kernel's daily region volumes (``KernelResult.daily``, (n_scen, n_days, n_regions, n_terms)
+m3 per day, terms named by the IntEnum ``kernel.Daily``) are stood in for by small synthetic
+arrays indexed by conftest's ``Daily`` (checked there to match the kernel's names).
 """
 
 from __future__ import annotations
 
-import enum
 import math
 
 import numpy as np
 import pandas as pd
 import pytest
 
+from conftest import Daily, write_outlines
 from firnline import parameters
 from firnline.errors import InputError
 from firnline.observations import parse_table
@@ -32,22 +32,6 @@ from firnline.runoff import (
     regime,
     runoff_series,
 )
-
-
-class Daily(enum.IntEnum):
-    """The contract's daily terms (the kernel's own enum has these names)."""
-
-    RAIN = 0
-    SNOWFALL = 1
-    SNOW_MELT = 2
-    FIRN_MELT = 3
-    ICE_MELT = 4
-    REFREEZING = 5
-    RELEASED_SNOW = 6
-    RELEASED_FIRN = 7
-    RELEASED_ICE = 8
-    RELEASED_GROUND = 9
-
 
 REGIONS = ("north", "south", "ice_free", "catchment")
 AREA = np.array([4.0e6, 1.0e6, 81.4e6, 86.4e6])
@@ -289,7 +273,6 @@ def test_catchment_polygon_weights_cells_by_their_exact_share(tmp_path):
     import shapely
     from rasterio.transform import from_origin
 
-    from conftest import write_outlines
     from firnline.catchment import catchment_weight
 
     tr = from_origin(500000.0, 5200000.0, 100.0, 100.0)

@@ -642,8 +642,7 @@ class RunResult:
     profiles: pd.DataFrame
     gradients: pd.DataFrame
     timings: dict
-    #: Daily routed runoff of every region (firnline.runoff.RunoffSeries), once the kernel
-    #: gives the daily region volumes (``KernelResult.daily``); None before.
+    #: Daily routed runoff of every region (firnline.runoff.RunoffSeries).
     runoff: object = None
     #: Scores against ``[observations] discharge`` (firnline.runoff.gauge_scores), or None.
     gauge: dict | None = None
@@ -702,10 +701,16 @@ def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0) -> dict[str
 
 def water_budget(setup: Setup, kres: KernelResult, scenario: int = 0,
                  catchment_weight: np.ndarray | None = None) -> pd.DataFrame:
-    """``water_budget.csv`` of one scenario (see :mod:`firnline.water_budget`)."""
+    """``water_budget.csv`` of one scenario (see :mod:`firnline.water_budget`).
+
+    ``catchment_weight`` (n_cells,) weights each cell in the ``catchment`` region; default
+    ``setup.catchment_weight`` (the ``[runoff] catchment`` shares), as in the kernel's daily sums.
+    """
     from . import water_budget as wb
     cols = setup.surface_columns
     s = scenario
+    if catchment_weight is None:
+        catchment_weight = setup.catchment_weight
     terms = wb.column_budget(lambda flux: kres.year_sum(flux)[s], kres.storage_start[s], kres.storage_end[s])
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
     return wb.budget_table(terms, setup.grid.cell_area_m2 * cols.share, cols.region, weight,
@@ -833,25 +838,19 @@ def region_names(setup: Setup) -> list[str]:
     return [*map(str, setup.glaciers.names), "ice_free", "catchment"]
 
 
-def kernel_gives_daily() -> bool:
-    """Whether the kernel returns the daily region volumes (``KernelResult.daily``, issue 11)."""
-    return "daily" in {f.name for f in dataclasses.fields(KernelResult)}
-
-
 def runoff_of(setup: Setup, config: Config, kres: KernelResult, scenario: int = 0):
     """The routed daily runoff of one scenario and its scores against the gauge.
 
-    Returns ``(RunoffSeries, scores or None)``; ``(None, None)`` while the kernel gives no
-    daily region volumes (``KernelResult.daily``, issue 11's seam).
+    Returns ``(RunoffSeries, scores or None)``; the kernel result must hold the daily region
+    volumes (``KernelResult.daily``: :func:`simulate` with ``daily=True``, its default).
     """
-    daily = getattr(kres, "daily", None)
-    if daily is None:
-        return None, None
+    if kres.daily is None:
+        raise ValueError("the kernel result holds no daily region volumes; run simulate(..., daily=True)")
     from . import parameters
     from .kernel import Daily
     from .runoff import CATCHMENT, gauge_scores, runoff_series
 
-    series = runoff_series(daily[scenario], Daily, region_names(setup), kres.region_area_m2,
+    series = runoff_series(kres.daily[scenario], Daily, region_names(setup), kres.region_area_m2,
                            setup.forcing.dates, parameters.storage_days(config))
     gauge = None
     if setup.discharge is not None:

@@ -245,8 +245,7 @@ class Sweep:
     budgets: pd.DataFrame | None = None
     offsets: pd.DataFrame | None = None
     timings: dict = field(default_factory=dict)
-    #: scenario_runoff_monthly.csv (firnline.runoff.REGIME_COLUMNS), once the kernel gives daily
-    #: region volumes; None before.
+    #: scenario_runoff_monthly.csv (firnline.runoff.REGIME_COLUMNS).
     runoff_regimes: pd.DataFrame | None = None
 
     def mean_balance_map(self, scenario: int) -> np.ndarray:
@@ -352,18 +351,16 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
                  runoff_regimes=regimes)
 
 
-def runoff_regimes(full: Setup, cfg: Config, defs: Sequence, kres=None) -> pd.DataFrame | None:
+def runoff_regimes(full: Setup, cfg: Config, defs: Sequence, kres=None) -> pd.DataFrame:
     """The mean monthly runoff regime of every scenario (scenario_runoff_monthly.csv).
 
     The catchment's runoff needs every cell of the catchment, not only the glacier cells of
     the balance products: the kernel runs on the whole setup (``kres`` reused when the sweep's
-    run already covered it). None while the kernel gives no daily region volumes.
+    run already covered it).
     """
-    from .model import kernel_gives_daily, runoff_of
+    from .model import runoff_of
     from .runoff import scenario_regimes
 
-    if not kernel_gives_daily():
-        return None
     if kres is None:
         kres = run_scenarios(full, cfg, defs)
     runs = [(d.name, d.mean_warming_k, d.mean_precip_change_pct, runoff_of(full, cfg, kres, i)[0])

@@ -102,7 +102,4 @@ def modelled_discharge(setup, config, kres, target: DischargeTarget) -> np.ndarr
     from ..model import runoff_of
 
     series, _ = runoff_of(setup, config, kres, 0)
-    if series is None:
-        raise RuntimeError("the kernel gives no daily region volumes (KernelResult.daily); "
-                           "discharge cannot be modelled")
     return series.discharge_m3s[series.region(CATCHMENT)][target.days]

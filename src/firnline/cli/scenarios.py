@@ -48,7 +48,7 @@ def main(args) -> int:
                                 names=SCENARIO_OPTIONS)
     monthly = [s for s in scen if s.source is not None]       # the change files, already read
     cfg, out = config_and_out(args)
-    with claim_output(args, cfg, out, "scenarios", scenarios=len(scen)):
+    with claim_output(args, cfg, out, "scenarios", scenarios=len(scen), extra_inputs=args.changes or ()):
         progress = progress_bars(args.quiet)
         setup = prepare(cfg, progress)
         say(args, *setup.notes, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")

@@ -445,15 +445,16 @@ def test_demo_calibrate_config_is_the_demo_config_plus_observations(tmp_path):
                 assert cal[section][key] == value, (section, key)
     cfg = firnline.load_config(REPO / "configs" / "demo_calibrate.toml")
     spec = fit_spec(cfg)
-    assert spec.parameters == ("ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k")
+    assert spec.parameters == ("ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k", "storage_days_ice")
     assert cfg.observations.point_balances == (REPO / "demo_dem" / "stakes.csv").resolve()
+    assert cfg.observations.discharge == (REPO / "demo_dem" / "discharge.csv").resolve()
 
 
 def test_regression_committed_demo_observations_match_the_generator(tmp_path):
-    """Regression test, not a check of correctness: demo_dem/stakes.csv and glacier_balances.csv
-    are byte for byte what the seeded generator (which runs the model) writes today. A change of
-    the model's results changes them; regenerate them with firnline.demo.write_demo_observations
-    after checking that the change is intended."""
+    """Regression test, not a check of correctness: demo_dem/stakes.csv, glacier_balances.csv and
+    discharge.csv are byte for byte what the seeded generator (which runs the model) writes today.
+    A change of the model's results changes them; regenerate them with
+    firnline.demo.regenerate_observations("demo_dem") after checking that the change is intended."""
     from firnline import demo
     from firnline.outputs import staged
 
@@ -470,3 +471,10 @@ def test_regression_committed_demo_observations_match_the_generator(tmp_path):
     assert stakes.point_id.str.contains("-P").sum() == 40                    # the probing survey
     assert list(geo.columns) == ["glacier", "start_date", "end_date", "dh_m", "sigma_mwe"]
     assert sorted(geo.glacier) == ["kessel", "north_seldra", "tarn"]
+    from firnline.runoff import read_discharge
+    gauge = read_discharge(REPO / "demo_dem" / "discharge.csv")       # passes the gauge file's checks
+    station = pd.read_csv(REPO / "demo_dem" / "station.csv")
+    assert str(gauge.dates[0]) == station.date.iloc[0] and str(gauge.dates[-1]) == station.date.iloc[-1]
+    gaps = ~np.isfinite(gauge.discharge_m3s)
+    assert 20 <= gaps.sum() <= 0.05 * gaps.size                          # the outage and a few more days
+    assert np.nanmean(gauge.discharge_m3s) > 0

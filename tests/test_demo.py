@@ -262,9 +262,9 @@ def test_committed_demo_files_match_the_generator(dem, station, outlines):
 
 def test_writer_leaves_only_complete_files(written):
     folder, paths = written
-    assert set(paths) == {"dem", "station", "glaciers", "stakes", "glacier_balances"}
-    assert sorted(p.name for p in folder.iterdir()) == ["dem.tif", "glacier_balances.csv", "glaciers.geojson",
-                                                      "stakes.csv", "station.csv"]
+    assert set(paths) == {"dem", "station", "glaciers", "stakes", "glacier_balances", "discharge"}
+    assert sorted(p.name for p in folder.iterdir()) == ["dem.tif", "discharge.csv", "glacier_balances.csv",
+                                                      "glaciers.geojson", "stakes.csv", "station.csv"]
 
 
 def test_writer_refuses_a_file_as_folder(tmp_path):

@@ -21,7 +21,7 @@ import shapely
 
 import firnline
 from firnline.kernel import Daily as KernelDaily
-from firnline.runoff import CATCHMENT, DEFAULT_STORAGE_DAYS, RESERVOIRS, RELEASED_TERMS, _balance_years
+from firnline.runoff import CATCHMENT, DEFAULT_STORAGE_DAYS, RELEASED_TERMS, RESERVOIRS
 
 REL_FILES = 1.1e-5
 SECONDS_PER_DAY = 86400.0
@@ -33,9 +33,10 @@ def test_the_runoff_contract_names_the_kernels_daily_terms(builders):
     assert {m.name: int(m) for m in builders.Daily} == {m.name: int(m) for m in KernelDaily}
 
 
-def annual_released(runoff_csv: pd.DataFrame, year_start="10-01") -> pd.Series:
-    dates = pd.to_datetime(runoff_csv.date).to_numpy().astype("datetime64[D]")
-    by = runoff_csv.assign(balance_year=_balance_years(dates, year_start))
+def annual_released(runoff_csv: pd.DataFrame) -> pd.Series:
+    """Sums per region and balance year (1 October .. 30 September, labelled by the year it ends in)."""
+    d = pd.to_datetime(runoff_csv.date)
+    by = runoff_csv.assign(balance_year=d.dt.year + (d.dt.month >= 10))
     return by.groupby(["region", "balance_year"]).released_mm.sum()
 
 

@@ -39,6 +39,7 @@ station record, never over cells.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -761,9 +762,15 @@ _CALIBRATION_ROWS = (
     ("observations", "glacier_balances", "{inputs}glacier_balances.csv",
      "demo value: invented geodetic balances (dh_m) of the three glaciers"),
     ("observations", "points_crs", _Commented('"EPSG:32632"'), "default: the DEM's CRS"),
-    ("calibration", "parameters", ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k"], "demo value (required)"),
-    ("calibration", "bounds", {"ddf_snow_mm_per_day_k": [1.0, 12.0], "ddf_ice_mm_per_day_k": [2.0, 20.0]},
+    ("observations", "discharge", "{inputs}discharge.csv",
+     "demo value: invented daily discharge at the catchment outlet (date, discharge_m3s; gaps empty)"),
+    ("calibration", "parameters", ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k", "storage_days_ice"],
+     "demo value (required)"),
+    ("calibration", "bounds", {"ddf_snow_mm_per_day_k": [1.0, 12.0], "ddf_ice_mm_per_day_k": [2.0, 20.0],
+                               "storage_days_ice": [0.05, 3.0]},
      "demo value (default: the registry's bounds, firnline.parameters)"),
+    ("calibration", "discharge_sigma_pct", 10.0,
+     "demo value (default 15): stated error of a day's gauged discharge, % of the flow level"),
     ("calibration", "ratios", _Commented('{ ddf_ice_mm_per_day_k = ["ddf_snow_mm_per_day_k", 2.0] }'),
      "optional: tie a key to another instead of fitting it"),
 )
@@ -840,6 +847,72 @@ def write_repo_config(path, calibration: bool = False) -> None:
 DEMO_TRUE_FACTORS = {"ddf_snow_mm_per_day_k": 4.2, "ddf_ice_mm_per_day_k": 7.6}
 """The invented "true" degree-day factors (mm w.e. d-1 K-1) that make the demo observations;
 ``configs/demo_calibrate.toml`` starts from the defaults 3.0 and 6.0 and should find them again."""
+
+DEMO_TRUE_STORAGE_DAYS = {"storage_days_ice": 0.3}
+"""The invented "true" storage constant of the ice reservoir (d) that, with
+:data:`DEMO_TRUE_FACTORS`, makes the demo's gauge record ``discharge.csv``: 7 h, inside the
+4-16 h Hock and Noetzli (1997, Nordic Hydrology 28) give for ice (from memory) and unlike the
+default 0.5 d; the other storage constants stay at their defaults."""
+
+#: Spread of the invented gauge's multiplicative error (lognormal, sd of the log): daily gauged
+#: discharges of mountain rivers are commonly uncertain by 5-20 % (common practice, from memory).
+DEMO_DISCHARGE_NOISE = 0.10
+#: The invented winter outage of the gauge (ice in the control section): first and last day.
+DEMO_DISCHARGE_OUTAGE = ("2019-01-08", "2019-01-27")
+#: Share of other days without a value (logger faults), invented.
+DEMO_DISCHARGE_MISSING = 0.02
+
+#: The true catchment discharge of the demo inputs, by their checksums (one model run per process).
+_TRUE_DISCHARGE: dict = {}
+
+
+def demo_true_discharge(folder) -> tuple[np.ndarray, np.ndarray]:
+    """Daily routed discharge of the demo catchment (every valid DEM cell) for the "true"
+    parameters (:data:`DEMO_TRUE_FACTORS`, :data:`DEMO_TRUE_STORAGE_DAYS`), m3 s-1.
+
+    The demo model (``demo.toml`` on the inputs in ``folder``) is run once over the whole
+    catchment; the result is kept for the rest of the process, keyed by the SHA-256 of the
+    inputs, so that writing the demo again does not rerun it.
+
+    Returns
+    -------
+    dates : ndarray datetime64[D]
+    discharge_m3s : ndarray float64
+    """
+    import tomllib
+
+    from .config import parse_config
+    from .grid import file_checksum
+    from .model import prepare, runoff_of, simulate
+    from .runoff import CATCHMENT
+
+    folder = Path(folder)
+    key = (tuple(file_checksum(folder / n) for n in ("dem.tif", "station.csv", "glaciers.geojson")),
+           demo_config_text(), tuple(sorted({**DEMO_TRUE_FACTORS, **DEMO_TRUE_STORAGE_DAYS}.items())))
+    if key not in _TRUE_DISCHARGE:
+        config = parse_config(tomllib.loads(demo_config_text()), folder).with_values(
+            **DEMO_TRUE_FACTORS, **DEMO_TRUE_STORAGE_DAYS)
+        setup = prepare(config)
+        series, _ = runoff_of(setup, config, simulate(setup, config), 0)
+        _TRUE_DISCHARGE[key] = (series.dates.copy(), series.discharge_m3s[series.region(CATCHMENT)].copy())
+    dates, q = _TRUE_DISCHARGE[key]
+    return dates.copy(), q.copy()
+
+
+def demo_gauge_record(dates, true_m3s, seed: int = DEFAULT_SEED) -> pd.DataFrame:
+    """The invented gauge record (``date, discharge_m3s``) from the true discharge: seeded
+    lognormal multiplicative noise q exp(s e - s^2 / 2), e standard normal, s =
+    :data:`DEMO_DISCHARGE_NOISE` (the factor's mean is 1), rounded to 1 l s-1; empty on the days
+    of :data:`DEMO_DISCHARGE_OUTAGE` and on a seeded :data:`DEMO_DISCHARGE_MISSING` share of days."""
+    rng = np.random.default_rng(seed + 7)
+    d = np.asarray(dates, dtype="datetime64[D]")
+    q = np.asarray(true_m3s, dtype="float64")
+    s = DEMO_DISCHARGE_NOISE
+    observed = q * np.exp(s * rng.normal(0.0, 1.0, q.size) - 0.5 * s * s)
+    gap = (rng.random(q.size) < DEMO_DISCHARGE_MISSING)
+    gap |= (d >= np.datetime64(DEMO_DISCHARGE_OUTAGE[0])) & (d <= np.datetime64(DEMO_DISCHARGE_OUTAGE[1]))
+    text = np.where(gap, "", np.char.mod("%.3f", np.round(observed, 3)))
+    return pd.DataFrame({"date": d.astype(str), "discharge_m3s": text})
 
 
 def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> dict[str, str]:
@@ -960,11 +1033,32 @@ def write_demo_observations(staging, seed: int = DEFAULT_SEED, inputs=None) -> d
     sigma_geo = np.hypot(geodetic.sigma_mwe, np.abs(b_geo) * GEODETIC_DENSITY_SIGMA_KG_M3 / GEODETIC_DENSITY_KG_M3)
     observed = b_geo + rng.normal(0.0, 1.0, b_geo.size) * sigma_geo
     geodetic["dh_m"] = np.round(observed * 1000.0 / GEODETIC_DENSITY_KG_M3, 2)
-    names = {"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv"}
+    names = {"stakes": "stakes.csv", "glacier_balances": "glacier_balances.csv", "discharge": "discharge.csv"}
     stakes.to_csv(staging.path(names["stakes"]), index=False)
     geodetic[["glacier", "start_date", "end_date", "dh_m", "sigma_mwe"]].to_csv(
         staging.path(names["glacier_balances"]), index=False)
+    demo_gauge_record(*demo_true_discharge(folder), seed).to_csv(staging.path(names["discharge"]), index=False)
     return names
+
+
+def regenerate_observations(folder) -> dict[str, Path]:
+    """Rewrite the invented observations of :func:`write_demo_observations` in a folder that
+    already holds the demo inputs (``demo_dem`` of the source tree), leaving the inputs as they
+    are: the files are written by the generator beside the folder and moved in when all are
+    complete. Returns the paths written."""
+    import shutil
+    import tempfile
+
+    from .outputs import staged
+
+    folder = Path(folder)
+    with tempfile.TemporaryDirectory(dir=folder.parent) as tmp:
+        out = Path(tmp) / "observations"
+        with staged(out) as st:
+            names = write_demo_observations(st, inputs=folder)
+        for name in names.values():
+            os.replace(shutil.copyfile(out / name, Path(tmp) / name), folder / name)
+    return {key: folder / name for key, name in names.items()}
 
 
 # ----------------------------------------------------------------------------

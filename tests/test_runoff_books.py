@@ -182,3 +182,56 @@ def test_catchment_polygon_over_half_the_dem_weighs_cells_by_their_share(builder
     # the glacier region is the whole outline, inside the catchment or not
     g = s.region("lower glacier")
     assert s.area_m2[g] == pytest.approx(16 * 4 * cell_area, rel=1e-9)
+
+
+# ----------------------------------------------------------------------------
+# calibration to a gauge: the demo's true ice factor and ice storage constant come back
+# ----------------------------------------------------------------------------
+
+def test_calibration_to_discharge_and_balances_recovers_the_true_ice_factor_and_storage_constant(
+        builders, tmp_path):
+    """The glacier case made with the demo's "true" parameters (firnline.demo:
+    DEMO_TRUE_FACTORS, ddf_ice 7.6 and ddf_snow 4.2 mm w.e. d-1 K-1; DEMO_TRUE_STORAGE_DAYS,
+    storage_days_ice 0.3 d) gives a gauge record (the demo's lognormal 10 % noise, seeded, one
+    day in fifty missing) and glacier-wide annual balances (noise at their stated 0.1 m w.e.).
+    A fit of ddf_snow, ddf_ice and storage_days_ice from the defaults (3.0, 6.0, 0.5), each
+    kind weighted by its stated error, finds ddf_ice and storage_days_ice within two standard
+    errors of the truth. Two, not one: with noise the truth lies within one standard error of
+    a fit only about 68 % of the time and within two about 95 % (normal errors; common
+    practice), so a one-error criterion would be a coin toss on the seed, not a check."""
+    from firnline import demo
+    from firnline.calibrate import calibrate
+
+    folder = tmp_path / "case"
+    cfg_path = glacier_case(builders, folder)
+    truth_values = {**demo.DEMO_TRUE_FACTORS, **demo.DEMO_TRUE_STORAGE_DAYS}
+    truth = firnline.run(firnline.load_config(cfg_path).with_values(**truth_values))
+    rng = np.random.default_rng(11)
+    s = truth.runoff
+    q = s.discharge_m3s[s.region(CATCHMENT)]
+    sd = demo.DEMO_DISCHARGE_NOISE
+    noisy = q * np.exp(sd * rng.normal(0.0, 1.0, q.size) - 0.5 * sd * sd)
+    keep = rng.random(q.size) > demo.DEMO_DISCHARGE_MISSING
+    dates = pd.to_datetime(s.dates)
+    (folder / "discharge.csv").write_text("date,discharge_m3s\n" + "".join(
+        f"{d:%Y-%m-%d},{v:.6g}\n" if k else f"{d:%Y-%m-%d},\n" for d, v, k in zip(dates, noisy, keep)))
+    summ = truth.summary
+    (folder / "glacier_balances.csv").write_text("glacier,start_date,end_date,balance_mwe,sigma_mwe\n" + "".join(
+        f"{g},{y - 1}-10-01,{y}-09-30,{b + 0.1 * rng.normal():.3f},0.1\n"
+        for g, y, b in zip(summ.glacier, summ.balance_year, summ.annual_balance_mwe)))
+    sec = builders.base_sections(1800.0)
+    sec["glaciers"] = {"outlines": "glaciers.gpkg"}
+    sec["snow"] = {"redistribution": "none", "refreezing": "cold-content", "firn_years": 2, "spinup_years": 1}
+    sec["observations"] = {"discharge": "discharge.csv", "glacier_balances": "glacier_balances.csv"}
+    keys = ["ddf_snow_mm_per_day_k", "ddf_ice_mm_per_day_k", "storage_days_ice"]
+    sec["calibration"] = {"parameters": keys, "discharge_sigma_pct": 100 * sd}
+    res = calibrate(firnline.load_config(builders.write_config(folder / "fit.toml", sec)))
+    for key in ("ddf_ice_mm_per_day_k", "storage_days_ice"):
+        value, se, true = res.value[key], res.std_error[key], truth_values[key]
+        assert abs(value - true) < 2 * se, (key, value, se, true)
+        assert se < 0.1 * true, (key, se)                  # and the record does determine it
+        start = {"ddf_ice_mm_per_day_k": 6.0, "storage_days_ice": 0.5}[key]
+        assert abs(value - true) < 0.2 * abs(start - true), (key, value)
+    js = res.to_json()
+    assert js["discharge"]["days"] == int(keep.sum())
+    assert js["discharge"]["fitted"]["nse"] > js["discharge"]["initial"]["nse"]

@@ -17,8 +17,14 @@ chi-square** ``chi2 / (n_obs - n_params)`` when there are degrees of freedom
 left (as ``scipy.optimize.curve_fit`` does with ``absolute_sigma=False``), so
 that a misfit larger than the stated sigmas widens the standard errors. With no
 degrees of freedom the unscaled covariance (from the sigmas alone) is used and a
-warning says so. Parameters the observations cannot determine (rank-deficient
-Jacobian) get no standard error (null in JSON).
+warning says so. With a gauge record the daily discharge rows enter the covariance by
+their own squared residuals instead (the heteroscedasticity-consistent sandwich, HC0:
+White, 1980, Econometrica 48; see :func:`_covariance`): their stated error, a share of the
+flow level, rarely has the shape of their actual error, and the chi-square scaling alone
+then understates the standard errors of the storage constants. Day-to-day correlation of
+the discharge errors is not accounted for (see :mod:`firnline.calibrate.discharge`).
+Parameters the observations cannot determine (rank-deficient Jacobian) get no standard
+error (null in JSON).
 
 Residuals are ``modelled - observed`` (m w.e.): a positive bias means the model
 balance is too high. RMSE is the unweighted root-mean-square residual.
@@ -150,7 +156,10 @@ class CalibrationResult:
             "std_error_method": ("Jacobian of the sigma-weighted residuals at the solution, covariance "
                                  "(J^T J)^-1 scaled by the reduced chi-square" if self.dof > 0 else
                                  "Jacobian of the sigma-weighted residuals at the solution, covariance "
-                                 "(J^T J)^-1 from the stated sigmas alone (no degrees of freedom left)"),
+                                 "(J^T J)^-1 from the stated sigmas alone (no degrees of freedom left)")
+            + ("; the daily discharge rows enter by their own squared residuals, the sandwich "
+               "(J^T J)^-1 (chi2_red J_b^T J_b + J_q^T diag(r_q^2) J_q) (J^T J)^-1 (HC0, White 1980)"
+               if self.discharge is not None else ""),
             "correlation": corr,
             "converged": self.converged,
             "optimiser_message": self.message,
@@ -167,8 +176,19 @@ class CalibrationResult:
         }
 
 
-def _covariance(jac_u: np.ndarray, span: np.ndarray, chi2_red: float) -> tuple[np.ndarray, np.ndarray]:
+def _covariance(jac_u: np.ndarray, span: np.ndarray, chi2_red: float, robust_rows: np.ndarray | None = None,
+                residuals: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Covariance of the parameters from the Jacobian in the internal variables.
+
+    Without ``robust_rows``: ``(J^T J)^-1`` scaled by the reduced chi-square. With them (the
+    rows of daily discharge), the sandwich ``A (c J_b^T J_b + J_q^T diag(r_q^2) J_q) A``,
+    ``A = (J^T J)^-1``, ``c`` the reduced chi-square, ``J_b`` the other rows and ``J_q``, ``r_q``
+    the robust rows and their normalised residuals at the solution: the heteroscedasticity-
+    consistent estimate (HC0, White, 1980, Econometrica 48, 817-838) for the many daily
+    discharges, whose stated error (a share of the flow level) rarely has the shape of their
+    actual error (a share of each day's flow, larger on the days that shape the storage
+    constants), and the stated-sigma estimate for the few balances. Without robust rows both
+    are the same as before.
 
     Returns the covariance (parameter units) and a mask of undetermined parameters
     (those with a component in the Jacobian's null space); their rows and columns are NaN.
@@ -182,8 +202,14 @@ def _covariance(jac_u: np.ndarray, span: np.ndarray, chi2_red: float) -> tuple[n
     cov_u = (v[:, keep] / s_full[keep] ** 2) @ v[:, keep].T
     null = v[:, ~keep]
     undetermined = (np.abs(null) > 1e-6).any(axis=1) if null.size else np.zeros(p, bool)
-    if math.isfinite(chi2_red):
-        cov_u = cov_u * chi2_red
+    scale = chi2_red if math.isfinite(chi2_red) else 1.0
+    if robust_rows is not None and np.any(robust_rows):
+        q = np.asarray(robust_rows, dtype=bool)
+        jb, jq = jac_u[~q], jac_u[q]
+        meat = scale * (jb.T @ jb) + (jq.T * np.asarray(residuals, dtype="float64")[q] ** 2) @ jq
+        cov_u = cov_u @ meat @ cov_u
+    else:
+        cov_u = cov_u * scale
     cov = cov_u * np.outer(span, span)
     cov[undetermined, :] = np.nan
     cov[:, undetermined] = np.nan
@@ -283,7 +309,8 @@ def calibrate(config: Config, setup: Setup | None = None, progress: Progress = N
     r = resid / sigma
     dof = n_obs - n_par
     chi2_red = float(np.sum(r ** 2) / dof) if dof > 0 else math.nan
-    cov, undetermined = _covariance(np.atleast_2d(res.jac), spec.span, chi2_red)
+    robust = np.arange(n_obs) >= n_bal if target is not None else None     # the daily discharges
+    cov, undetermined = _covariance(np.atleast_2d(res.jac), spec.span, chi2_red, robust, r)
     se = np.sqrt(np.diag(cov))
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(se, se)

@@ -51,6 +51,27 @@ def test_modelled_values_over_periods_match_the_run_products(case):
     np.testing.assert_allclose(got, want, atol=2e-6)   # the run's maps are float32
 
 
+def test_a_record_cut_to_the_observations_keeps_the_runs_spin_up(builders, tmp_path):
+    """The fit cuts the record after the last observed day; with [snow] spinup_years = 2 the
+    spin-up still cycles the record's first two balance years, so a glacier-wide balance of the
+    first year alone is modelled as `firnline run` has it (a cut to one year would spin up on
+    that year twice and start from another state)."""
+    builders.write_dem(tmp_path / "dem.tif", builders.ramp(20, 10, 3200.0, 2200.0))
+    builders.seasonal_station(tmp_path / "station.csv")
+    (tmp_path / "gb.csv").write_text("glacier,start_date,end_date,balance_mwe,sigma_mwe\n"
+                                     "test plane,2016-10-01,2017-09-30,-0.5,0.2\n")
+    sec = builders.calibration_sections(TRUTH, observations={"glacier_balances": "gb.csv"},
+                                        calibration={"parameters": ["ddf_ice_mm_per_day_k"]},
+                                        snow={"firn_years": 2, "spinup_years": 2})
+    cfg = firnline.load_config(builders.write_config(tmp_path / "c.toml", sec))
+    setup = prepare(cfg)
+    points, glaciers = load_observations(cfg, setup)
+    op = build_operator(setup, points, glaciers)
+    got = modelled_values(setup, cfg, op)[0]
+    want = firnline.run(cfg, setup=setup).summary.set_index("balance_year").annual_balance_mwe[2017]
+    assert got == pytest.approx(want, abs=2e-6)      # the run's summary comes from float32 maps
+
+
 def test_balance_over_an_arbitrary_inclusive_period_closed_form(builders, tmp_path):
     """Worked example: warm, dry days melt only ice, so B = -ddf_ice * T_cell * days.
 

@@ -152,8 +152,16 @@ def observation_table(setup: Setup, points: PointBalances | None,
 
 
 def first_days(setup: Setup, n_days: int) -> Setup:
-    """The setup with its forcing cut to the first ``n_days`` days (all when n_days >= the record)."""
+    """The setup with its forcing cut to the first ``n_days`` days (all when n_days >= the record).
+
+    The cut keeps at least the balance years the spin-up cycles (``[snow] spinup_years`` of
+    them from the start of the record, :func:`firnline.model.spinup_days`), so the cut run
+    starts from the same spun-up state as a run over the whole record.
+    """
     f = setup.forcing
+    spin_years = int(setup.config.snow.spinup_years)
+    if spin_years > 0:
+        n_days = max(int(n_days), int(np.searchsorted(np.asarray(f.year_index), spin_years)))
     if n_days >= f.n_days:
         return setup
     n = max(int(n_days), 1)

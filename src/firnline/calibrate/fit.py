@@ -17,14 +17,10 @@ chi-square** ``chi2 / (n_obs - n_params)`` when there are degrees of freedom
 left (as ``scipy.optimize.curve_fit`` does with ``absolute_sigma=False``), so
 that a misfit larger than the stated sigmas widens the standard errors. With no
 degrees of freedom the unscaled covariance (from the sigmas alone) is used and a
-warning says so. With a gauge record the daily discharge rows enter the covariance by
-their own squared residuals instead (the heteroscedasticity-consistent sandwich, HC0:
-White, 1980, Econometrica 48; see :func:`_covariance`): their stated error, a share of the
-flow level, rarely has the shape of their actual error, and the chi-square scaling alone
-then understates the standard errors of the storage constants. Day-to-day correlation of
-the discharge errors is not accounted for (see :mod:`firnline.calibrate.discharge`).
-Parameters the observations cannot determine (rank-deficient Jacobian) get no standard
-error (null in JSON).
+warning says so. Daily discharge rows enter by their own squared residuals (HC0 sandwich,
+White, 1980, Econometrica 48; :func:`_covariance`); their day-to-day correlation is not
+accounted for (:mod:`firnline.calibrate.discharge`). Parameters the observations cannot
+determine (rank-deficient Jacobian) get no standard error (null in JSON).
 
 Residuals are ``modelled - observed`` (m w.e.): a positive bias means the model
 balance is too high. RMSE is the unweighted root-mean-square residual.
@@ -76,8 +72,6 @@ RANK_TOLERANCE = 1e-8
 RESIDUAL_COLUMNS = ["kind", "id", "file", "line", "start_date", "end_date", "days", "x_m", "y_m",
                     "elevation_m", "dh_m", "observed_mwe", "sigma_mwe", "modelled_initial_mwe",
                     "modelled_mwe", "residual_mwe", "normalised_residual"]
-
-
 
 
 @dataclass
@@ -180,15 +174,12 @@ def _covariance(jac_u: np.ndarray, span: np.ndarray, chi2_red: float, robust_row
                 residuals: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Covariance of the parameters from the Jacobian in the internal variables.
 
-    Without ``robust_rows``: ``(J^T J)^-1`` scaled by the reduced chi-square. With them (the
-    rows of daily discharge), the sandwich ``A (c J_b^T J_b + J_q^T diag(r_q^2) J_q) A``,
-    ``A = (J^T J)^-1``, ``c`` the reduced chi-square, ``J_b`` the other rows and ``J_q``, ``r_q``
-    the robust rows and their normalised residuals at the solution: the heteroscedasticity-
-    consistent estimate (HC0, White, 1980, Econometrica 48, 817-838) for the many daily
-    discharges, whose stated error (a share of the flow level) rarely has the shape of their
-    actual error (a share of each day's flow, larger on the days that shape the storage
-    constants), and the stated-sigma estimate for the few balances. Without robust rows both
-    are the same as before.
+    ``(J^T J)^-1`` scaled by the reduced chi-square ``c``; with ``robust_rows`` (the daily
+    discharges) the sandwich ``A (c J_b^T J_b + J_q^T diag(r_q^2) J_q) A``, ``A = (J^T J)^-1``,
+    ``r_q`` their normalised residuals at the solution: heteroscedasticity-consistent (HC0,
+    White, 1980, Econometrica 48, 817-838) for the many days, whose stated error (a share of the
+    flow level) rarely has the shape of the actual one (a share of each day's flow, larger on
+    the days that shape the storage constants); the stated sigmas for the few balances.
 
     Returns the covariance (parameter units) and a mask of undetermined parameters
     (those with a component in the Jacobian's null space); their rows and columns are NaN.

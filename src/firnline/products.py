@@ -93,7 +93,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
         "initial_condition": initial_condition(cfg, setup),
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
-        "notes": setup.notes,
+        "notes": result.notes,
         **({"discharge_check": result.gauge} if result.gauge is not None else {}),
         "timings_s": result.timings,
         "files": files,

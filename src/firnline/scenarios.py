@@ -249,6 +249,13 @@ class Sweep:
     #: region volumes; None before.
     runoff_regimes: pd.DataFrame | None = None
 
+    @property
+    def notes(self) -> tuple:
+        """Notes of the sweep: the setup's, then the warning of uncalibrated radiation-method
+        defaults (:func:`firnline.parameters.radiation_defaults_notes`)."""
+        from .parameters import radiation_defaults_notes
+        return (*self.setup.notes, *radiation_defaults_notes(self.config))
+
     def mean_balance_map(self, scenario: int) -> np.ndarray:
         """(ny, nx) float32 record-mean annual balance of one scenario, m w.e., NaN off glaciers."""
         return to_grid(self.setup, self.mean_balance[scenario], where=self.setup.glacier_mask)

@@ -108,3 +108,119 @@ def test_run_scenarios_and_calibration_inputs_with_the_radiation_method(rad_case
     sc = pd.read_csv(tmp_path / "s" / "scenarios.csv")
     ref = sc[(sc.warming_k == 0) & (sc.precip_change_pct == 0)]
     assert ref.mean_annual_balance_mwe.iloc[0] == pytest.approx(s.annual_balance_mwe.mean(), abs=1e-4)
+
+
+# ----------------------------------------------------------------------------
+# defaults fit for a daily model (issue 11, item 7)
+# ----------------------------------------------------------------------------
+
+def test_degree_day_weighted_radiation_by_hand():
+    """Two cells 0 and 400 m above the station at 4 C, lapse -0.005 K m-1, threshold 0:
+    degree-days 4 and 2 per day; with I = 100 and 300 W m-2 and areas 1 and 3,
+    I_dd = (1 x 4 x 100 + 3 x 2 x 300) / (1 x 4 + 3 x 2) = 2200 / 10 = 220 W m-2, and the
+    area-weighted degree-days per day (1 x 4 + 3 x 2) / 4 = 2.5 K. A day below the threshold
+    adds nothing."""
+    from firnline.radiation import degree_day_weighted_radiation
+    t = table(np.array([999.0, 100.0, 300.0]))
+    days = 3
+    i_dd, dd = degree_day_weighted_radiation(t, np.array([4.0, 4.0, -5.0]), np.full(days, -0.005),
+                                             np.array([1, 100, 200]), np.array([0.0, 400.0]), 0.0,
+                                             np.array([1, 2]), np.array([1.0, 3.0]))
+    assert i_dd == pytest.approx(220.0, rel=1e-6)
+    assert dd == pytest.approx(2.5 * 2 / 3, rel=1e-12)
+
+
+@pytest.fixture(scope="module")
+def radiation_demo(demo_run, tmp_path_factory):
+    """The demo inputs with ``method = "radiation"`` and the registry defaults, run once by
+    the command line (stderr kept); with the degree-day run of ``demo_run``."""
+    import shutil
+    inputs, dd_out = demo_run
+    folder = tmp_path_factory.mktemp("radiation_demo")
+    shutil.copytree(inputs, folder / "in")
+    cfg = folder / "in" / "demo.toml"
+    text = cfg.read_text()
+    assert text.count('method = "degree-day"') == 1
+    cfg.write_text(text.replace('method = "degree-day"', 'method = "radiation"'))
+    out = folder / "out"
+    proc = subprocess.run([sys.executable, "-m", "firnline", "run", str(cfg), "--out", str(out), "--no-report"],
+                          capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    return cfg, out, dd_out, proc.stderr
+
+
+def test_radiation_defaults_agree_with_degree_day_defaults_on_the_demo(radiation_demo):
+    """The radiation-method defaults are derived so that MF + a I_dd equals the degree-day
+    factor, I_dd the degree-day-weighted mean potential direct radiation over the demo
+    glaciers (parameters.RADIATION_DERIVATION): over the demo the radiation method must
+    then give about the degree-day method's glacier-wide balance (within 0.3 m w.e.,
+    the issue's bound), while moving melt toward the sunnier glaciers: the glacier whose
+    own I_dd is highest loses most relative to the degree-day method, the lowest least."""
+    import json
+
+    import firnline
+    from firnline import parameters
+    from firnline.model import prepare
+    from firnline.radiation import degree_day_weighted_radiation
+
+    cfg_path, out, dd_out, _ = radiation_demo
+    rad = pd.read_csv(out / "summary.csv")
+    dd = pd.read_csv(dd_out / "summary.csv")
+
+    def glacier_wide(s):
+        return float((s.annual_balance_mwe * s.area_km2).sum() / s.area_km2.sum())
+
+    diff = glacier_wide(rad) - glacier_wide(dd)
+    print(f"demo glacier-wide mean balance: degree-day {glacier_wide(dd):.3f}, radiation {glacier_wide(rad):.3f}, "
+          f"difference {diff:+.3f} m w.e.")
+    assert abs(diff) < 0.3
+    info = json.loads((out / "run.json").read_text())
+    assert info["parameters"]["melt"]["radiation_factor_snow"] == parameters.get("radiation_factor_snow").default
+
+    # the registry's derivation, recomputed on the demo: MF + a I_dd = DDF (rounding of the defaults: 1 %)
+    cfg = firnline.load_config(cfg_path)
+    setup = prepare(cfg)
+    kv = parameters.kernel_values(cfg)
+    f = setup.forcing
+    lapse = np.asarray(kv["lapse_rate_k_per_m"])[np.asarray(f.month) - 1]
+    dz = setup.z_m - cfg.climate.station_elevation_m
+
+    def i_dd(pos, frac):
+        return degree_day_weighted_radiation(setup.radiation, f.temperature_c, lapse, f.day_of_year, dz[pos],
+                                             kv["threshold_c"], pos, frac * setup.grid.cell_area_m2)[0]
+
+    every = i_dd(np.concatenate(setup.glacier_pos), np.concatenate(setup.glaciers.fractions))
+    assert every == pytest.approx(parameters.RADIATION_IDD_W_M2, abs=0.5)
+    assert kv["melt_factor"] + kv["radiation_factor_snow"] * every == pytest.approx(kv["ddf_snow"], rel=0.01)
+    assert kv["melt_factor"] + kv["radiation_factor_ice"] * every == pytest.approx(kv["ddf_ice"], rel=0.01)
+    # MF's share of the snow factor as in Hock (1999) at I_dd (values from memory: 1.8 and 0.0144 per day)
+    assert kv["melt_factor"] / kv["ddf_snow"] == pytest.approx(1.8 / (1.8 + 0.0144 * every), abs=0.005)
+
+    per = {n: i_dd(p, fr) for n, p, fr in zip(setup.glaciers.names, setup.glacier_pos, setup.glaciers.fractions)}
+    shift = (rad.groupby("glacier").annual_balance_mwe.mean() - dd.groupby("glacier").annual_balance_mwe.mean())
+    sunniest, shadiest = max(per, key=per.get), min(per, key=per.get)
+    assert shift.idxmin() == sunniest and shift.idxmax() == shadiest, (per, shift.to_dict())
+
+
+def test_uncalibrated_radiation_defaults_warn_exactly_once(radiation_demo, demo_run, plane_case, tmp_path, capsys):
+    """One console line and one run.json note with the defaults; none for the degree-day
+    method or once any of the three factors is set (a calibrated or field value)."""
+    import json
+
+    _, out, dd_out, stderr = radiation_demo
+    lines = [ln for ln in stderr.splitlines() if "uncalibrated default factors" in ln]
+    assert len(lines) == 1 and lines[0].startswith("warning: ")
+    notes = json.loads((out / "run.json").read_text())["notes"]
+    assert sum("uncalibrated default factors" in n for n in notes) == 1
+    assert not any("uncalibrated default" in n for n in json.loads((dd_out / "run.json").read_text())["notes"])
+
+    radiation = {"time_step_minutes": 60, "horizon_sectors": 8, "horizon_distance_m": 2000.0}
+    cfg = plane_case(melt={"method": "radiation"}, radiation=radiation)
+    assert main(["scenarios", str(cfg), "--warming", "1", "--out", str(tmp_path / "s"), "--no-report"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("uncalibrated default factors") == 1
+    sj = json.loads((tmp_path / "s" / "scenarios.json").read_text())
+    assert sum("uncalibrated default factors" in n for n in sj["notes"]) == 1
+    cfg = plane_case(melt={"method": "radiation", "radiation_factor_ice": 0.015}, radiation=radiation)
+    assert main(["run", str(cfg), "--out", str(tmp_path / "r"), "--no-report"]) == 0
+    assert "uncalibrated default factors" not in capsys.readouterr().err

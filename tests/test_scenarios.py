@@ -104,6 +104,28 @@ def test_planar_glacier_ela_moves_by_one_over_lapse_rate_per_kelvin(builders, tm
     assert row.n_warming_steps == 3 and row.n_ela_years_used == 6 and row.n_ela_years_excluded == 0
 
 
+def test_planar_ela_is_the_closed_form_within_two_metres_at_50_m_bands(builders, tmp_path):
+    """The closed form of :func:`hand_ela` (constant forcing T_st = 5 C, P = 5 mm d-1 at 2000 m,
+    lapse rate -0.0065 K m-1, degree-day melt 3 / 6 mm d-1 K-1, snow/rain range 0.5..2.5 C):
+    zero balance where ddf_snow T = P (2.5 - T) / 2, T* = 12.5 / 11 C, so
+    z* = 2000 + (5 + dT - T*) / 0.0065 = 2594.4 m (+153.8 m per K). The DEM rows are 15 m apart,
+    the default 50 m bands hold three or four rows each, and the balance profile has a kink at
+    z* (slope 26 mm m-1 below, 13 above): the ELA of every year, of the record-mean profile and
+    of the plain run lies within 2 m of z* (issue 11; band centres put it 4-12 m high)."""
+    cfg = plane(builders, tmp_path)
+    assert cfg.balance.band_width_m == BAND
+    run = firnline.run(cfg)
+    assert (run.summary.ela_flag == "ok").all()
+    np.testing.assert_allclose(run.summary.ela_m, hand_ela(0.0), atol=2.0)
+    assert set(run.profiles.band_top_m - run.profiles.band_bottom_m) == {BAND}   # profiles stay on 50 m
+    sw = sweep(prepare(cfg), [0.5, 1.0, 2.0])
+    for w in (0.0, 0.5, 1.0, 2.0):
+        yrs = sw.year_table[sw.year_table.warming_k == w]
+        np.testing.assert_allclose(yrs.ela_m, hand_ela(w), atol=2.0)
+        mean = sw.table[sw.table.warming_k == w]
+        np.testing.assert_allclose(mean.ela_m, hand_ela(w), atol=2.0)
+
+
 def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(builders, tmp_path):
     """With 6 K, z* = 2594 + 6 x 153.8 = 3517 m lies above the glacier top (3500 m): every
     band loses mass, the flag is above_glacier and the AAR 0 (DESIGN.md ela_flag rule)."""

@@ -292,7 +292,7 @@ def run_document(result, summary: pd.DataFrame, budget: pd.DataFrame, figures: R
             label = "record mean" if period == "mean" else f"balance year {period}"
             page.figure(png, f"balance maps of {view.title}, {label}",
                         f"{fname}: {label}{figures.ela_text.get(period, '')}.")
-    _common_tail(page, cfg, setup.checksums, setup.notes)
+    _common_tail(page, cfg, setup.checksums, result.notes)
     page.section("Files")
     page.paragraph("Written to the output folder with this report:")
     page.notes(sorted(files))
@@ -337,7 +337,7 @@ def sweep_document(result, figures: Sequence[tuple[str, bytes, str]], files: Seq
                         "precip_change_pct": "precipitation change (%)"})
     page.subsection("Rules of the means and slopes")
     page.notes(rules)
-    _common_tail(page, cfg, setup.checksums, setup.notes)
+    _common_tail(page, cfg, setup.checksums, result.notes)
     page.section("Files")
     page.notes(sorted(files))
     return page.render()

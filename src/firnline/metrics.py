@@ -10,20 +10,33 @@ Rules used here
 * Weights: every cell counts with its glacier area, ``fraction * cell_area``.
 * Profile: elevation bands ``[k * band_width, (k + 1) * band_width)`` (band edges
   at whole multiples of the band width); each band's balance is the area-weighted
-  mean of its cells.
-* ELA: the elevation where the band profile crosses zero, by linear interpolation
-  between the centres of the two neighbouring (non-empty) bands whose balances
-  straddle zero. When the profile crosses zero more than once, the crossing kept
-  is the one that best separates the glacier: the one that minimises the glacier
-  area lying on the wrong side of it (positive bands below it plus negative bands
-  above it); ties go to the lowest crossing.
+  mean of its cells, placed at the band's area-weighted mean elevation (for a balance
+  linear in elevation the band mean balance is exactly the balance at that elevation,
+  not at the band centre).
+* ELA: found on a finer internal profile (bands of :data:`FINE_BAND_M`, at most the
+  band width; ``profiles.csv`` stays on the configured band width). Its zero
+  crossings lie between neighbouring (non-empty) fine bands whose balances straddle
+  zero. When the profile crosses zero more than once, the crossing kept is the one
+  that best separates the glacier: the one that minimises the glacier area lying on
+  the wrong side of it (positive bands below it plus negative bands above it); ties
+  go to the lowest crossing. The crossing is then placed by a continuous two-segment
+  linear fit with its hinge at zero balance, ``b(z) = s_lo min(z - h, 0) + s_hi
+  max(z - h, 0)``, least squares with the band areas as weights, over the fine bands
+  within one band width below and above the two straddling bands; the ELA is the
+  hinge ``h`` (searched between the two bands). A balance profile is close to two
+  straight lines meeting at the ELA, steeper in the ablation area where ice is
+  exposed (common practice; in this model ice melts at ``ddf_ice`` > ``ddf_snow``):
+  the hinge fit recovers that kink, where linear interpolation between
+  band values across it is biased toward the flatter side by a good part of a band.
+  With a single band on each side the fit is undetermined and the ELA is the linear
+  interpolation between the two bands' mean elevations.
 * Flags: if every band is negative the ELA lies above the glacier (``above_glacier``,
   AAR = 0); if every band is positive or zero it lies below (``below_glacier``, AAR = 1);
   otherwise ``ok``. ``ela_m`` is empty (NaN) unless ``ok``.
 * AAR: the glacier area with a positive annual balance divided by the glacier area
   (cell by cell, area-weighted); in a flagged year it follows the flag.
 * Balance gradient of the ablation area: least-squares slope of band balance
-  against band-centre elevation over the bands whose centre lies below the ELA
+  against band mean elevation over the bands whose mean elevation lies below the ELA
   (all bands in an ``above_glacier`` year), in m w.e. per 100 m; it needs at
   least two such bands.
 * Balanced budget (``balanced_budget.csv``, :func:`balanced_budget`): per glacier,
@@ -55,6 +68,13 @@ MIN_BUDGET_YEARS = 3
 """Fewest balance years with the ELA on the glacier for a balanced-budget regression."""
 
 
+FINE_BAND_M = 5.0
+"""Band width (m) of the internal profile the ELA is found on (at most the configured width)."""
+
+_HINGE_STEPS = 201
+"""Hinge positions tried per search pass (two passes: the gap, then one step around the best)."""
+
+
 @dataclass(frozen=True)
 class Profile:
     """Balance profile of one glacier and year.
@@ -62,16 +82,24 @@ class Profile:
     band_bottom_m, band_top_m : (n_bands,) m
     area_m2 : (n_bands,) glacier area in each band
     balance_mwe : (n_bands,) area-weighted mean annual balance, m w.e.
+    mean_elevation_m : (n_bands,) area-weighted mean elevation of each band, m
+        (None: the band centres)
     """
 
     band_bottom_m: np.ndarray
     band_top_m: np.ndarray
     area_m2: np.ndarray
     balance_mwe: np.ndarray
+    mean_elevation_m: np.ndarray | None = None
 
     @property
     def centre_m(self) -> np.ndarray:
         return 0.5 * (self.band_bottom_m + self.band_top_m)
+
+    @property
+    def elevation_m(self) -> np.ndarray:
+        """Where each band's balance belongs: its area-weighted mean elevation, m."""
+        return self.centre_m if self.mean_elevation_m is None else self.mean_elevation_m
 
 
 def specific_balance(values: np.ndarray, weights: np.ndarray) -> float:
@@ -96,35 +124,81 @@ def band_profile(z_m: np.ndarray, balance_mwe: np.ndarray, area_m2: np.ndarray,
     nb = int(idx.max()) + 1
     area = np.bincount(idx, weights=area_m2, minlength=nb)
     wbal = np.bincount(idx, weights=area_m2 * balance_mwe, minlength=nb)
+    wz = np.bincount(idx, weights=area_m2 * z_m, minlength=nb)
     keep = area > 0
     bottom = (np.arange(nb) + k0) * band_width_m
     with np.errstate(invalid="ignore", divide="ignore"):
         bal = wbal / area
+        zmean = wz / area
     return Profile(band_bottom_m=bottom[keep], band_top_m=bottom[keep] + band_width_m,
-                   area_m2=area[keep], balance_mwe=bal[keep])
+                   area_m2=area[keep], balance_mwe=bal[keep], mean_elevation_m=zmean[keep])
 
 
-def ela_from_profile(profile: Profile) -> tuple[float, str]:
-    """ELA (m) and flag from a band profile; see the module docstring for the rules."""
+def ela(z_m: np.ndarray, balance_mwe: np.ndarray, area_m2: np.ndarray,
+        band_width_m: float) -> tuple[float, str]:
+    """ELA (m) and flag of one glacier from its cells (module docstring: the rules).
+
+    The zero crossing is found on a profile of ``min(FINE_BAND_M, band_width_m)`` bands
+    and placed by the hinge fit over one ``band_width_m`` on either side.
+    """
+    fine = band_profile(z_m, balance_mwe, area_m2, min(FINE_BAND_M, band_width_m))
+    return ela_from_profile(fine, window_m=band_width_m)
+
+
+def _hinge_residual(h: np.ndarray, z_lo, b_lo, w_lo, z_hi, b_hi, w_hi) -> np.ndarray:
+    """Weighted residual sum of squares of the zero-hinged two-segment fit at hinges ``h``."""
+    total = np.zeros(h.shape)
+    for z, b, w in ((z_lo, b_lo, w_lo), (z_hi, b_hi, w_hi)):
+        u = z[None, :] - h[:, None]
+        num = (w * u * b).sum(axis=1)
+        den = (w * u * u).sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            explained = np.where(den > 0, num * num / den, 0.0)
+        total += float((w * b * b).sum()) - explained
+    return total
+
+
+def _hinge(profile: Profile, i: int, window_m: float) -> float:
+    """ELA between bands ``i`` and ``i + 1`` by the zero-hinged two-segment fit (docstring)."""
+    z, b, a = profile.elevation_m, profile.balance_mwe, profile.area_m2
+    z0, z1 = float(z[i]), float(z[i + 1])
+    linear = z0 + (0.0 - b[i]) * (z1 - z0) / (b[i + 1] - b[i])
+    lo = (z <= z0) & (z >= z0 - window_m)
+    hi = (z >= z1) & (z <= z1 + window_m)
+    if lo.sum() < 2 and hi.sum() < 2:
+        return float(linear)
+    sides = (z[lo], b[lo], a[lo], z[hi], b[hi], a[hi])
+    h = np.linspace(z0, z1, _HINGE_STEPS)
+    r = _hinge_residual(h, *sides)
+    best = int(np.argmin(r))
+    step = (z1 - z0) / (_HINGE_STEPS - 1)
+    h = np.linspace(max(z0, h[best] - step), min(z1, h[best] + step), _HINGE_STEPS)
+    r = _hinge_residual(h, *sides)
+    return float(h[int(np.argmin(r))])
+
+
+def ela_from_profile(profile: Profile, window_m: float | None = None) -> tuple[float, str]:
+    """ELA (m) and flag from a profile; see the module docstring for the rules.
+
+    ``window_m``: how far below and above the crossing the hinge fit looks (default:
+    the profile's band width, so a band profile fits over its neighbouring bands).
+    """
     b = profile.balance_mwe
-    zc = profile.centre_m
+    zc = profile.elevation_m
     a = profile.area_m2
     if np.all(b < 0):
         return float("nan"), ABOVE
     if np.all(b >= 0):
         return float("nan"), BELOW
-    candidates = []
-    for i in range(len(b) - 1):
-        b0, b1 = b[i], b[i + 1]
-        if (b0 < 0) != (b1 < 0):
-            if b1 == b0:
-                z = zc[i]
-            else:
-                z = zc[i] + (0.0 - b0) * (zc[i + 1] - zc[i]) / (b1 - b0)
-            wrong = a[(zc < z) & (b >= 0)].sum() + a[(zc > z) & (b < 0)].sum()
-            candidates.append((wrong, z))
-    wrong, z = min(candidates)  # ties: lowest z (tuples compare z second)
-    return float(z), OK
+    if window_m is None:
+        window_m = float(profile.band_top_m[0] - profile.band_bottom_m[0])
+    neg = b < 0
+    cross = np.flatnonzero(neg[:-1] != neg[1:])
+    z = zc[cross] + (0.0 - b[cross]) * (zc[cross + 1] - zc[cross]) / (b[cross + 1] - b[cross])
+    # the glacier area on the wrong side of each crossing: positive bands below, negative above
+    wrong = [a[:i + 1][~neg[:i + 1]].sum() + a[i + 1:][neg[i + 1:]].sum() for i in cross]
+    _, _, i = min(zip(wrong, z, cross))  # ties: lowest crossing
+    return _hinge(profile, int(i), window_m), OK
 
 
 def aar(balance_mwe: np.ndarray, area_m2: np.ndarray, flag: str) -> float:
@@ -141,7 +215,7 @@ def ablation_gradient(profile: Profile, ela_m: float, flag: str) -> float:
     """Balance gradient of the ablation area, m w.e. per 100 m (NaN if under two bands)."""
     if flag == BELOW:
         return float("nan")
-    zc = profile.centre_m
+    zc = profile.elevation_m
     sel = np.ones(len(zc), bool) if flag == ABOVE else zc < ela_m
     if sel.sum() < 2:
         return float("nan")
@@ -164,13 +238,13 @@ class YearMetrics:
 def glacier_year(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m) -> YearMetrics:
     """All metrics of one glacier in one balance year (inputs over the glacier's cells)."""
     prof = band_profile(z_m, annual_mwe, area_m2, band_width_m)
-    ela, flag = ela_from_profile(prof)
+    ela_m, flag = ela(z_m, annual_mwe, area_m2, band_width_m)
     return YearMetrics(area_m2=float(area_m2.sum()),
                        annual_mwe=specific_balance(annual_mwe, area_m2),
                        winter_mwe=specific_balance(winter_mwe, area_m2),
                        summer_mwe=specific_balance(summer_mwe, area_m2),
-                       ela_m=ela, aar=aar(annual_mwe, area_m2, flag), ela_flag=flag,
-                       gradient_mwe_per_100m=ablation_gradient(prof, ela, flag), profile=prof)
+                       ela_m=ela_m, aar=aar(annual_mwe, area_m2, flag), ela_flag=flag,
+                       gradient_mwe_per_100m=ablation_gradient(prof, ela_m, flag), profile=prof)
 
 
 def line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:

@@ -649,6 +649,13 @@ class RunResult:
     water_budget: pd.DataFrame | None = None
     kernel: KernelResult | None = None
 
+    @property
+    def notes(self) -> tuple:
+        """Console notes of the run: the setup's, then the warning of uncalibrated
+        radiation-method defaults (:func:`firnline.parameters.radiation_defaults_notes`)."""
+        from .parameters import radiation_defaults_notes
+        return (*self.setup.notes, *radiation_defaults_notes(self.config))
+
     def write(self, out_dir: str | Path | None = None) -> list[Path]:
         """Write every output file into ``out_dir`` (default: ``[output] dir``)."""
         from .products import write_run

@@ -37,11 +37,24 @@ MAX_INVERSION_K_PER_M = 0.01
 #: Steeper than dry-adiabatic (-0.0098 K per m) plus a margin.
 MIN_LAPSE_K_PER_M = -0.0125
 
-# Hock (1999) radiation-index factors, converted to daily units (x 24 h), values from
-# memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 and a_ice 0.0008 mm m2 W-1 h-1 K-1 (for
-# Storglaciaren); see DEVELOPERS.md.
-HOCK_1999 = ("Hock (1999), J. Glaciology 45(149), values from memory: MF 1.8 mm d-1 K-1, a_snow 0.0006 "
-             "and a_ice 0.0008 mm m2 W-1 h-1 K-1, here in daily units (x 24 h: 0.0144, 0.0192)")
+# Radiation-method defaults for a daily model (see DEVELOPERS.md, "Parameter defaults and
+# their sources"). Hock's (1999) hourly factors for Storglaciaren (from memory: MF 0.075 mm h-1
+# K-1, a_snow 0.0006, a_ice 0.0008 mm m2 W-1 h-1 K-1; x 24 h: 1.8, 0.0144, 0.0192 in daily
+# units) melt about 1.9 times as much snow as the degree-day defaults when applied to daily
+# means. The defaults are instead derived from the degree-day defaults (3.0 / 6.0) so that
+# MF + a I_dd = DDF, with I_dd = 262.5 W m-2 the degree-day-weighted mean potential direct
+# radiation over the demo glaciers (firnline.radiation.degree_day_weighted_radiation), and MF
+# keeping its share of the snow factor in Hock's values at I_dd: 1.8 / (1.8 + 0.0144 x 262.5)
+# = 0.32, so MF = 0.32 x 3.0 = 0.97, a_snow = (3.0 - 0.97) / 262.5 = 0.00774 and
+# a_ice = (6.0 - 0.97) / 262.5 = 0.01917 mm w.e. d-1 K-1 per W m-2.
+RADIATION_IDD_W_M2 = 262.5
+"""Degree-day-weighted mean potential direct radiation over the demo glaciers, W m-2."""
+RADIATION_DERIVATION = ("derived for a daily model from the degree-day defaults (3.0 snow, 6.0 ice) so that "
+                        "MF + a I_dd = DDF, with I_dd = 262.5 W m-2 the degree-day-weighted mean potential "
+                        "direct radiation over the demo glaciers; MF keeps its share of the snow factor "
+                        "(0.32) in Hock (1999), J. Glaciology 45(149), values from memory (hourly MF 0.075 "
+                        "mm h-1 K-1, a_snow 0.0006, a_ice 0.0008 mm m2 W-1 h-1 K-1, x 24 h: 1.8, 0.0144, "
+                        "0.0192); uncalibrated, fit it for the site (DEVELOPERS.md)")
 # Bernhardt & Schulz (2010) holding depth and the density that turns it into a mass; see
 # firnline.snowslide and DEVELOPERS.md ("Gravitational snow redistribution").
 SNOW_DENSITY_SOURCE = ("common practice (from memory: the bulk density of a settled seasonal snowpack is "
@@ -152,13 +165,13 @@ PARAMETERS: tuple[Parameter, ...] = (
               ("degree-day",), HOCK_2003, "degree-day factor of snow", ("ddf_snow",)),
     Parameter("melt", "ddf_ice_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 6.0, (2.0, 25.0),
               ("degree-day",), HOCK_2003, "degree-day factor of ice", ("ddf_ice",)),
-    Parameter("melt", "melt_factor_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 1.8, (0.0, 15.0),
-              ("radiation",), HOCK_1999, "melt factor", ("melt_factor",)),
-    Parameter("melt", "radiation_factor_snow", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.0144,
-              (0.0, 0.1), ("radiation",), HOCK_1999 + "; bounds enclose it five-fold",
+    Parameter("melt", "melt_factor_mm_per_day_k", "mm w.e. d-1 K-1", 0.0, 50.0, 0.97, (0.0, 15.0),
+              ("radiation",), RADIATION_DERIVATION, "melt factor", ("melt_factor",)),
+    Parameter("melt", "radiation_factor_snow", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.00774,
+              (0.0, 0.1), ("radiation",), RADIATION_DERIVATION + "; bounds enclose it ten-fold",
               "radiation factor of snow", ("radiation_factor_snow",)),
-    Parameter("melt", "radiation_factor_ice", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.0192,
-              (0.0, 0.1), ("radiation",), HOCK_1999 + "; bounds enclose it five-fold",
+    Parameter("melt", "radiation_factor_ice", "mm w.e. d-1 K-1 per W m-2", 0.0, 1.0, 0.01917,
+              (0.0, 0.1), ("radiation",), RADIATION_DERIVATION + "; bounds enclose it five-fold",
               "radiation factor of ice", ("radiation_factor_ice",)),
     Parameter("melt", "transmissivity", "1", 0.0, 1.0, 0.75, None, ("radiation",),
               "common practice", "clear-sky transmissivity at sea-level pressure",
@@ -269,3 +282,24 @@ def kernel_values(cfg) -> dict[str, Any]:
     out["refreezing"] = cfg.snow.refreezing
     out["firn_years"] = int(cfg.snow.firn_years)
     return out
+
+
+#: The factors of the radiation method; all three at their defaults = an uncalibrated run.
+RADIATION_FACTORS = ("melt_factor_mm_per_day_k", "radiation_factor_snow", "radiation_factor_ice")
+
+
+def radiation_defaults_notes(cfg) -> list[str]:
+    """One console note when ``[melt] method = "radiation"`` runs with all three factors at
+    their defaults (:data:`RADIATION_FACTORS`), none otherwise.
+
+    The defaults are derived from the degree-day defaults over the demo glaciers (see
+    :data:`RADIATION_DERIVATION`), not fitted to any site.
+    """
+    if cfg.melt.method != "radiation":
+        return []
+    if any(float(getattr(cfg.melt, k)) != float(get(k).default) for k in RADIATION_FACTORS):
+        return []
+    return [f'warning: [melt] method = "radiation" runs with the uncalibrated default factors '
+            f"({', '.join(f'{k} = {get(k).default:g}' for k in RADIATION_FACTORS)}), derived from the "
+            f"degree-day defaults over the demo glaciers (I_dd = {RADIATION_IDD_W_M2:g} W m-2); fit them "
+            "with `firnline calibrate` or set them from field knowledge before trusting the balances"]

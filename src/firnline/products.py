@@ -93,7 +93,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
         "initial_condition": initial_condition(cfg, setup),
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
-        "notes": setup.notes,
+        "notes": result.notes,
         **({"discharge_check": result.gauge} if result.gauge is not None else {}),
         "timings_s": result.timings,
         "files": files,
@@ -241,7 +241,7 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
 def ela_lines_all(result: RunResult, summary: pd.DataFrame) -> dict:
     """ELA contour lines per (glacier, balance year) and (glacier, "mean"), map coordinates."""
     from .gis import ela_lines
-    from .metrics import band_profile, ela_from_profile
+    from .metrics import ela
     setup = result.setup
     grid = setup.grid
     gl = setup.glaciers
@@ -255,11 +255,10 @@ def ela_lines_all(result: RunResult, summary: pd.DataFrame) -> dict:
             out[(name, int(year))] = ela_lines(grid.elevation, x, y, inside, float(s.ela_m.get((name, int(year)),
                                                                                              np.nan)))
         cells, frac = gl.cells[k], gl.fractions[k]
-        prof = band_profile(grid.elevation.ravel()[cells], mean.ravel()[cells].astype("float64"),
-                            frac * grid.cell_area_m2, result.config.balance.band_width_m)
-        ela, flag = ela_from_profile(prof)
-        out[(name, "mean")] = ela_lines(grid.elevation, x, y, inside, ela) if flag == "ok" else []
-        out[(name, "mean_ela_m")] = ela
+        mean_ela, flag = ela(grid.elevation.ravel()[cells], mean.ravel()[cells].astype("float64"),
+                             frac * grid.cell_area_m2, result.config.balance.band_width_m)
+        out[(name, "mean")] = ela_lines(grid.elevation, x, y, inside, mean_ela) if flag == "ok" else []
+        out[(name, "mean_ela_m")] = mean_ela
     return out
 
 

@@ -607,3 +607,50 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
         if progress is not None:
             progress("radiation row bands", i + 1, len(bands))
     return RadiationTable(doy_nodes=nodes, values=values, scale_w_m2=STORAGE_SCALE_W_M2)
+
+
+def degree_day_weighted_radiation(table: RadiationTable, t_station_c: np.ndarray, lapse_k_per_m: np.ndarray,
+                                  day_of_year: np.ndarray, dz_m: np.ndarray, threshold_c: float,
+                                  columns: np.ndarray, weights: np.ndarray) -> tuple[float, float]:
+    """Degree-day-weighted mean potential direct radiation, W m-2, and the mean degree-days.
+
+    ``I_dd = sum_d sum_c w_c DD_dc I_dc / sum_d sum_c w_c DD_dc`` with the positive
+    degree-days ``DD_dc = (T_station,d + lapse_d dz_c - threshold)+`` of the station-mode
+    kernel (no warming) and ``I_dc`` the table's daily mean for the day of year. With it a
+    temperature-index melt ``(MF + a I) DD`` melts, summed over the cells and days, as much
+    as a degree-day factor ``DDF = MF + a I_dd`` does: the rule the radiation-method
+    defaults of :mod:`firnline.parameters` are derived by (DEVELOPERS.md, "Parameter
+    defaults and their sources"). One pass over the days; no days x cells array.
+
+    Parameters
+    ----------
+    table : RadiationTable
+    t_station_c, lapse_k_per_m, day_of_year : ndarray (n_days,)
+        Station temperature (deg C), the day's lapse rate (K m-1) and day of year (1..366).
+    dz_m : ndarray (n,)
+        Elevation above the station of the cells weighed, m.
+    threshold_c : float
+        Melt threshold, deg C.
+    columns : ndarray of int (n,)
+        The cells' columns in ``table``.
+    weights : ndarray (n,)
+        The cells' weights (glacier area, m2).
+
+    Returns
+    -------
+    (I_dd in W m-2, the weighted mean positive degree-days per day of record in K)
+    """
+    dz = np.asarray(dz_m, dtype="float64")
+    w = np.asarray(weights, dtype="float64")
+    cols = np.asarray(columns)
+    num = den = 0.0
+    for t, lapse, doy in zip(t_station_c, lapse_k_per_m, day_of_year):
+        dd = np.maximum(t + lapse * dz - threshold_c, 0.0) * w
+        s = float(dd.sum())
+        if s == 0.0:
+            continue
+        lo, hi, f = table.bracket(int(doy))
+        rad = ((1.0 - f) * lo[cols].astype("float64") + f * hi[cols]) * table.scale_w_m2
+        num += float(dd @ rad)
+        den += s
+    return (num / den if den > 0 else float("nan")), den / (w.sum() * len(t_station_c))

@@ -110,7 +110,7 @@ def sweep_json(result: Sweep, files: list[str]) -> dict:
         "rules": list(RULES),
         "ela_flags": result.flags.to_dict(orient="records"),
         "glaciers": result.glaciers.to_dict(orient="records"),
-        "notes": setup.notes,
+        "notes": result.notes,
         "timings_s": result.timings,
         "files": files,
     }

@@ -27,7 +27,7 @@ from . import metrics
 from .changes import Scenario, read_change_files
 from .config import Config
 from .errors import InputError
-from .metrics import ABOVE, BELOW, OK, band_profile, ela_from_profile, line_fit
+from .metrics import ABOVE, BELOW, OK, band_profile, ela, line_fit
 from .model import Setup, cell_fields, check_config, glacier_metrics, simulate, tables, to_grid
 from .progress import Progress
 
@@ -248,6 +248,13 @@ class Sweep:
     #: scenario_runoff_monthly.csv (firnline.runoff.REGIME_COLUMNS).
     runoff_regimes: pd.DataFrame | None = None
 
+    @property
+    def notes(self) -> tuple:
+        """Notes of the sweep: the setup's, then the warning of uncalibrated radiation-method
+        defaults (:func:`firnline.parameters.radiation_defaults_notes`)."""
+        from .parameters import radiation_defaults_notes
+        return (*self.setup.notes, *radiation_defaults_notes(self.config))
+
     def mean_balance_map(self, scenario: int) -> np.ndarray:
         """(ny, nx) float32 record-mean annual balance of one scenario, m w.e., NaN off glaciers."""
         return to_grid(self.setup, self.mean_balance[scenario], where=self.setup.glacier_mask)
@@ -318,11 +325,11 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
         summary["scenario"] = d.name
         per_scenario.append(summary)
         for name, pos, frac in zip(gl.names, setup.glacier_pos, gl.fractions):
-            prof = band_profile(setup.z_m[pos], mean_balance[s][pos].astype("float64"), frac * area, bw)
+            zs, bs = setup.z_m[pos], mean_balance[s][pos].astype("float64")
+            prof = band_profile(zs, bs, frac * area, bw)
             profile_rows += [[name, w, p, b0, b1, a / 1e6, b, d.name] for b0, b1, a, b in
                              zip(prof.band_bottom_m, prof.band_top_m, prof.area_m2, prof.balance_mwe)]
-            ela, flag = ela_from_profile(prof)
-            profile_ela.append([name, d.name, ela, flag])
+            profile_ela.append([name, d.name, *ela(zs, bs, frac * area, bw)])
     regimes = runoff_regimes(full, cfg, defs, kres if setup is full else None)
     del kres
     reference = [d.name for d in defs].index(REFERENCE)

@@ -36,7 +36,7 @@ def main(args) -> int:
     with claim_output(args, cfg, out, "run"):
         result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
                      progress=progress_bars(args.quiet))
-        say(args, *result.setup.notes)
+        say(args, *result.notes)
         files = write_run(result, out, report=not args.no_report)
     print(summary_table(result.summary))
     if result.gauge is not None:

@@ -40,6 +40,7 @@ def main(args) -> int:
         raise InputError("firnline scenarios needs --warming K [K ...] or --changes FILE [FILE ...]: give one "
                          "or more warmings in K, e.g. --warming 1 2 3, or monthly change files.")
     from ..model import prepare
+    from ..parameters import radiation_defaults_notes
     from ..scenario_products import sweep_table, write_sweep
     from ..scenarios import scenario_definitions, sweep
 
@@ -51,7 +52,8 @@ def main(args) -> int:
     with claim_output(args, cfg, out, "scenarios", scenarios=len(scen), extra_inputs=args.changes or ()):
         progress = progress_bars(args.quiet)
         setup = prepare(cfg, progress)
-        say(args, *setup.notes, f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
+        say(args, *setup.notes, *radiation_defaults_notes(cfg),
+            f"{len(scen)} scenarios in one pass, reference (0 K, 0 %) included")
         result = sweep(setup, args.warming or [], args.precip_change or [], progress=progress, changes=monthly)
         files = write_sweep(result, out, report=not args.no_report)
     print(sweep_table(result))

@@ -82,7 +82,9 @@ def test_several_zero_crossings_keep_the_one_with_least_area_on_the_wrong_side()
     b = np.where(z < 2300.0, (z - 2300.0) * 0.01, 0.3)
     b = np.where((z > 2400.0) & (z < 2420.0), -0.2, b)
     e, flag = ela(z, b, np.ones_like(z), 50.0)
-    assert flag == "ok" and abs(e - 2300.0) < 1.0
+    # the profile jumps at 2300 m (-0.005 to +0.3 m w.e.), so its crossing is only defined to the
+    # internal 5 m band; the rule is what is tested: 2300 m, not 2400 or 2420 m
+    assert flag == "ok" and abs(e - 2300.0) <= 5.0
 
 
 def test_ela_shift_is_one_over_lapse_rate_per_kelvin(builders):

@@ -6,7 +6,6 @@ no test module imports from another.
 
 from __future__ import annotations
 
-import enum
 import warnings
 from pathlib import Path
 from types import SimpleNamespace
@@ -20,6 +19,7 @@ import tomli_w
 from pyogrio import raw
 from rasterio.transform import from_origin
 
+from firnline.kernel import Daily as _KernelDaily
 from firnline.observations import POINT_COLUMNS
 
 CRS = "EPSG:32632"
@@ -192,20 +192,8 @@ def _calibration_case(tmp_path, truth_values: dict, start: dict) -> dict:
             "stake_rows": CALIBRATION_STAKE_ROWS}
 
 
-class Daily(enum.IntEnum):
-    """The daily terms of the runoff contract (the kernel's ``firnline.kernel.Daily`` has the same
-    names and values; tests/test_runoff_books.py checks that), for hand-made daily arrays."""
-
-    RAIN = 0
-    SNOWFALL = 1
-    SNOW_MELT = 2
-    FIRN_MELT = 3
-    ICE_MELT = 4
-    REFREEZING = 5
-    RELEASED_SNOW = 6
-    RELEASED_FIRN = 7
-    RELEASED_ICE = 8
-    RELEASED_GROUND = 9
+#: the daily terms of the runoff contract, for hand-made daily arrays (the kernel's own names)
+Daily = _KernelDaily
 
 
 def one_sentence_no_traceback(err: str) -> str:

@@ -28,11 +28,6 @@ SECONDS_PER_DAY = 86400.0
 X0, Y0, CELL = 600000.0, 5150000.0, 50.0        # the builders' DEM origin and cell size (EPSG:32632)
 
 
-def test_the_runoff_contract_names_the_kernels_daily_terms(builders):
-    """The hand-made arrays of the runoff tests index the terms like the kernel does."""
-    assert {m.name: int(m) for m in builders.Daily} == {m.name: int(m) for m in KernelDaily}
-
-
 def annual_released(runoff_csv: pd.DataFrame) -> pd.Series:
     """Sums per region and balance year (1 October .. 30 September, labelled by the year it ends in)."""
     d = pd.to_datetime(runoff_csv.date)

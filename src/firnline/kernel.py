@@ -679,13 +679,8 @@ def snow_then_ice(snow, t, threshold_c, f_snow, f_ice, inv_f_snow, ice):
         mm w.e.; the degree-days left once the snow is gone are
         ``(T - threshold) - snow / f_snow`` (common practice in temperature-index models).
     """
-    dd = max(t - threshold_c, 0.0)
-    pot = f_snow * dd
-    smelt = min(snow, pot)
-    left = dd - snow * inv_f_snow
-    left = left if pot > snow else 0.0
-    left = dd if snow <= 0.0 else left
-    return smelt, f_ice * left * ice
+    # the same rule as firn over the degree-days left: one layer melts, the rest goes below
+    return firn_then_ice(snow, max(t - threshold_c, 0.0), f_snow, f_ice, inv_f_snow, ice)
 
 
 @njit(inline="always", cache=True, error_model="numpy")

@@ -786,7 +786,7 @@ def refreeze_and_hold(water, cold, pack, holding_fraction):
 # ----------------------------------------------------------------------------
 
 # named groups passed into the compiled core (numba compiles namedtuples of arrays)
-CellArrays = namedtuple("CellArrays", "dz orog ice rad_values region vol wcat")
+CellArrays = namedtuple("CellArrays", "dz orog ice rad_values region vol wcat order")
 DayArrays = namedtuple("DayArrays", "t_station p_station lapse month season year year_end "
                                     "snapshot rad_lo rad_hi rad_w_lo rad_w_hi index")
 ScenarioArrays = namedtuple("ScenarioArrays", "warming precip_scale")
@@ -794,42 +794,120 @@ ParamValues = namedtuple("ParamValues", "snow_c rain_c inv_span threshold_c ddf_
                                         "inv_ddf_snow melt_factor rad_snow rad_ice firn_share ddf_firn "
                                         "inv_ddf_firn holding exchange cold_layer firn_years n_glaciers "
                                         "want_daily weighted")
-Targets = namedtuple("Targets", "state running cum sums snow_end snapshots layers firn_end storage_end daily")
+Targets = namedtuple("Targets", "state work cum sums snow_end snapshots layers firn_end storage_end daily")
+
+
+#: distance between the rows of a chunk's work buffer, float64 values: a chunk plus one cache
+#: line, so that rows do not start at addresses 4 KiB apart (loads would wait for unrelated
+#: stores to the same low address bits, "4K aliasing": twice the time, measured)
+CHUNK_STRIDE = CHUNK_CELLS + 8
+# a chunk's rows: two flat float64 buffers, row r at r * CHUNK_STRIDE (constant offsets from
+# one base each, so the compiler sees that the cell loop's stores do not overlap and
+# vectorises it). What a chunk keeps from day to day (state and running sums) is one buffer;
+# with ``carry`` it persists between calls in ``out.work``, and it is all a call moves
+# through memory. The other buffer (the task's) holds the inputs and the day's fluxes.
+K_STATE = 0                      #: N_STATE rows: the chunk's state (:class:`State` order)
+K_RUN = K_STATE + N_STATE        #: N_SEASON * N_FLUX rows: running sums, season q flux f at
+                                 #: row K_RUN + q * N_FLUX + f
+K_LEN = (K_RUN + N_SEASON * N_FLUX) * CHUNK_STRIDE
+W_DAY = 0                        #: N_DAY_ROWS rows: the day's fluxes (``_DAY_FLUXES`` order)
+W_T = W_DAY + N_DAY_ROWS         #: station mode: z - z_station; cell mode: the day's T
+W_P = W_T + 1                    #: station mode: the orographic factor; cell mode: the day's P
+W_ICE = W_P + 1                  #: 1 on glacier surfaces, else 0
+W_RAD = W_ICE + 1                #: the day's radiation, W m-2 (radiation method)
+W_VOL = W_RAD + 1                #: area * 1e-3 (mm over the column -> m3)
+W_CAT = W_VOL + 1                #: the same times the catchment weight
+W_CAT_FREE = W_CAT + 1           #: the same on ice-free columns only
+W_LEN = (W_CAT_FREE + 1) * CHUNK_STRIDE
 
 
 @njit(parallel=True, cache=True, error_model="numpy")
-def _advance(method, mode, carry, cells, days, t_block, p_block, scen, par, c_lo, c_hi, out):
-    """Advance cells ``c_lo .. c_hi-1`` over the days of ``days`` (see the module docstring).
+def _advance(method, mode, carry, first, last, cells, days, t_block, p_block, scen, par, c_lo, c_hi,
+             out):
+    """Advance cells ``c_lo .. c_hi-1`` (in ``cells.order``) over the days of ``days`` (see the
+    module docstring).
 
     ``mode`` is STATION or CELL (then ``t_block``/``p_block`` are (n_days, n_cells)
-    float32); ``carry``: load and store the running sums (cell mode, blocks cut years; and
-    station mode with snow redistribution, whose calls cut the record).
+    float32). ``carry``: the chunks' work buffers persist in ``out.work`` between calls (cell
+    mode, whose blocks cut years, and snow redistribution, whose calls cut the record);
+    ``first`` fills them, ``last`` stores the final state in ``out.state``. Without
+    ``carry`` each chunk runs the whole record in a buffer of its task.
     """
     n_chunks = (c_hi - c_lo + CHUNK_CELLS - 1) // CHUNK_CELLS
     n_tasks = (n_chunks + CHUNKS_PER_TASK - 1) // CHUNKS_PER_TASK
     n_scen = scen.warming.shape[0]
     n_days = days.month.shape[0]
     n_nodes = cells.rad_values.shape[0] if method == Method.RADIATION else 1
+    # the radiation nodes the call's days use (a short call needs a few)
+    need = np.zeros(n_nodes, dtype=np.bool_)
+    if method == Method.RADIATION:
+        for d in range(n_days):
+            need[days.rad_lo[d]] = True
+            need[days.rad_hi[d]] = True
     for task in prange(n_tasks):
-        state = np.empty((N_STATE, CHUNK_CELLS))
-        run = np.empty((N_SEASON, N_FLUX, CHUNK_CELLS))
-        day_rows = np.zeros((N_DAY_ROWS, CHUNK_CELLS))   # the day's fluxes of the chunk (daily sums)
-        t_cells = np.empty(CHUNK_CELLS)      # cell mode: the day's forcing of the chunk
-        p_cells = np.empty(CHUNK_CELLS)
+        w = np.zeros(W_LEN)                     # the task's rows: inputs and the day's fluxes
+        own = np.zeros(1 if carry else K_LEN)   # the task's kept rows (without carry)
         rad_chunk = np.zeros((n_nodes, CHUNK_CELLS))   # float64: converted once, not every day
         runs = np.empty(CHUNK_CELLS + 1, dtype=np.int64)   # the chunk's runs of one region
+        cidx = np.empty(CHUNK_CELLS, dtype=np.int64)       # the chunk's columns (cells.order)
+        res = np.empty(N_DAY_ROWS)                         # one run's daily sums
         for k in range(task * CHUNKS_PER_TASK, min(n_chunks, (task + 1) * CHUNKS_PER_TASK)):
             c0 = c_lo + k * CHUNK_CELLS
             m = min(CHUNK_CELLS, c_hi - c0)
+            for i in range(m):
+                cidx[i] = cells.order[c0 + i]
             if method == Method.RADIATION:
                 # the chunk's columns of the radiation table, read at once into cache (rows lie
                 # n_cells apart; read day by day they would stall the day loop)
                 for j in range(n_nodes):
-                    for i in range(m):
-                        rad_chunk[j, i] = cells.rad_values[j, c0 + i]
+                    if need[j]:
+                        for i in range(m):
+                            rad_chunk[j, i] = cells.rad_values[j, cidx[i]]
+            _fill_inputs(w, cells, m, cidx, mode)
             for s in range(n_scen):
-                _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out,
-                       c0, m, s, n_days, state, run, rad_chunk, t_cells, p_cells, day_rows, runs)
+                kk = (c0 // CHUNK_CELLS) * K_LEN
+                kp = out.work[s, kk:kk + K_LEN] if carry else own
+                if first or not carry:
+                    _fill_kept(kp, out, s, m, cidx)
+                _chunk(method, mode, cells, days, t_block, p_block, scen, par, out,
+                       m, s, n_days, w, kp, rad_chunk, runs, cidx, res)
+                if last or not carry:
+                    _store_state(kp, out, s, m, cidx)
+
+
+@njit(cache=True, error_model="numpy")
+def _store_state(kp, out, s, m, cidx):
+    """A chunk's state after its last day, back in ``out.state``."""
+    for j in range(N_STATE):
+        for i in range(m):
+            out.state[j, s, cidx[i]] = kp[(K_STATE + j) * CHUNK_STRIDE + i]
+
+
+@njit(cache=True, error_model="numpy")
+def _fill_inputs(w, cells, m, cidx, mode):
+    """The task's rows of a chunk's inputs (every call; a few 1-d reads per column)."""
+    S = CHUNK_STRIDE
+    for i in range(m):
+        c = cidx[i]
+        w[W_ICE * S + i] = cells.ice[c]
+        w[W_VOL * S + i] = cells.vol[c]
+        w[W_CAT * S + i] = cells.wcat[c]
+        w[W_CAT_FREE * S + i] = cells.wcat[c] * (1.0 - cells.ice[c])
+        if mode == STATION:
+            w[W_T * S + i] = cells.dz[c]
+            w[W_P * S + i] = cells.orog[c]
+
+
+@njit(cache=True, error_model="numpy")
+def _fill_kept(kp, out, s, m, cidx):
+    """A chunk's kept rows before its first day: the state from ``out.state``, zero sums."""
+    S = CHUNK_STRIDE
+    for j in range(N_STATE):
+        for i in range(m):
+            kp[(K_STATE + j) * S + i] = out.state[j, s, cidx[i]]
+    for r in range(N_SEASON * N_FLUX):
+        for i in range(m):
+            kp[(K_RUN + r) * S + i] = 0.0
 
 
 @njit(inline="always", cache=True, error_model="numpy")
@@ -841,30 +919,35 @@ def _reciprocal(x):
 
 
 @njit(inline="always", cache=True, error_model="numpy")
-def _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, inv_f_snow, inv_f_firn, ice, par):
+def _cell_day(snow, firn, liquid, cold, t, p, f_snow, f_firn, f_ice, inv_f_snow, inv_f_firn, ice, par):
     """The processes of one cell-day after downscaling, in order: the precipitation split,
     snowfall onto the pack, melt of snow, then of firn, then of glacier ice; the cold content
     of the pack; refreezing and retention of rain and meltwater; the water released.
 
-    ``st`` holds the chunk's state rows, ``acc`` the running-sum rows of the day's season and
-    ``dv`` the rows of the day's values for the daily sums (tuples of 1-d arrays over the
-    chunk's cells, in :class:`State`, :class:`Flux` and ``_DAY_FLUXES`` order, see
-    :func:`_state_rows`); cell ``i`` is updated. Branch-free, so the loop over the chunk's
-    cells that calls it compiles to packed SIMD code. A new process goes here: read and
-    write its state rows, add its flux rows.
+    A pure function of scalars (the state before the day, in :class:`State` order, the day's
+    temperature ``t`` and precipitation ``p``, the melt factors, ``ice`` 1.0 on glacier
+    surfaces); branch-free, so the loop over a chunk's cells that calls it compiles to packed
+    SIMD code. A new process goes here.
+
+    Returns
+    -------
+    state : tuple
+        snow, firn, liquid, cold content after the day (:class:`State` order), mm w.e.
+    fluxes : tuple
+        The day's fluxes in ``_DAY_FLUXES`` order: rain, snowfall, snow melt, firn melt, ice
+        melt, refreezing, water released from the snow, the firn and the ice, mm w.e.
     """
     snowfall = p * snowfall_fraction(t, par.snow_c, par.rain_c, par.inv_span)
     rain = p - snowfall
-    snow = st[_SNOW][i] + snowfall
-    firn = st[_FIRN][i]
+    snow = snow + snowfall
     # the degree-days left once the snow is gone (f_ice = 1 on "ice" gives them unscaled)
     snow_melt, left = snow_then_ice(snow, t, par.threshold_c, f_snow, 1.0, inv_f_snow, 1.0)
     firn_melt, ice_melt = firn_then_ice(firn, left, f_firn, f_ice, inv_f_firn, ice)
     snow -= snow_melt
     firn -= firn_melt
     pack = snow + firn
-    cold = cold_content_step(st[_COLD_CONTENT][i], pack, t, par.exchange, par.cold_layer)
-    water = rain + snow_melt + firn_melt + st[_LIQUID][i]
+    cold = cold_content_step(cold, pack, t, par.exchange, par.cold_layer)
+    water = rain + snow_melt + firn_melt + liquid
     refrozen, held, out = refreeze_and_hold(water, cold, pack, par.holding)
     snow += refrozen
     # released water by origin: firn melt leaves the firn, rain on bare ice runs off the ice
@@ -873,62 +956,83 @@ def _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, inv_f_snow, inv_f_fir
     r_rain_ice = min(rain * bare * ice, out - r_firn)
     r_snow = out - r_firn - r_rain_ice
     r_ice = ice_melt + r_rain_ice
-    st[_SNOW][i] = snow
-    st[_FIRN][i] = firn
-    st[_LIQUID][i] = held
-    st[_COLD_CONTENT][i] = cold - refrozen
-    acc[_SNOWFALL][i] += snowfall
-    acc[_RAIN][i] += rain
-    acc[_SNOW_MELT][i] += snow_melt
-    acc[_ICE_MELT][i] += ice_melt
-    acc[_FIRN_MELT][i] += firn_melt
-    acc[_REFREEZING][i] += refrozen
-    acc[_REL_SNOW][i] += r_snow
-    acc[_REL_FIRN][i] += r_firn
-    acc[_REL_ICE][i] += r_ice
-    dv[0][i] = rain
-    dv[1][i] = snowfall
-    dv[2][i] = snow_melt
-    dv[3][i] = firn_melt
-    dv[4][i] = ice_melt
-    dv[5][i] = refrozen
-    dv[6][i] = r_snow
-    dv[7][i] = r_firn
-    dv[8][i] = r_ice
+    return ((snow, firn, held, cold - refrozen),
+            (rain, snowfall, snow_melt, firn_melt, ice_melt, refrozen, r_snow, r_firn, r_ice))
 
 
 @njit(inline="always", cache=True, error_model="numpy")
-def _state_rows(a):
-    """The rows of a chunk's state (N_STATE, cells) as a tuple of 1-d arrays, one per
-    :class:`State` (separate rows let the compiler see that the loop's stores do not
-    overlap, which it needs to vectorise)."""
-    return (a[_SNOW], a[_FIRN], a[_LIQUID], a[_COLD_CONTENT])
+def _store_day(w, kp, a0, i, state, fl):
+    """Store a cell-day's state and fluxes (:func:`_cell_day`): the state rows and the
+    running sums of the season from row ``a0`` in the kept rows ``kp`` (``a0`` is a constant
+    where it is called, so that every row lies at a constant offset), the day's rows in ``w``."""
+    S = CHUNK_STRIDE
+    kp[(K_STATE + _SNOW) * S + i] = state[0]
+    kp[(K_STATE + _FIRN) * S + i] = state[1]
+    kp[(K_STATE + _LIQUID) * S + i] = state[2]
+    kp[(K_STATE + _COLD_CONTENT) * S + i] = state[3]
+    # the running sums, Flux by Flux, from the fluxes in _DAY_FLUXES order
+    kp[(a0 + _RAIN) * S + i] += fl[0]
+    kp[(a0 + _SNOWFALL) * S + i] += fl[1]
+    kp[(a0 + _SNOW_MELT) * S + i] += fl[2]
+    kp[(a0 + _FIRN_MELT) * S + i] += fl[3]
+    kp[(a0 + _ICE_MELT) * S + i] += fl[4]
+    kp[(a0 + _REFREEZING) * S + i] += fl[5]
+    kp[(a0 + _REL_SNOW) * S + i] += fl[6]
+    kp[(a0 + _REL_FIRN) * S + i] += fl[7]
+    kp[(a0 + _REL_ICE) * S + i] += fl[8]
+    # the day's rows (written out: a tuple indexed in a loop compiles to a switch, which
+    # stops the vectoriser)
+    w[W_DAY * S + i] = fl[0]
+    w[(W_DAY + 1) * S + i] = fl[1]
+    w[(W_DAY + 2) * S + i] = fl[2]
+    w[(W_DAY + 3) * S + i] = fl[3]
+    w[(W_DAY + 4) * S + i] = fl[4]
+    w[(W_DAY + 5) * S + i] = fl[5]
+    w[(W_DAY + 6) * S + i] = fl[6]
+    w[(W_DAY + 7) * S + i] = fl[7]
+    w[(W_DAY + 8) * S + i] = fl[8]
+
+
+@njit(cache=True, fastmath=True, error_model="numpy")
+def _region_sums(w, row, lo, hi, res):
+    """The day's fluxes of a chunk's cells ``lo .. hi-1`` times row ``row`` of the work buffer
+    (a volume factor), summed: ``res[f] = sum(w[W_DAY + f] * w[row])``, m3. Reassociated
+    into packed partial sums (fastmath), so the last bits depend on the SIMD width."""
+    S = CHUNK_STRIDE
+    # views from 0 (a loop index that cannot be negative, so the loop vectorises)
+    x = w[row * S + lo:row * S + hi]
+    d0, d1, d2 = w[W_DAY * S + lo:], w[(W_DAY + 1) * S + lo:], w[(W_DAY + 2) * S + lo:]
+    d3, d4, d5 = w[(W_DAY + 3) * S + lo:], w[(W_DAY + 4) * S + lo:], w[(W_DAY + 5) * S + lo:]
+    d6, d7, d8 = w[(W_DAY + 6) * S + lo:], w[(W_DAY + 7) * S + lo:], w[(W_DAY + 8) * S + lo:]
+    v0 = v1 = v2 = v3 = v4 = v5 = v6 = v7 = v8 = 0.0
+    for k in range(x.size):
+        v0 += d0[k] * x[k]
+        v1 += d1[k] * x[k]
+        v2 += d2[k] * x[k]
+        v3 += d3[k] * x[k]
+        v4 += d4[k] * x[k]
+        v5 += d5[k] * x[k]
+        v6 += d6[k] * x[k]
+        v7 += d7[k] * x[k]
+        v8 += d8[k] * x[k]
+    res[0], res[1], res[2], res[3], res[4] = v0, v1, v2, v3, v4
+    res[5], res[6], res[7], res[8] = v5, v6, v7, v8
 
 
 @njit(inline="always", cache=True, error_model="numpy")
-def _flux_rows(a):
-    """The rows of a season's running sums (N_FLUX, cells) as a tuple, one per :class:`Flux`."""
-    return (a[_SNOWFALL], a[_RAIN], a[_SNOW_MELT], a[_ICE_MELT], a[_FIRN_MELT], a[_REFREEZING],
-            a[_REL_SNOW], a[_REL_FIRN], a[_REL_ICE], a[_REDIST], a[_EXPORTED], a[_FIRN_TO_ICE])
-
-
-@njit(inline="always", cache=True, error_model="numpy")
-def _day_rows(a):
-    """The rows of the day's values (N_DAY_ROWS, cells) as a tuple."""
-    return (a[0], a[1], a[2], a[3], a[4], a[5], a[6], a[7], a[8])
-
-
-@njit(inline="always", cache=True, error_model="numpy")
-def _balance(run, i):
-    """Balance of cell ``i`` of a chunk from its running sums: accumulation - ablation, mm w.e.
+def _balance(kp, i):
+    """Balance of cell ``i`` of a chunk from its running sums (kept rows ``kp``):
+    accumulation - ablation, mm w.e.
 
     Accumulation = snowfall + refreezing + deposition by sliding snow; ablation = melt of
     snow, firn and ice + loss by sliding snow (the net of the two is ``REDISTRIBUTION``).
     """
     b = 0.0
     for q in range(N_SEASON):
-        b += (run[q, _SNOWFALL, i] + run[q, _REFREEZING, i] + run[q, _REDIST, i]
-              - run[q, _SNOW_MELT, i] - run[q, _FIRN_MELT, i] - run[q, _ICE_MELT, i])
+        r = (K_RUN + q * N_FLUX) * CHUNK_STRIDE + i
+        b += (kp[r + _SNOWFALL * CHUNK_STRIDE] + kp[r + _REFREEZING * CHUNK_STRIDE]
+              + kp[r + _REDIST * CHUNK_STRIDE] - kp[r + _SNOW_MELT * CHUNK_STRIDE]
+              - kp[r + _FIRN_MELT * CHUNK_STRIDE] - kp[r + _ICE_MELT * CHUNK_STRIDE])
     return b
 
 
@@ -966,123 +1070,123 @@ def _firn_turnover(layers, s, c, snow, firn, ice, n_layers):
     return snow - new, total, to_ice
 
 
-@njit(cache=True, error_model="numpy")
-def _chunk(method, mode, carry, cells, days, t_block, p_block, scen, par, out, c0, m, s, n_days,
-           state, run, rad_chunk, t_cells, p_cells, day_rows, runs):
-    """One chunk of ``m`` cells from ``c0`` and one scenario over all days of the call
-    (``rad_chunk``: the chunk's columns of the radiation table)."""
-    for j in range(N_STATE):
+@njit(inline="always", cache=True, error_model="numpy")
+def _day_cells(method, w, kp, a0, m, t0, lapse, p0, warm, pscale, par):
+    """One day of the chunk's ``m`` cells (``T = t0 + lapse * w[W_T] + warm``, ``P = p0 *
+    w[W_P] * pscale``), the state and the season's running sums from row ``a0`` in ``kp`` (see
+    :func:`_store_day`); the radiation method reads the day's radiation from ``w[W_RAD]``."""
+    S = CHUNK_STRIDE
+    if method == Method.DEGREE_DAY:
+        f_snow, f_ice = degree_day_factors(par.ddf_snow, par.ddf_ice)
         for i in range(m):
-            state[j, i] = out.state[j, s, c0 + i]
-    for q in range(N_SEASON):
-        for f in range(N_FLUX):
-            for i in range(m):
-                run[q, f, i] = out.running[q, f, s, c0 + i] if carry else 0.0
-    dz = cells.dz[c0:c0 + m]
-    orog = cells.orog[c0:c0 + m]
-    ice = cells.ice[c0:c0 + m]
-    vol = cells.vol[c0:c0 + m]
-    wcat = cells.wcat[c0:c0 + m]
-    region = cells.region[c0:c0 + m]
-    st = _state_rows(state)
-    dv = _day_rows(day_rows)
-    # the chunk's runs of columns in one region (for the daily region sums)
+            t = t0 + lapse * w[W_T * S + i] + warm
+            p = p0 * w[W_P * S + i] * pscale
+            state, fl = _cell_day(kp[(K_STATE + _SNOW) * S + i], kp[(K_STATE + _FIRN) * S + i],
+                                  kp[(K_STATE + _LIQUID) * S + i], kp[(K_STATE + _COLD_CONTENT) * S + i],
+                                  t, p, f_snow, par.ddf_firn, f_ice, par.inv_ddf_snow,
+                                  par.inv_ddf_firn, w[W_ICE * S + i], par)
+            _store_day(w, kp, a0, i, state, fl)
+    else:
+        for i in range(m):
+            t = t0 + lapse * w[W_T * S + i] + warm
+            p = p0 * w[W_P * S + i] * pscale
+            f_snow, f_ice = hock1999_factors(par.melt_factor, par.rad_snow, par.rad_ice,
+                                             w[W_RAD * S + i])
+            f_firn = f_snow + par.firn_share * (f_ice - f_snow)
+            state, fl = _cell_day(kp[(K_STATE + _SNOW) * S + i], kp[(K_STATE + _FIRN) * S + i],
+                                  kp[(K_STATE + _LIQUID) * S + i], kp[(K_STATE + _COLD_CONTENT) * S + i],
+                                  t, p, f_snow, f_firn, f_ice, _reciprocal(f_snow),
+                                  _reciprocal(f_firn), w[W_ICE * S + i], par)
+            _store_day(w, kp, a0, i, state, fl)
+
+
+@njit(cache=True, error_model="numpy")
+def _chunk(method, mode, cells, days, t_block, p_block, scen, par, out, m, s, n_days,
+           w, kp, rad_chunk, runs, cidx, res):
+    """One chunk of ``m`` columns ``cidx[:m]`` and one scenario over all days of the call
+    (``w``: the task's rows, ``W_*``, inputs filled by :func:`_fill_inputs`; ``kp``: the
+    chunk's kept rows, ``K_*``, filled by :func:`_fill_kept`; ``rad_chunk``: the chunk's
+    columns of the radiation table; ``res``: room for one run's daily sums)."""
+    CH = CHUNK_STRIDE
+    # the chunk's runs of columns in one region (for the daily region sums; columns come in
+    # region order, so a chunk holds few runs)
     n_runs = 0
     for i in range(m):
-        if i == 0 or region[i] != region[i - 1]:
+        if i == 0 or cells.region[cidx[i]] != cells.region[cidx[i - 1]]:
             runs[n_runs] = i
             n_runs += 1
     runs[n_runs] = m
     ice_free = par.n_glaciers
     tid = numba.get_thread_id()
+    use_rad = method == Method.RADIATION
     for d in range(n_days):
         mo = days.month[d]
         warm = scen.warming[s, mo]
         pscale = scen.precip_scale[s, mo]
         q = days.season[d]
-        acc = _flux_rows(run[q])
         if mode == STATION:
             # T = t0 + lapse * dz + warming, P = p0 * orog * scale (see the module docstring)
             t0, lapse, p0 = days.t_station[d], days.lapse[d], days.p_station[d]
-            x_t, x_p = dz, orog
         else:
             # forcing at the cells: the same expressions with t0 = 0, lapse = 1, p0 = 1 (exact)
             t0, lapse, p0 = 0.0, 1.0, 1.0
             for i in range(m):
-                t_cells[i] = t_block[d, c0 + i]
-                p_cells[i] = p_block[d, c0 + i]
-            x_t, x_p = t_cells, p_cells
-        if method == Method.DEGREE_DAY:
-            f_snow, f_ice = degree_day_factors(par.ddf_snow, par.ddf_ice)
-            for i in range(m):
-                t = t0 + lapse * x_t[i] + warm
-                p = p0 * x_p[i] * pscale
-                _cell_day(st, acc, dv, i, t, p, f_snow, par.ddf_firn, f_ice, par.inv_ddf_snow,
-                          par.inv_ddf_firn, ice[i], par)
-        else:
+                w[W_T * CH + i] = t_block[d, cidx[i]]
+                w[W_P * CH + i] = p_block[d, cidx[i]]
+        if use_rad:
             r_lo, r_hi = rad_chunk[days.rad_lo[d]], rad_chunk[days.rad_hi[d]]
             w_lo, w_hi = days.rad_w_lo[d], days.rad_w_hi[d]
             for i in range(m):
-                t = t0 + lapse * x_t[i] + warm
-                p = p0 * x_p[i] * pscale
-                f_snow, f_ice = hock1999_factors(par.melt_factor, par.rad_snow, par.rad_ice,
-                                                 w_lo * r_lo[i] + w_hi * r_hi[i])
-                f_firn = f_snow + par.firn_share * (f_ice - f_snow)
-                _cell_day(st, acc, dv, i, t, p, f_snow, f_firn, f_ice, _reciprocal(f_snow),
-                          _reciprocal(f_firn), ice[i], par)
+                w[W_RAD * CH + i] = w_lo * r_lo[i] + w_hi * r_hi[i]
+        # the season's rows at a constant offset in each branch (see _cell_day)
+        if q == 0:
+            _day_cells(method, w, kp, K_RUN, m, t0, lapse, p0, warm, pscale, par)
+        else:
+            _day_cells(method, w, kp, K_RUN + N_FLUX, m, t0, lapse, p0, warm, pscale, par)
         if par.want_daily:
             # the day's volumes per region (a run of columns at a time) and over the catchment
             dd = days.index[d]
             for r in range(n_runs):
-                g = region[runs[r]]
+                g = cells.region[cidx[runs[r]]]
+                _region_sums(w, W_VOL, runs[r], runs[r + 1], res)
                 for f in range(N_DAY_ROWS):
-                    v = 0.0
-                    for i in range(runs[r], runs[r + 1]):
-                        v += day_rows[f, i] * vol[i]
                     term = N_DAY_ROWS if (f == N_DAY_ROWS - 3 and g == ice_free) else f
-                    out.daily[tid, s, dd, g, term] += v
-            for f in range(N_DAY_ROWS if par.weighted else 0):   # else: the sum of the regions, later
-                v = 0.0
-                v_free = 0.0
-                for i in range(m):
-                    v += day_rows[f, i] * wcat[i]
-                    v_free += day_rows[f, i] * wcat[i] * (1.0 - ice[i])
-                if f == N_DAY_ROWS - 3:
-                    out.daily[tid, s, dd, ice_free + 1, f] += v - v_free
-                    out.daily[tid, s, dd, ice_free + 1, N_DAY_ROWS] += v_free
-                else:
-                    out.daily[tid, s, dd, ice_free + 1, f] += v
+                    out.daily[tid, s, dd, g, term] += res[f]
+            if par.weighted:     # else: the catchment is the sum of the regions, later
+                _region_sums(w, W_CAT, 0, m, res)
+                for f in range(N_DAY_ROWS):
+                    out.daily[tid, s, dd, ice_free + 1, f] += res[f]
+                # released water of ice-free columns is ground water (RELEASED_GROUND)
+                _region_sums(w, W_CAT_FREE, 0, m, res)
+                out.daily[tid, s, dd, ice_free + 1, N_DAY_ROWS - 3] -= res[N_DAY_ROWS - 3]
+                out.daily[tid, s, dd, ice_free + 1, N_DAY_ROWS] += res[N_DAY_ROWS - 3]
         if days.year_end[d]:
             y = days.year[d]
             if par.firn_years > 0:
                 for i in range(m):
-                    sn, fi, to_ice = _firn_turnover(out.layers, s, c0 + i, state[_SNOW, i], state[_FIRN, i],
-                                                    ice[i], par.firn_years)
-                    state[_SNOW, i] = sn
-                    state[_FIRN, i] = fi
-                    run[q, _FIRN_TO_ICE, i] += to_ice
+                    sn, fi, to_ice = _firn_turnover(out.layers, s, cidx[i], kp[(K_STATE + _SNOW) * CH + i],
+                                                    kp[(K_STATE + _FIRN) * CH + i], w[W_ICE * CH + i],
+                                                    par.firn_years)
+                    kp[(K_STATE + _SNOW) * CH + i] = sn
+                    kp[(K_STATE + _FIRN) * CH + i] = fi
+                    kp[(K_RUN + q * N_FLUX + _FIRN_TO_ICE) * CH + i] += to_ice
             for i in range(m):
-                out.cum[s, c0 + i] += _balance(run, i)
-                out.snow_end[s, y, c0 + i] = state[_SNOW, i]
-                out.firn_end[s, y, c0 + i] = state[_FIRN, i]
-                out.storage_end[s, y, c0 + i] = state[_SNOW, i] + state[_FIRN, i] + state[_LIQUID, i]
+                sn = kp[(K_STATE + _SNOW) * CH + i]
+                fi = kp[(K_STATE + _FIRN) * CH + i]
+                out.cum[s, cidx[i]] += _balance(kp, i)
+                out.snow_end[s, y, cidx[i]] = sn
+                out.firn_end[s, y, cidx[i]] = fi
+                out.storage_end[s, y, cidx[i]] = sn + fi + kp[(K_STATE + _LIQUID) * CH + i]
             for qq in range(N_SEASON):
                 for f in range(N_FLUX):
+                    r0 = (K_RUN + qq * N_FLUX + f) * CH
                     for i in range(m):
-                        out.sums[qq, f, s, y, c0 + i] = run[qq, f, i]
-                        run[qq, f, i] = 0.0
+                        out.sums[qq, f, s, y, cidx[i]] = kp[r0 + i]
+                        kp[r0 + i] = 0.0
         k = days.snapshot[d]
         if k >= 0:
             for i in range(m):
-                out.snapshots[k, s, c0 + i] = out.cum[s, c0 + i] + _balance(run, i)
-    for j in range(N_STATE):
-        for i in range(m):
-            out.state[j, s, c0 + i] = state[j, i]
-    if carry:
-        for q in range(N_SEASON):
-            for f in range(N_FLUX):
-                for i in range(m):
-                    out.running[q, f, s, c0 + i] = run[q, f, i]
+                out.snapshots[k, s, cidx[i]] = out.cum[s, cidx[i]] + _balance(kp, i)
 
 
 # ----------------------------------------------------------------------------
@@ -1164,14 +1268,15 @@ def _slide_boundaries(calendar: Calendar, every: int) -> list[int]:
     return sorted(k for k in ks if 0 < k < n)
 
 
-def _slide(slide: Slide, out: Targets, season: int, n_cells: int) -> float:
+def _slide(slide: Slide, out: Targets, season: int, n_cells: int, where: np.ndarray) -> float:
     """Move snow between cells at a day boundary (:func:`firnline.snowslide.redistribute`) and
     share each cell's change back to its columns; returns the time spent, s.
 
     A cell's snow is the share-weighted sum of its columns'; a gain adds the same mm to each
     column of the cell, a loss takes the same fraction of each column's snow (and the export
     in proportion), so every column keeps the cell's budget. Firn is immobile and fills the
-    holding capacity first.
+    holding capacity first. The columns' state and sums are read and written in the chunks'
+    work buffers (``where``: each column's place in them).
     """
     import time
 
@@ -1182,44 +1287,48 @@ def _slide(slide: Slide, out: Targets, season: int, n_cells: int) -> float:
     ns = out.state.shape[1]
     cell_snow = np.zeros((ns, n_cells))
     cell_firn = np.zeros((ns, n_cells))
-    _gather_cells(col, share, out.state, cell_snow, cell_firn)
+    _gather_cells(col, share, out.work, where, cell_snow, cell_firn)
     before = cell_snow.copy()
     change = np.zeros_like(cell_snow)
     exported = np.zeros_like(cell_snow)
     snowslide.redistribute(slide.routing, cell_snow, change=change, exported=exported, immobile=cell_firn)
-    _scatter_columns(col, out.state, out.running, season, before, change, exported)
+    _scatter_columns(col, out.work, where, season, before, change, exported)
     return time.perf_counter() - t0
 
 
 @njit(cache=True, error_model="numpy")
-def _gather_cells(col, share, state, cell_snow, cell_firn):
+def _gather_cells(col, share, work, where, cell_snow, cell_firn):
     """Share-weighted snow and firn of each cell from its columns (scenarios x cells)."""
-    for sc in range(state.shape[1]):
+    for sc in range(work.shape[0]):
         for j in range(col.size):
             c = col[j]
-            cell_snow[sc, c] += share[j] * state[_SNOW, sc, j]
-            cell_firn[sc, c] += share[j] * state[_FIRN, sc, j]
+            cell_snow[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _SNOW) * CHUNK_STRIDE]
+            cell_firn[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _FIRN) * CHUNK_STRIDE]
 
 
 @njit(cache=True, error_model="numpy")
-def _scatter_columns(col, state, running, season, before, change, exported):
+def _scatter_columns(col, work, where, season, before, change, exported):
     """Each cell's change by sliding back to its columns (see :func:`_slide`), with the
     season's REDISTRIBUTION and EXPORTED sums of each column."""
-    for sc in range(state.shape[1]):
+    snow_row = (K_STATE + _SNOW) * CHUNK_STRIDE
+    redist_row = (K_RUN + season * N_FLUX + _REDIST) * CHUNK_STRIDE
+    export_row = (K_RUN + season * N_FLUX + _EXPORTED) * CHUNK_STRIDE
+    for sc in range(work.shape[0]):
         for j in range(col.size):
             c = col[j]
             ch = change[sc, c]
             ex = exported[sc, c]
             if ch == 0.0 and ex == 0.0:
                 continue
+            at = where[j]
             if ch < 0.0:
                 b = before[sc, c]
-                frac = state[_SNOW, sc, j] / b if b > 0.0 else 0.0
+                frac = work[sc, at + snow_row] / b if b > 0.0 else 0.0
                 ch *= frac
                 ex *= frac
-            state[_SNOW, sc, j] = max(state[_SNOW, sc, j] + ch, 0.0)
-            running[season, _REDIST, sc, j] += ch
-            running[season, _EXPORTED, sc, j] += ex
+            work[sc, at + snow_row] = max(work[sc, at + snow_row] + ch, 0.0)
+            work[sc, at + redist_row] += ch
+            work[sc, at + export_row] += ex
 
 
 def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
@@ -1288,7 +1397,10 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     cell_arrays = CellArrays(dz=dz, orog=np.ascontiguousarray(orog), ice=ice,
                              rad_values=np.ascontiguousarray(rad_values), region=region,
                              vol=np.ascontiguousarray(area * 1e-3),
-                             wcat=np.ascontiguousarray(area * 1e-3 * weight))
+                             wcat=np.ascontiguousarray(area * 1e-3 * weight),
+                             # columns handed out in region order (few region runs per chunk
+                             # for the daily sums); results are stored at each column's place
+                             order=np.argsort(region, kind="stable").astype(np.int64))
     days = _day_arrays(calendar, params, station, rad, snaps)
     n_regions = cells.n_regions
     weighted = bool(np.any(weight != 1.0))
@@ -1300,7 +1412,7 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     carry = station is None or slide is not None
     n_threads = numba.get_num_threads()
     out = Targets(state=state,
-                  running=np.zeros((N_SEASON, N_FLUX, ns, n) if carry else (N_SEASON, N_FLUX, 1, 1)),
+                  work=np.zeros((ns, -(-n // CHUNK_CELLS) * K_LEN) if carry else (1, 1)),
                   cum=np.zeros((ns, n)),
                   sums=np.zeros((N_SEASON, N_FLUX, ns, n_years, n), dtype="float32"),
                   snow_end=np.zeros((ns, n_years, n), dtype="float32"),
@@ -1342,7 +1454,7 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
     if station is not None and slide is None:
         for c_lo in range(0, n, GROUP_CELLS):
             c_hi = min(n, c_lo + GROUP_CELLS)
-            _advance(int(method), STATION, False, cell_arrays, days, unused, unused, scen, par,
+            _advance(int(method), STATION, False, True, True, cell_arrays, days, unused, unused, scen, par,
                      c_lo, c_hi, out)
             if progress is not None:
                 progress(int(n_days * c_hi // n))
@@ -1355,20 +1467,24 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
     edges = sorted(edges | slides)
     slide_s = 0.0
     n_cells = int(slide.routing.n_cells) if slide is not None else 0
+    # each column's place in the chunks' work buffers (see _advance)
+    pos = np.empty(n, dtype=np.int64)
+    pos[cell_arrays.order] = np.arange(n)
+    where = (pos // CHUNK_CELLS) * K_LEN + pos % CHUNK_CELLS
     for a, b in zip(edges[:-1], edges[1:]):
         if a in slides:
-            slide_s += _slide(slide, out, int(days.season[a]), n_cells)
+            slide_s += _slide(slide, out, int(days.season[a]), n_cells, where)
         if station is None:
             t, p = forcing.block(a, b)
             t = np.ascontiguousarray(t, dtype="float32")
             p = np.ascontiguousarray(p, dtype="float32")
             if t.shape != (b - a, n) or p.shape != (b - a, n):
                 raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
-            _advance(int(method), CELL, True, cell_arrays, _slice_days(days, a, b), t, p, scen, par,
-                     0, n, out)
+            _advance(int(method), CELL, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+                     t, p, scen, par, 0, n, out)
         else:
-            _advance(int(method), STATION, True, cell_arrays, _slice_days(days, a, b), unused, unused,
-                     scen, par, 0, n, out)
+            _advance(int(method), STATION, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+                     unused, unused, scen, par, 0, n, out)
         if progress is not None:
             progress(b)
     return slide_s

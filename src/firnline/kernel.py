@@ -94,17 +94,21 @@ equal values, bit for bit the same as a uniform step.
 
 Layout for speed
 ----------------
-Cells are processed in chunks of :data:`CHUNK_CELLS`, chunks in parallel; for each chunk
-and scenario the days run in the middle and the innermost loop runs over the chunk's
-cells with branch-free arithmetic (min/max and selects), which the compiler turns into
-packed SIMD code. The chunk's state, its running per-season sums and its columns of the
-radiation table (read once per chunk, as float64) live in small local arrays that stay in
-the core's cache for the whole record. All arithmetic and the
-running sums are float64 (so results match the previous scalar kernel to rounding); the
-per-year per-season sums are stored as float32 (each is a single rounding of a float64
-sum); cumulative snapshots stay float64. In station mode each chunk runs the whole record
-in one go; in cell mode the days come in blocks and the state and running sums are carried
-between blocks.
+Columns are processed in chunks of :data:`CHUNK_CELLS`, in region order (``Cells.order``,
+so a chunk holds one or two regions for the daily sums; results go to each column's own
+place), chunks in parallel; for each chunk and scenario the days run in the middle and the
+innermost loop runs over the chunk's cells with branch-free arithmetic (min/max and
+selects) on scalars (:func:`_cell_day`), which the compiler turns into packed SIMD code.
+A chunk's rows (its kept state and running per-season sums, ``K_*``; its inputs, the day's
+radiation and the day's fluxes, ``W_*``) lie at constant offsets in two flat buffers, rows
+:data:`CHUNK_STRIDE` apart, that stay in the core's cache; its columns of the radiation
+table are read once per call, as float64. All arithmetic and the running sums are float64
+(so results match the previous scalar kernel to rounding); the per-year per-season sums
+are stored as float32 (each is a single rounding of a float64 sum); cumulative snapshots
+stay float64; the daily region sums are packed partial sums (:func:`_region_sums`). In
+station mode each chunk runs the whole record in one go; in cell mode (the days come in
+blocks) and with snow redistribution (the record is cut at its boundaries) each chunk's
+kept rows persist in ``Targets.work`` between calls.
 
 Threads: the numba threading layer defaults to OpenMP with a passive wait policy
 (``OMP_WAIT_POLICY=passive``, set only if the user has not set it), so idle workers sleep
@@ -228,7 +232,7 @@ class Season(IntEnum):
 
 N_STATE, N_FLUX, N_SEASON, N_DAILY = len(State), len(Flux), len(Season), len(Daily)
 # the same names as plain ints for compiled code (numba indexes tuples by int constants);
-# _state_rows and _flux_rows list one entry per member
+# _cell_day, _store_day and _fill_kept handle one entry per member
 _SNOW, _FIRN, _LIQUID, _COLD_CONTENT = (int(x) for x in State)
 (_SNOWFALL, _RAIN, _SNOW_MELT, _ICE_MELT, _FIRN_MELT, _REFREEZING, _REL_SNOW, _REL_FIRN, _REL_ICE,
  _REDIST, _EXPORTED, _FIRN_TO_ICE) = (int(x) for x in Flux)
@@ -244,7 +248,7 @@ COLD_PER_K = 2097.0 / 334000.0
 #: the last day of each balance year (see the module docstring, "Snow redistribution")
 SLIDE_INTERVAL_DAYS = 5
 if (N_STATE, N_FLUX) != (4, 12):  # pragma: no cover - a reminder for whoever adds a member
-    raise ImportError("kernel: list every State and Flux member in _state_rows / _flux_rows")
+    raise ImportError("kernel: handle every State and Flux member in _cell_day and _store_day")
 #: cells per chunk: the chunk's state and sums (~10 kB) stay in the L1/L2 cache
 CHUNK_CELLS = 256
 #: chunks per parallel task

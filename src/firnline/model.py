@@ -643,7 +643,9 @@ class RunResult:
     profiles : DataFrame with :data:`PROFILE_COLUMNS`
     gradients : DataFrame (glacier, balance_year, gradient_mwe_per_100m)
     water_budget : DataFrame with :data:`firnline.water_budget.COLUMNS`
-    kernel : the kernel's result (per surface column; ``daily`` region sums for runoff)
+    kernel : the kernel's result (per surface column; ``daily`` region sums for runoff), for a
+        run of one unit in this process; None for a tiled run (:mod:`firnline.tiles`)
+    compute : how the units ran; compute_notes : notes of ``[compute] cells = "glaciers"``
     """
 
     setup: Setup

@@ -36,6 +36,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import exact
+from .outdir import pause_point
 from .progress import Progress
 
 
@@ -223,6 +224,7 @@ def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 
                                     keep_kernel=len(units) == 1))
             if progress is not None and len(units) > 1:
                 progress("units", k + 1, len(units))
+            pause_point("unit")
     else:
         results, how = _distributed(setup, config, units, warming_k, precip_change_pct, progress, client)
     fields, gsums, budget, daily = merge(setup, results, positions)
@@ -281,6 +283,7 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
             results.append(fut.result())
             if progress is not None:
                 progress("units", k, len(units))
+            pause_point("unit")
         return results, how
     finally:
         for thing in own:

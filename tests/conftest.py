@@ -35,6 +35,15 @@ def write_dem(path: Path, elevation: np.ndarray, cell=50.0, x0=600000.0, y0=5150
     return path
 
 
+def write_sparse_dem(path: Path, size: int, cell=1.0) -> Path:
+    """A sparse, tiled size x size DEM: its header says size**2 cells, the file holds one 256-cell block."""
+    with rasterio.open(path, "w", driver="GTiff", width=size, height=size, count=1, dtype="float32",
+                       crs=CRS, transform=from_origin(600000, 5150000, cell, cell), nodata=-9999,
+                       tiled=True, SPARSE_OK=True, BIGTIFF="YES") as dst:
+        dst.write(np.full((256, 256), 2500, dtype="float32"), 1, window=((0, 256), (0, 256)))
+    return path
+
+
 def ramp(ny=20, nx=10, z_top=3000.0, z_bottom=2000.0) -> np.ndarray:
     """A plane rising northwards (row 0 is north) from z_bottom to z_top at the row centres."""
     z = np.linspace(z_top, z_bottom, ny)
@@ -272,7 +281,8 @@ def station_run(z, ice, z_station, T, P, month, doy, year, winter, params, warmi
 @pytest.fixture(scope="session")
 def builders():
     """The builders above as one namespace: ``builders.write_dem(...)``, ``builders.ramp()``, ..."""
-    return SimpleNamespace(write_dem=write_dem, ramp=ramp, write_station=write_station,
+    return SimpleNamespace(write_dem=write_dem, write_sparse_dem=write_sparse_dem, ramp=ramp,
+                           write_station=write_station,
                            write_config=write_config, write_outlines=write_outlines,
                            base_sections=base_sections, folder_case=folder_case, snapshot=snapshot,
                            work_entries=work_entries, seasonal=seasonal, seasonal_station=seasonal_station,

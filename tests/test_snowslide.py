@@ -245,6 +245,13 @@ def test_a_run_on_the_upslope_area_of_some_cells_gives_them_the_same_snow(scheme
     exported = redistribute(sub, part)
     np.testing.assert_allclose(part[targets[pos]], full[targets], rtol=1e-12)
     assert part.sum() + exported == pytest.approx(snow[pos].sum(), rel=1e-13)
+    # each cell's change and export (off the DEM) are those of the run of every cell: snow sent
+    # to a valid cell outside the subset leaves it without counting as exported
+    ch_full, ex_full = np.zeros(r.n_cells), np.zeros(r.n_cells)
+    redistribute(r, snow.copy(), change=ch_full, exported=ex_full)
+    ch_sub, ex_sub = np.zeros(pos.size), np.zeros(pos.size)
+    redistribute(sub, snow[pos].copy(), change=ch_sub, exported=ex_sub)
+    assert np.array_equal(ch_sub[targets[pos]], ch_full[targets]) and np.array_equal(ex_sub, ex_full[pos])
     # no cell outside the upslope area sends snow into it
     donors = np.repeat(r.order, np.diff(r.recv_ptr))
     inner = r.recv_pos >= 0

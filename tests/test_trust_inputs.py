@@ -195,11 +195,7 @@ def test_special_file_as_input_is_refused_at_once(builders, tmp_path, capsys, ro
 def test_memory_estimate_refuses_a_run_that_cannot_fit(builders, tmp_path, capsys):
     """A sparse 200 000 x 200 000 DEM (its header says 4e10 cells; the file is tiny)."""
     builders.folder_case(tmp_path)
-    big = tmp_path / "big.tif"
-    with rasterio.open(big, "w", driver="GTiff", width=200_000, height=200_000, count=1, dtype="float32",
-                       crs="EPSG:32632", transform=from_origin(600000, 5150000, 1, 1), nodata=-9999,
-                       tiled=True, SPARSE_OK=True, BIGTIFF="YES") as dst:
-        dst.write(np.full((256, 256), 2500, dtype="float32"), 1, window=((0, 256), (0, 256)))
+    builders.write_sparse_dem(tmp_path / "big.tif", 200_000)
     cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"})
     line = refused(builders, ["run", str(cfg)], capsys, "200000 x 200000 cells", "memory", "coarser DEM",
                    "3 balance years")

@@ -152,3 +152,23 @@ def test_sigkill_leftovers_are_cleared_by_the_next_run(builders, earlier, tmp_pa
     assert builders.work_entries(out)
     assert main(["run", str(cfg), "--out", str(out), "--warming", "1", "--quiet"]) == 0
     assert same_set(builders, out, new) and builders.work_entries(out) == []
+
+
+@pytest.mark.parametrize("workers", [1, 2], ids=["in-process", "LocalCluster"])
+def test_interrupted_tiled_run_leaves_the_old_set_complete(builders, earlier, tmp_path, workers):
+    """SIGINT after the first of two units (tile_size 16 on the 20 x 10 case): the earlier set stays."""
+    cfg, old, _ = earlier
+    tiled = builders.folder_case(tmp_path / "case", compute={"tile_size": 16, "workers": workers})
+    out = tmp_path / "out"
+    assert main(["run", str(cfg), "--out", str(out), "--quiet"]) == 0      # the earlier set
+    pause = tmp_path / "pause"
+    proc = start(tiled, out, pause, "unit", "1")
+    wait_for(pause / "unit.reached", proc)
+    proc.send_signal(signal.SIGINT)
+    release(pause, "unit", proc)
+    _, err = proc.communicate(timeout=180)
+    assert proc.returncode == 128 + signal.SIGINT, err
+    assert "Traceback" not in err and "still holds the earlier outputs" in err
+    assert len([ln for ln in err.strip().splitlines() if ln.strip()]) == 1, err
+    assert same_set(builders, out, old), sorted(builders.snapshot(out))
+    assert builders.work_entries(out) == [] and not lock_path(out).exists()

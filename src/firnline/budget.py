@@ -101,7 +101,45 @@ def check(est: Estimate, available: int | None = None) -> None:
         f"This run needs about {_gb(est.bytes)} of memory (DEM {ny} x {nx} cells, {est.years} balance years, "
         f"{est.scenarios} scenario{'s' if est.scenarios != 1 else ''}, band width {est.band_width_m:g} m), "
         f"more than the {_gb(avail)} available; use a coarser DEM (or a smaller window of it), fewer years "
-        "([climate] start and end), fewer scenarios, or a tiled run once tiling exists.")
+        "([climate] start and end) or fewer scenarios (a tiled run bounds the kernel's memory per unit, "
+        "but the maps of every year are still assembled in memory).")
+
+
+# one unit of a tiled run (firnline.tiles) in one worker process: its setup cut, kernel state and
+# running sums per surface column, and per year the kernel's results (16 terms float32), the
+# unit's per-year fields (8 maps float32) and their copies in the merge (generous, as above)
+_UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO
+_UNIT_BYTES_PER_CELL_YEAR = 4 * 16 + 4 * 8 * 2
+
+
+def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1) -> tuple[int, int]:
+    """Peak memory of one unit's task (bytes) and its cells: a DEM smaller than a unit is one unit."""
+    cells = min(int(tile_size), shape[0]) * min(int(tile_size), shape[1])
+    b = _FIXED_BYTES + cells * scenarios * (_UNIT_BYTES_PER_CELL + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
+    return int(b), cells
+
+
+def check_unit(compute, shape: tuple[int, int], years: int, scenarios: int = 1,
+               available: int | None = None) -> None:
+    """InputError when the units of ``[compute]`` cannot fit: ``workers`` units at once (one per worker
+    process of a local cluster; one unit when the DEM is one unit) against the available memory."""
+    avail = available_bytes() if available is None else available
+    if avail is None:
+        return
+    need, cells = unit_bytes(compute.tile_size, shape, years, scenarios)
+    n_units = -(-shape[0] // compute.tile_size) * -(-shape[1] // compute.tile_size)
+    at_once = min(compute.workers, n_units) if compute.scheduler == "local" else 1
+    if need * at_once <= avail:
+        return
+    fits = [t for t in (4096, 2048, 1024, 512, 256, 128, 64, 32, 16)
+            if t < compute.tile_size and unit_bytes(t, shape, years, scenarios)[0] * at_once <= avail]
+    fix = (f"set [compute] tile_size to {fits[0]} or less" if fits else
+           "free memory or use a machine with more (even a unit of 16 x 16 cells does not fit)")
+    workers = f" ({at_once} workers at once: {_gb(need * at_once)})" if at_once > 1 else ""
+    raise InputError(
+        f"[compute] tile_size = {compute.tile_size} gives units of {cells} cells that need about {_gb(need)} "
+        f"each over {years} balance year{'s' if years != 1 else ''}{workers}, more than the {_gb(avail)} "
+        f"available; {fix}" + (" or lower [compute] workers." if at_once > 1 and fits else "."))
 
 
 def count_lines(path: Path, limit: int = 2**31) -> int:
@@ -119,6 +157,20 @@ def count_lines(path: Path, limit: int = 2**31) -> int:
 
 def estimate_for(config, scenarios: int = 1) -> Estimate:
     """The estimate of a run of ``config`` from file headers only (no input is read whole)."""
+    shape, years, glaciers = _header_sizes(config)
+    sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
+    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors)
+
+
+def check_run(config, scenarios: int = 1, available: int | None = None) -> None:
+    """The checks before a run: its units (:func:`check_unit`), then the whole run (:func:`check`)."""
+    shape, years, _ = _header_sizes(config)
+    check_unit(config.compute, shape, years, scenarios, available)
+    check(estimate_for(config, scenarios), available)
+
+
+def _header_sizes(config) -> tuple[tuple[int, int], int, int]:
+    """DEM shape, balance years and glaciers of ``config`` from file headers only."""
 
     import rasterio
     from rasterio.errors import RasterioIOError
@@ -152,5 +204,4 @@ def estimate_for(config, scenarios: int = 1) -> Estimate:
             glaciers = max(1, int(pyogrio.read_info(gl.outlines, layer=gl.layer).get("features", 1)))
         except Exception:           # the reader will name the problem
             glaciers = 1
-    sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
-    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors)
+    return shape, years, glaciers

@@ -12,6 +12,7 @@ import dataclasses
 import datetime as _dt
 import difflib
 import math
+import re
 import tomllib  # Python 3.11+ (pyproject.toml requires it)
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -26,6 +27,8 @@ from .parameters import MAX_INVERSION_K_PER_M, MIN_LAPSE_K_PER_M
 REDISTRIBUTION_CHOICES = ("gravitational", "none")
 #: ``[snow] refreezing``: the cold-content scheme of firnline.kernel (retention and refreezing) or none
 REFREEZING_CHOICES = ("cold-content", "none")
+#: ``[compute] cells``: every valid DEM cell, or the glacier cells and those within glacier_buffer_m of them
+CELLS_CHOICES = ("all", "glaciers")
 
 REQUIRED = object()  # marker: the key has no default and must be given
 OPTIONAL = None
@@ -144,6 +147,14 @@ def _table(v, where):
     return dict(v)
 
 
+def _scheduler(v, where):
+    """``"local"`` or the address of a dask.distributed scheduler (``tcp://host:port``, ``host:port``)."""
+    if isinstance(v, str) and (v == "local" or re.fullmatch(r"(tcp|tls|ucx|ws|wss|inproc)://\S+|[\w.-]+:\d+", v)):
+        return v
+    raise _fail(where, '"local" (a local dask cluster) or the address of a dask.distributed scheduler, '
+                'for example "tcp://10.0.0.5:8786"', v)
+
+
 def _boolean(v, where):
     if not isinstance(v, bool):
         raise _fail(where, "true or false", v)
@@ -151,7 +162,7 @@ def _boolean(v, where):
 
 
 for _check, _type in ((_path, Path), (_date, _dt.date), (_month_day, str), (_lapse, tuple), (_pair, tuple),
-                      (_string_list, tuple), (_table, dict), (_boolean, bool)):
+                      (_string_list, tuple), (_table, dict), (_boolean, bool), (_scheduler, str)):
     _check.type = _type   # the type of the value a checker returns (for the typed sections)
 
 
@@ -230,6 +241,14 @@ SCHEMA: dict[str, dict[str, tuple[Callable, Any]]] = {
         "ratios": (_table, {}),
         "discharge_sigma_pct": (_number(0.0, 100.0, lo_open=True), 15.0),
     },
+    "compute": {
+        # cells along a unit's side (firnline.tiles); a DEM smaller than one unit is one unit
+        "tile_size": (_integer(16, 1 << 20), 2048),
+        "workers": (_integer(1, 4096), 2),                 # dask worker processes of a local cluster
+        "scheduler": (_scheduler, "local"),
+        "cells": (_string(CELLS_CHOICES), CELLS_CHOICES[0]),
+        "glacier_buffer_m": (_number(0.0, 1.0e6), 500.0),  # with cells = "glaciers"
+    },
 }
 
 
@@ -298,6 +317,8 @@ Output = _section_type("output", "Output")
 Radiation = _section_type("radiation", "Radiation")
 Observations = _section_type("observations", "Observations")
 Calibration = _section_type("calibration", "Calibration")
+#: ``[compute]``: units of work (tiles), dask workers and scheduler, which cells are modelled
+Compute = _section_type("compute", "Compute")
 
 
 @dataclass(frozen=True)
@@ -313,6 +334,7 @@ class Config:
     balance: Balance
     output: Output
     radiation: Radiation
+    compute: Compute = field(default_factory=lambda: Compute(**{k: d for k, (_, d) in SCHEMA["compute"].items()}))
     runoff: Runoff | None = None        # always set by parse_config (the section is optional in a file)
     glaciers: GlacierOutlines | None = None
     observations: Observations | None = None
@@ -342,7 +364,8 @@ class Config:
 _SECTION_TYPES = {
     "site": Site, "dem": Dem, "glaciers": GlacierOutlines, "climate": Climate,
     "downscaling": Downscaling, "melt": Melt, "snow": Snow, "balance": Balance, "output": Output,
-    "radiation": Radiation, "runoff": Runoff, "observations": Observations, "calibration": Calibration,
+    "radiation": Radiation, "compute": Compute, "runoff": Runoff, "observations": Observations,
+    "calibration": Calibration,
 }
 
 
@@ -393,10 +416,24 @@ def parse_config(data: dict, base_dir: Path, source: Path | None = None) -> Conf
     _check_climate(cl, data.get("climate", {}), label)
     if cl.start and cl.end and cl.end <= cl.start:
         raise InputError(f"{label}: [climate] end ({cl.end}) must come after start ({cl.start}).")
+    _check_compute(sections, label)
     if "calibration" in sections:
         from .calibrate.spec import check_section  # all [calibration] checks live there
         check_section(sections["calibration"], label)
     return Config(**sections, source=source, raw=data)
+
+
+def _check_compute(sections: dict, label: str) -> None:
+    """``cells = "glaciers"`` models part of the ground: refuse the inputs that need all of it."""
+    if sections["compute"].cells != "glaciers":
+        return
+    obs = sections.get("observations")
+    for key, given in (("[runoff] catchment", sections["runoff"].catchment),
+                       ("[observations] discharge", obs.discharge if obs is not None else None)):
+        if given is not None:
+            raise InputError(f'{label}: [compute] cells = "glaciers" models only the glaciers and their '
+                             f"surroundings, so the catchment runoff that {key} asks for would miss the rest "
+                             f'of the catchment; set [compute] cells = "all" or remove {key}.')
 
 
 def _check_climate(cl: Climate, given: dict, label: str) -> None:

@@ -754,6 +754,11 @@ _ROWS = (
     ("radiation", "horizon_distance_m", 20000, "default"),
     ("radiation", "cache_dir", ".firnline_cache", "default, relative to this file"),
     ("radiation", "write_horizons", False, "default: also write horizon.tif with `firnline terrain`"),
+    ("compute", "tile_size", 2048, "default: cells along a unit's side (a DEM smaller than one unit is one unit)"),
+    ("compute", "workers", 2, "default: dask worker processes of the local cluster"),
+    ("compute", "scheduler", "local", 'default; or the address of a dask.distributed scheduler, "tcp://host:8786"'),
+    ("compute", "cells", "all", 'default; or "glaciers": the glacier cells and those within glacier_buffer_m'),
+    ("compute", "glacier_buffer_m", 500, "default: with cells = \"glaciers\""),
 )
 
 _CALIBRATION_ROWS = (

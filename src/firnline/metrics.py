@@ -59,6 +59,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from . import exact
+
 OK, BELOW, ABOVE = "ok", "below_glacier", "above_glacier"
 
 BUDGET_COLUMNS = ["glacier", "ela0_m", "aar0", "r2", "n_years", "aar_r2", "dela_db_m_per_mwe",
@@ -103,14 +105,34 @@ class Profile:
 
 
 def specific_balance(values: np.ndarray, weights: np.ndarray) -> float:
-    """Area-weighted mean of ``values`` (any unit) with ``weights`` (areas)."""
-    wsum = float(np.sum(weights))
-    return float(np.sum(values * weights) / wsum) if wsum > 0 else float("nan")
+    """Area-weighted mean of ``values`` (any unit) with ``weights`` (areas); exact sums (:mod:`firnline.exact`)."""
+    wsum = exact.total(weights)
+    return exact.total(values * weights) / wsum if wsum > 0 else float("nan")
+
+
+def _band_index(z_m: np.ndarray, band_width_m: float) -> np.ndarray:
+    return np.floor(z_m / band_width_m).astype(np.int64)
+
+
+def profile_from_sums(band: np.ndarray, area_m2: np.ndarray, weighted_balance: np.ndarray,
+                      weighted_z: np.ndarray, band_width_m: float) -> Profile:
+    """A :class:`Profile` from the sums per band (ascending band numbers ``k``, band ``[k w, (k + 1) w)``):
+    glacier area, area x balance and area x elevation; empty bands are dropped."""
+    keep = area_m2 > 0
+    bottom = np.asarray(band, dtype="float64") * band_width_m
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bal = weighted_balance / area_m2
+        zmean = weighted_z / area_m2
+    return Profile(band_bottom_m=bottom[keep], band_top_m=bottom[keep] + band_width_m,
+                   area_m2=area_m2[keep], balance_mwe=bal[keep], mean_elevation_m=zmean[keep])
 
 
 def band_profile(z_m: np.ndarray, balance_mwe: np.ndarray, area_m2: np.ndarray,
                  band_width_m: float) -> Profile:
     """Area-weighted balance in elevation bands of ``band_width_m`` (empty bands dropped).
+
+    The band sums are exact (:mod:`firnline.exact`), so they do not depend on the order of
+    the cells (a tiled run merges the same sums from its units).
 
     Parameters
     ----------
@@ -118,20 +140,11 @@ def band_profile(z_m: np.ndarray, balance_mwe: np.ndarray, area_m2: np.ndarray,
         Elevation (m), annual balance (m w.e.) and glacier area (m2) of each cell.
     band_width_m : float
     """
-    k = np.floor(z_m / band_width_m).astype(np.int64)
-    k0 = int(k.min())
-    idx = k - k0
-    nb = int(idx.max()) + 1
-    area = np.bincount(idx, weights=area_m2, minlength=nb)
-    wbal = np.bincount(idx, weights=area_m2 * balance_mwe, minlength=nb)
-    wz = np.bincount(idx, weights=area_m2 * z_m, minlength=nb)
-    keep = area > 0
-    bottom = (np.arange(nb) + k0) * band_width_m
-    with np.errstate(invalid="ignore", divide="ignore"):
-        bal = wbal / area
-        zmean = wz / area
-    return Profile(band_bottom_m=bottom[keep], band_top_m=bottom[keep] + band_width_m,
-                   area_m2=area[keep], balance_mwe=bal[keep], mean_elevation_m=zmean[keep])
+    k = _band_index(z_m, band_width_m)
+    bands = np.unique(k)
+    sums = [exact.lookup(*exact.values(exact.of(k, v)), bands)
+            for v in (area_m2, area_m2 * balance_mwe, area_m2 * z_m)]
+    return profile_from_sums(bands, *sums, band_width_m)
 
 
 def ela(z_m: np.ndarray, balance_mwe: np.ndarray, area_m2: np.ndarray,
@@ -207,8 +220,8 @@ def aar(balance_mwe: np.ndarray, area_m2: np.ndarray, flag: str) -> float:
         return 0.0
     if flag == BELOW:
         return 1.0
-    total = float(area_m2.sum())
-    return float(area_m2[balance_mwe > 0].sum() / total) if total > 0 else float("nan")
+    total = exact.total(area_m2)
+    return exact.total(area_m2[balance_mwe > 0]) / total if total > 0 else float("nan")
 
 
 def ablation_gradient(profile: Profile, ela_m: float, flag: str) -> float:
@@ -237,14 +250,77 @@ class YearMetrics:
 
 def glacier_year(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m) -> YearMetrics:
     """All metrics of one glacier in one balance year (inputs over the glacier's cells)."""
-    prof = band_profile(z_m, annual_mwe, area_m2, band_width_m)
-    ela_m, flag = ela(z_m, annual_mwe, area_m2, band_width_m)
-    return YearMetrics(area_m2=float(area_m2.sum()),
-                       annual_mwe=specific_balance(annual_mwe, area_m2),
-                       winter_mwe=specific_balance(winter_mwe, area_m2),
-                       summer_mwe=specific_balance(summer_mwe, area_m2),
-                       ela_m=ela_m, aar=aar(annual_mwe, area_m2, flag), ela_flag=flag,
-                       gradient_mwe_per_100m=ablation_gradient(prof, ela_m, flag), profile=prof)
+    sums = glacier_sums(z_m, area_m2, [annual_mwe], [winter_mwe], [summer_mwe], band_width_m)
+    return glacier_years_from_sums(sums, 1, band_width_m)[0]
+
+
+# ----------------------------------------------------------------------------
+# the sums behind the metrics of a glacier: partial sums of parts of it merge exactly
+# ----------------------------------------------------------------------------
+
+# key = ((slot * _NQ + quantity) << _BAND_BITS) + band + _BAND_OFFSET; slot 0: fixed, 1 + y: year y
+_NQ, _BAND_BITS, _BAND_OFFSET = 8, 17, 1 << 16
+_AREA, _CB_AREA, _CB_Z, _FB_AREA, _FB_Z = 0, 1, 2, 3, 4          # fixed over the years
+_TOTALS, _CB_BAL, _FB_BAL = 5, 6, 7                                # per year
+_ANNUAL, _WINTER, _SUMMER, _POSITIVE = 0, 1, 2, 3                  # the "band" slots of _TOTALS
+
+
+def _key(slot: int, quantity: int, band) -> np.ndarray:
+    return ((slot * _NQ + quantity) << _BAND_BITS) + np.asarray(band, dtype=np.int64) + _BAND_OFFSET
+
+
+def glacier_sums(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m) -> exact.Sums:
+    """The exact sums of a glacier's cells (or of some of them) behind :func:`glacier_years_from_sums`.
+
+    ``z_m`` and ``area_m2`` (n_cells,); the balances (n_years, n_cells) m w.e. Sums of parts of
+    a glacier (the units of a tiled run) merged with :func:`firnline.exact.merge` equal the sums
+    of the whole glacier exactly.
+    """
+    z = np.asarray(z_m, dtype="float64")
+    a = np.asarray(area_m2, dtype="float64")
+    cb = _band_index(z, band_width_m)
+    fb = _band_index(z, min(FINE_BAND_M, band_width_m))
+    parts = [exact.of(np.concatenate([_key(0, _AREA, np.zeros(z.size, np.int64)), _key(0, _CB_AREA, cb),
+                                      _key(0, _CB_Z, cb), _key(0, _FB_AREA, fb), _key(0, _FB_Z, fb)]),
+                      np.concatenate([a, a, a * z, a, a * z]))]
+    zero = np.zeros(z.size, np.int64)
+    for y, (b, w, s) in enumerate(zip(annual_mwe, winter_mwe, summer_mwe)):
+        b = np.asarray(b, dtype="float64")
+        slot = y + 1
+        keys = [_key(slot, _TOTALS, zero + q) for q in (_ANNUAL, _WINTER, _SUMMER, _POSITIVE)]
+        vals = [a * b, a * np.asarray(w, dtype="float64"), a * np.asarray(s, dtype="float64"), np.where(b > 0, a, 0.0)]
+        parts.append(exact.of(np.concatenate(keys + [_key(slot, _CB_BAL, cb), _key(slot, _FB_BAL, fb)]),
+                              np.concatenate(vals + [a * b, a * b])))
+    return exact.merge(parts)
+
+
+def glacier_years_from_sums(sums: exact.Sums, n_years: int, band_width_m: float) -> list[YearMetrics]:
+    """The metrics of each balance year from a glacier's :func:`glacier_sums` (module docstring: the rules)."""
+    keys, vals = exact.values(sums)
+
+    def block(slot, quantity):          # the bands of one quantity: (band numbers, sums)
+        lo = int(_key(slot, quantity, -_BAND_OFFSET))
+        i, j = np.searchsorted(keys, [lo, lo + (1 << _BAND_BITS)])
+        return keys[i:j] - lo - _BAND_OFFSET, vals[i:j]
+
+    def profile(slot, q_area, q_z, q_bal, width):
+        band, area = block(0, q_area)
+        return profile_from_sums(band, area, exact.lookup(*block(slot, q_bal), band),
+                                 exact.lookup(*block(0, q_z), band), width)
+
+    area = float(exact.lookup(keys, vals, _key(0, _AREA, 0)))
+    out = []
+    for y in range(n_years):
+        t = exact.lookup(keys, vals, _key(y + 1, _TOTALS, [_ANNUAL, _WINTER, _SUMMER, _POSITIVE]))
+        mean = t / area if area > 0 else np.full(4, np.nan)
+        prof = profile(y + 1, _CB_AREA, _CB_Z, _CB_BAL, band_width_m)
+        fine = profile(y + 1, _FB_AREA, _FB_Z, _FB_BAL, min(FINE_BAND_M, band_width_m))
+        ela_m, flag = ela_from_profile(fine, window_m=band_width_m)
+        aar_ = 0.0 if flag == ABOVE else 1.0 if flag == BELOW else float(mean[_POSITIVE])
+        out.append(YearMetrics(area_m2=area, annual_mwe=float(mean[_ANNUAL]), winter_mwe=float(mean[_WINTER]),
+                               summer_mwe=float(mean[_SUMMER]), ela_m=ela_m, aar=aar_, ela_flag=flag,
+                               gradient_mwe_per_100m=ablation_gradient(prof, ela_m, flag), profile=prof))
+    return out
 
 
 def line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:

@@ -43,7 +43,7 @@ from .kernel import (
     StationForcing,
     run_kernel,
 )
-from .metrics import YearMetrics, glacier_year
+from .metrics import YearMetrics, glacier_sums, glacier_years_from_sums
 from .progress import Progress, stage
 from .provenance import CAUTION
 from .radiation import RadiationTable
@@ -252,8 +252,9 @@ def check_config(setup: Setup, config: Config | None) -> Config:
     return config
 
 
-#: Parts of a config that do not change results (where they go, what a calibration fits to).
-_RESULT_FREE = ("output", "observations", "calibration", "source", "raw")
+#: Parts of a config that do not shape the setup (where results go, what a calibration fits to, how
+#: and which cells of it a run computes).
+_RESULT_FREE = ("output", "observations", "calibration", "compute", "source", "raw")
 
 
 def prepare(config: Config, progress: Progress = None, need_radiation: bool | None = None) -> Setup:
@@ -543,7 +544,7 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         Positions (into ``setup.cells`` order, ascending) to restrict the run to
         (:meth:`Setup.select`). With snow redistribution the run covers every cell
         upslope of them too (exact for the asked cells); the result holds the columns of
-        the asked cells only, in :meth:`Columns.select` order.
+        the asked cells only, in :meth:`Columns.select` order, and so do the daily region sums.
     scenarios : firnline.kernel.Scenarios, optional
         Monthly scenarios; replaces ``warming_k`` and ``precip_change_pct`` when given.
     catchment_weight : ndarray (n_cells,) float, optional
@@ -555,6 +556,7 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
     keep = None
+    halo = None           # cells run only for the snow they send to the asked cells (not in the daily sums)
     if cells is not None:
         cells = np.asarray(cells, dtype=np.int64)
         if setup.routing is not None:
@@ -567,6 +569,7 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
                 mark[keep_cells] = True
                 keep = np.concatenate([keep_cells, inner.n_cells + np.flatnonzero(mark[inner.cell[inner.n_cells:]])])
                 cells = wide
+                halo = ~mark
         if catchment_weight is not None:
             catchment_weight = np.asarray(catchment_weight)[cells]
         setup = setup.select(cells)
@@ -592,9 +595,16 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     if catchment_weight is None:
         catchment_weight = setup.catchment_weight
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
-    kcells = Cells(setup.z_m[cols.cell], cols.ice, rad, region=cols.region,
+    region, n_gl = cols.region, len(setup.glaciers.names)
+    if halo is not None and daily:
+        # the upslope cells outside the asked ones go to an extra region, dropped below, so the
+        # daily sums hold the asked cells only (as the rest of the result does)
+        out_col = halo[cols.cell]
+        region = np.where(out_col, n_gl, region + (region >= n_gl)).astype(np.int32)
+        weight = np.where(out_col, 0.0, weight)
+    kcells = Cells(setup.z_m[cols.cell], cols.ice, rad, region=region,
                    area_m2=setup.grid.cell_area_m2 * cols.share, catchment_weight=weight,
-                   n_glaciers=len(setup.glaciers.names))
+                   n_glaciers=n_gl + (halo is not None and daily))
     slide = None
     if setup.routing is not None and cfg.snow.redistribution == "gravitational":
         slide = Slide(setup.routing, cols.cell, cols.share)
@@ -603,6 +613,9 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     kres = run_kernel(kcells, calendar, forcing, params, scenarios, snapshot_days=snaps,
                       progress=stage(progress, "days", calendar.n_days), slide=slide,
                       daily=daily)
+    if halo is not None and daily:
+        kres = dataclasses.replace(kres, daily=np.delete(kres.daily, n_gl, axis=2),
+                                   region_area_m2=np.delete(kres.region_area_m2, n_gl))
     if spin.size:
         kres = kres.after_spinup(n_spin_years)
     if asked is not None:
@@ -630,7 +643,9 @@ class RunResult:
     profiles : DataFrame with :data:`PROFILE_COLUMNS`
     gradients : DataFrame (glacier, balance_year, gradient_mwe_per_100m)
     water_budget : DataFrame with :data:`firnline.water_budget.COLUMNS`
-    kernel : the kernel's result (per surface column; ``daily`` region sums for runoff)
+    kernel : the kernel's result (per surface column; ``daily`` region sums for runoff), for a
+        run of one unit in this process; None for a tiled run (:mod:`firnline.tiles`)
+    compute : how the units ran; compute_notes : notes of ``[compute] cells = "glaciers"``
     """
 
     setup: Setup
@@ -647,14 +662,19 @@ class RunResult:
     #: Scores against ``[observations] discharge`` (firnline.runoff.gauge_scores), or None.
     gauge: dict | None = None
     water_budget: pd.DataFrame | None = None
+    #: the kernel's result; only for a run of one unit in this process (None for a tiled run)
     kernel: KernelResult | None = None
+    #: how the units of work ran (firnline.tiles.run_units), for run.json
+    compute: str = ""
+    #: what ``[compute] cells = "glaciers"`` left out (console and run.json notes)
+    compute_notes: tuple = ()
 
     @property
     def notes(self) -> tuple:
         """Console notes of the run: the setup's, then the warning of uncalibrated
         radiation-method defaults (:func:`firnline.parameters.radiation_defaults_notes`)."""
         from .parameters import radiation_defaults_notes
-        return (*self.setup.notes, *radiation_defaults_notes(self.config))
+        return (*self.setup.notes, *self.compute_notes, *radiation_defaults_notes(self.config))
 
     def write(self, out_dir: str | Path | None = None) -> list[Path]:
         """Write every output file into ``out_dir`` (default: ``[output] dir``)."""
@@ -714,29 +734,49 @@ def water_budget(setup: Setup, kres: KernelResult, scenario: int = 0,
     ``setup.catchment_weight`` (the ``[runoff] catchment`` shares), as in the kernel's daily sums.
     """
     from . import water_budget as wb
+    return wb.budget_from_sums(water_budget_sums(setup, kres, scenario, catchment_weight),
+                               wb.region_names(setup.glaciers.names), [int(y) for y in setup.forcing.years])
+
+
+def water_budget_sums(setup: Setup, kres: KernelResult, scenario: int = 0,
+                      catchment_weight: np.ndarray | None = None):
+    """The exact region sums of :func:`water_budget` (:func:`firnline.water_budget.budget_sums`); the
+    sums of the units of a tiled run (each a :meth:`Setup.select`) merge into those of the whole run."""
+    from . import water_budget as wb
     cols = setup.surface_columns
     s = scenario
     if catchment_weight is None:
         catchment_weight = setup.catchment_weight
     terms = wb.column_budget(lambda flux: kres.year_sum(flux)[s], kres.storage_start[s], kres.storage_end[s])
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
-    return wb.budget_table(terms, setup.grid.cell_area_m2 * cols.share, cols.region, weight,
-                           wb.region_names(setup.glaciers.names), [int(y) for y in setup.forcing.years])
+    return wb.budget_sums(terms, setup.grid.cell_area_m2 * cols.share, cols.region, weight,
+                          len(setup.glaciers.names) + 2, len(setup.forcing.years))
 
 
 def glacier_metrics(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> dict:
     """Metrics per glacier and year: {glacier name: [YearMetrics per year]}."""
+    bw = setup.config.balance.band_width_m
+    return {name: glacier_years_from_sums(sums, len(years), bw)
+            for name, sums in zip(setup.glaciers.names, glacier_part_sums(setup, fields))}
+
+
+def glacier_part_sums(setup: Setup, fields: dict[str, np.ndarray], parts=None) -> list:
+    """The exact sums behind the metrics of glaciers (:func:`firnline.metrics.glacier_sums`).
+
+    ``fields`` are per-cell fields (:func:`cell_fields`) over some cells; each of ``parts`` is
+    ``(g, local, pos, share)``: glacier ``g``'s cells among them as positions in ``fields``, in
+    ``setup.cells`` and in ``glaciers.fractions[g]``; default: every glacier with all its cells
+    (``setup.glacier_pos``). Sums of parts merge exactly (:func:`firnline.exact.merge`).
+    """
     gl = setup.glaciers
     area = setup.grid.cell_area_m2
     bw = setup.config.balance.band_width_m
-    out = {}
-    for name, pos, frac in zip(gl.names, setup.glacier_pos, gl.fractions):
-        z = setup.z_m[pos]
-        a = frac * area
-        out[name] = [glacier_year(z, a, fields["annual_balance"][y][pos].astype("float64"),
-                                  fields["winter_balance"][y][pos].astype("float64"),
-                                  fields["summer_balance"][y][pos].astype("float64"), bw)
-                     for y in range(len(years))]
+    if parts is None:
+        parts = [(g, pos, pos, slice(None)) for g, pos in enumerate(setup.glacier_pos)]
+    out = []
+    for g, local, pos, share in parts:
+        b = [fields[k][:, local] for k in ("annual_balance", "winter_balance", "summer_balance")]
+        out.append(glacier_sums(setup.z_m[pos], gl.fractions[g][share] * area, *b, bw))
     return out
 
 
@@ -797,7 +837,7 @@ def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[
 
 
 def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
-        progress: Progress = None, setup: Setup | None = None) -> RunResult:
+        progress: Progress = None, setup: Setup | None = None, client=None) -> RunResult:
     """Model every complete balance year of the record.
 
     Parameters
@@ -812,6 +852,9 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
         A prepared setup to reuse (default: :func:`prepare` is called). It must come
         from ``config`` or from a config that differs only in the kernel parameters
         (:func:`check_config`); otherwise ValueError.
+    client : dask.distributed.Client, optional
+        Run the units of work (``[compute]``, :mod:`firnline.tiles`) on this cluster; default:
+        ``[compute] scheduler`` (a local cluster, or this process for a run of one unit).
 
     Returns
     -------
@@ -820,24 +863,30 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
     if setup is None:
         setup = prepare(config, progress)
     config = check_config(setup, config)
+    from . import tiles
+    from . import water_budget as wb
     t0 = time.perf_counter()
-    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress)
+    merged = tiles.run_units(setup, config, warming_k, precip_change_pct, progress=progress, client=client)
     t1 = time.perf_counter()
     years = [int(y) for y in setup.forcing.years]
-    f = cell_fields(setup, kres, 0)
-    met = glacier_metrics(setup, f, years)
+    f = merged.fields
+    bw = config.balance.band_width_m
+    met = {name: glacier_years_from_sums(sums, len(years), bw)
+           for name, sums in zip(setup.glaciers.names, merged.glacier_sums)}
     summary, profiles, gradients = tables(met, years)
     ds = fields_dataset(setup, f, years)
-    budget = water_budget(setup, kres, 0)
+    budget = wb.budget_from_sums(merged.budget, wb.region_names(setup.glaciers.names), years)
     t2 = time.perf_counter()
-    series, gauge = runoff_of(setup, config, kres, 0)
+    series, gauge = runoff_from_daily(setup, config, merged.daily, merged.region_area_m2)
     t3 = time.perf_counter()
     timings = dict(setup.timings, kernel_s=t1 - t0, metrics_s=t2 - t1, runoff_s=t3 - t2,
-                   redistribution_s=float(kres.slide_seconds))
+                   redistribution_s=merged.timings["redistribution_s"], units=merged.n_units,
+                   unit_kernel_s=merged.timings["unit_kernel_s"])
     return RunResult(setup=setup, config=config, warming_k=warming_k,
                      precip_change_pct=precip_change_pct, fields=ds, summary=summary,
                      profiles=profiles, gradients=gradients, timings=timings, runoff=series, gauge=gauge,
-                     water_budget=budget, kernel=kres)
+                     water_budget=budget, kernel=merged.kernel, compute=merged.scheduler,
+                     compute_notes=merged.notes)
 
 
 def region_names(setup: Setup) -> list[str]:
@@ -853,11 +902,16 @@ def runoff_of(setup: Setup, config: Config, kres: KernelResult, scenario: int = 
     """
     if kres.daily is None:
         raise ValueError("the kernel result holds no daily region volumes; run simulate(..., daily=True)")
+    return runoff_from_daily(setup, config, kres.daily[scenario], kres.region_area_m2)
+
+
+def runoff_from_daily(setup: Setup, config: Config, daily: np.ndarray, region_area_m2: np.ndarray):
+    """:func:`runoff_of` from daily region volumes (days, regions, terms), m3, and the region areas, m2."""
     from . import parameters
     from .kernel import Daily
     from .runoff import CATCHMENT, gauge_scores, runoff_series
 
-    series = runoff_series(kres.daily[scenario], Daily, region_names(setup), kres.region_area_m2,
+    series = runoff_series(daily, Daily, region_names(setup), region_area_m2,
                            setup.forcing.dates, parameters.storage_days(config))
     gauge = None
     if setup.discharge is not None:

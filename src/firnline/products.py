@@ -91,6 +91,9 @@ def run_json(result: RunResult, files: list[str]) -> dict:
         "record": {"first_day": str(setup.forcing.dates[0]), "last_day": str(setup.forcing.dates[-1]),
                    "balance_years": [int(y) for y in setup.forcing.years]},
         "initial_condition": initial_condition(cfg, setup),
+        "compute": {"units": result.timings.get("units", 1), "scheduler": result.compute,
+                    "modelled_cells": int(np.isfinite(result.fields["accumulation"].values[0]).sum())
+                    if result.fields.sizes.get("balance_year") else 0},
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
         "notes": result.notes,

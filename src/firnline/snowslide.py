@@ -92,6 +92,9 @@ SCHEMES = ("steepest", "multiple")
 
 #: receiver index meaning "off the DEM edge or into nodata" (exported)
 EXPORT = -1
+#: receiver index of a subset (:func:`subset`) meaning "a valid cell outside the subset": the snow
+#: leaves the subset (the sender's change) but is not exported, as in the run of every cell
+LEAVE = -2
 
 # the eight neighbours (row offset, column offset); row 0 is the north edge
 _OFFSETS = ((-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1))
@@ -207,7 +210,7 @@ class Routing:
     def recv_step(self) -> np.ndarray:
         """Processing step of each receiver (int32, like ``recv_pos``), :data:`EXPORT` for exports."""
         pos = self.recv_pos
-        return np.where(pos >= 0, self.step_of[np.maximum(pos, 0)], EXPORT).astype(np.int32)
+        return np.where(pos >= 0, self.step_of[np.maximum(pos, 0)], pos).astype(np.int32)
 
     def can_release(self) -> np.ndarray:
         """Boolean (n_cells,) in cell order: cells that pass excess snow on (finite capacity)."""
@@ -357,14 +360,16 @@ def upslope(routing: Routing, targets: np.ndarray) -> np.ndarray:
 def subset(routing: Routing, positions) -> Routing:
     """The routing of some cells (ascending positions), as for ``Setup.select``.
 
-    Order, links and capacities are kept; snow sent to a cell outside the subset counts
-    as exported. Exact for the cells of the subset when it holds every cell upslope of
+    Order, links and capacities are kept; snow sent to a valid cell outside the subset
+    leaves it (:data:`LEAVE`: the sender's change and the total :func:`redistribute` returns)
+    without counting as exported, so each cell's ``change`` and ``exported`` are those of the
+    run of every cell. Exact for the cells of the subset when it holds every cell upslope of
     them (:func:`upslope`).
     """
     sub = np.asarray(positions, dtype=np.int64)
     if sub.size > 1 and np.any(np.diff(sub) <= 0):
         raise ValueError("subset takes ascending, distinct positions")
-    new = np.full(routing.n_cells, EXPORT, dtype=np.int32)
+    new = np.full(routing.n_cells, LEAVE, dtype=np.int32)
     new[sub] = np.arange(sub.size, dtype=np.int32)
     steps = np.flatnonzero(new[routing.order] >= 0)
     counts = np.diff(routing.recv_ptr)[steps]
@@ -374,7 +379,7 @@ def subset(routing: Routing, positions) -> Routing:
     np.cumsum(counts, out=ptr[1:])
     pos = routing.recv_pos[links]
     return Routing(order=new[routing.order[steps]], recv_ptr=ptr,
-                   recv_pos=np.where(pos >= 0, new[np.maximum(pos, 0)], EXPORT).astype(np.int32),
+                   recv_pos=np.where(pos >= 0, new[np.maximum(pos, 0)], pos).astype(np.int32),
                    recv_weight=routing.recv_weight[links], holding_mm=routing.holding_mm[sub],
                    scheme=routing.scheme, exponent=routing.exponent,
                    snow_density_kg_m3=routing.snow_density_kg_m3,
@@ -426,8 +431,8 @@ def _one_pass(snow, immobile, use_immobile, order, ptr, recv_step, weight, holdi
             share = left if j == last else excess * np.float64(weight[j])
             left -= share
             r = recv_step[j]
-            if r < 0:
-                if accumulate:
+            if r < 0:                         # EXPORT, or LEAVE (to a cell outside a subset)
+                if accumulate and r == EXPORT:
                     exported[order[k]] += share
                 total_export += share
             else:
@@ -487,8 +492,9 @@ def redistribute(routing: Routing, snow: np.ndarray, change: np.ndarray | None =
     Returns
     -------
     float or ndarray (n_scen,)
-        Snow exported off the DEM / into nodata by this call, mm w.e. summed over cells
-        (one number for a 1-D ``snow``).
+        Snow exported off the DEM / into nodata by this call (on a :func:`subset`, also what
+        it sent to cells outside the subset), mm w.e. summed over cells (one number for a
+        1-D ``snow``).
 
     Notes
     -----

@@ -31,6 +31,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from . import exact
+
 COLUMNS = ["region", "balance_year", "area_km2", "precipitation_mm", "snowfall_mm", "rain_mm",
            "redistribution_in_mm", "redistribution_out_mm", "exported_mm", "refreezing_mm", "snow_melt_mm",
            "firn_melt_mm", "ice_melt_mm", "runoff_mm", "storage_change_mm", "residual_mm"]
@@ -98,25 +100,55 @@ def budget_table(terms: dict[str, np.ndarray], area_m2: np.ndarray, region: np.n
     names : from :func:`region_names`
     years : balance-year labels
     """
-    n_reg = len(names)
+    sums = budget_sums(terms, area_m2, region, catchment_weight, len(names), len(years))
+    return budget_from_sums(sums, names, years)
+
+
+def _budget_key(term: int, year: int, region, n_years: int, n_regions: int):
+    """Key of a region's sum: term 0 is the area (year 0), terms 1.. the :data:`COLUMNS` terms."""
+    return (term * (n_years + 1) + year) * n_regions + np.asarray(region, dtype=np.int64)
+
+
+def budget_sums(terms: dict[str, np.ndarray], area_m2: np.ndarray, region: np.ndarray,
+                catchment_weight: np.ndarray, n_regions: int, n_years: int) -> exact.Sums:
+    """The exact region sums behind :func:`budget_table` (volumes in mm m2 and areas in m2).
+
+    Sums of some columns (the units of a tiled run) merged with :func:`firnline.exact.merge`
+    equal those of all columns exactly, whatever the order.
+    """
     region = np.asarray(region, dtype=np.int64)
     area = np.asarray(area_m2, dtype="float64")
     w_cat = area * np.asarray(catchment_weight, dtype="float64")
-    # (n_regions, n_cols) weights: one row per region (a column counts once in its region), plus the catchment
-    reg_area = np.bincount(region, weights=area, minlength=n_reg - 1)[:n_reg - 1]
-    tot = {}
-    for key, v in terms.items():
-        per = np.stack([np.bincount(region, weights=v[y] * area, minlength=n_reg - 1)[:n_reg - 1]
-                        for y in range(v.shape[0])]) if v.shape[0] else np.zeros((0, n_reg - 1))
-        cat = v @ w_cat
-        tot[key] = np.concatenate([per, cat[:, None]], axis=1)         # (n_years, n_regions) volumes, mm m2
-    areas = np.concatenate([reg_area, [w_cat.sum()]])
+    cat = np.full(region.size, n_regions - 1, dtype=np.int64)
+    parts = [exact.of(np.concatenate([_budget_key(0, 0, region, n_years, n_regions),
+                                      _budget_key(0, 0, cat, n_years, n_regions)]), np.concatenate([area, w_cat]))]
+    for t, key in enumerate(_TERMS, start=1):
+        v = np.asarray(terms[key], dtype="float64")
+        for y in range(v.shape[0]):
+            parts.append(exact.of(np.concatenate([_budget_key(t, y, region, n_years, n_regions),
+                                                  _budget_key(t, y, cat, n_years, n_regions)]),
+                                  np.concatenate([v[y] * area, v[y] * w_cat])))
+    return exact.merge(parts)
+
+
+def budget_from_sums(sums: exact.Sums, names: list[str], years) -> pd.DataFrame:
+    """``water_budget.csv`` from :func:`budget_sums` (of all columns, or merged from parts)."""
+    n_reg, n_years = len(names), len(years)
+    keys, vals = exact.values(sums)
+    regions = np.arange(n_reg)
+    areas = exact.lookup(keys, vals, _budget_key(0, 0, regions, n_years, n_reg))
+    tot = {key: exact.lookup(keys, vals, _budget_key(t, np.arange(n_years)[:, None], regions, n_years, n_reg))
+           for t, key in enumerate(_TERMS, start=1)}                  # (n_years, n_regions) mm m2
     rows = []
     for r, name in enumerate(names):
         a = areas[r]
         for y, year in enumerate(years):
             row = {"region": name, "balance_year": int(year), "area_km2": a / 1e6}
-            for key in terms:
+            for key in _TERMS:
                 row[key] = tot[key][y, r] / a if a > 0 else np.nan
             rows.append(row)
     return pd.DataFrame(rows, columns=COLUMNS)
+
+
+#: the per-column terms of :func:`column_budget`, in :data:`COLUMNS` order
+_TERMS = COLUMNS[3:]

@@ -102,6 +102,6 @@ def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1, extra_i
     for p in inputs:
         if p.exists():            # a missing file is named by its reader, with its key
             regular_file(p, "input file")
-    budget.check(budget.estimate_for(cfg, scenarios))
+    budget.check_run(cfg, scenarios)
     return claim(out, command, inputs=inputs, force=getattr(args, "force", False),
                  cache_dir=cfg.radiation.cache_dir)

@@ -1,0 +1,306 @@
+"""Tiled runs: the DEM cut into units of work that dask computes independently, merged exactly.
+
+A unit is a window of ``[compute] tile_size`` x ``tile_size`` cells of the DEM (a DEM smaller
+than one unit is one unit). Each unit runs the kernel over its own modelled cells
+(:func:`firnline.model.simulate` with ``cells=``; with snow redistribution the run reaches
+every cell upslope of them, so the unit's cells are exact) and returns
+
+* its per-cell fields (:func:`firnline.model.cell_fields`), placed into the run's maps by
+  position: bit for bit those of the untiled run;
+* the exact partial sums of each glacier part it holds (:func:`firnline.model.glacier_part_sums`)
+  and of the water budget (:func:`firnline.model.water_budget_sums`): integer sums
+  (:mod:`firnline.exact`) that merge in any order to the sums of the whole run, so the
+  summary, profiles and water budget equal the untiled run bit for bit;
+* its daily region volumes (runoff), added in unit order: equal to the untiled run to float
+  rounding only (the kernel itself adds them per thread, in the order threads finish).
+
+Terrain, horizons and the radiation table are computed once for the whole DEM by
+:func:`firnline.model.prepare` (no per-unit halo yet), and the per-year maps of the whole
+run are assembled in memory before the writers run.
+
+Scheduling (:func:`run_units`): a run of one unit, or with ``workers = 1``, runs in this
+process (the synchronous path: no copy of the inputs to other processes, and numba's
+threads use every core). Otherwise ``scheduler = "local"`` starts a dask.distributed
+``LocalCluster`` of ``workers`` processes with one task thread each, and an address connects
+to a running scheduler; a ``dask.distributed.Client`` passed in is used as it is. Each task
+limits numba to ``cores // tasks at once on its machine`` threads so they do not
+oversubscribe the cores.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import exact
+from .outdir import pause_point
+from .progress import Progress
+
+
+@dataclass(frozen=True)
+class Unit:
+    """One unit of work: a window of the DEM and the modelled cells in it.
+
+    ``positions`` (ascending, into ``Setup.cells`` order) are its modelled cells; ``glaciers``
+    lists, for each glacier with cells in it, ``(g, local, pos, share)``: the cells' places in
+    ``positions``, in ``Setup.cells`` and in ``glaciers.fractions[g]``.
+    """
+
+    index: int
+    rows: tuple[int, int]
+    cols: tuple[int, int]
+    positions: np.ndarray
+    glaciers: tuple = ()
+
+
+def window_of(setup, tile_size: int, positions: np.ndarray) -> np.ndarray:
+    """The unit index (row-major over the windows) of each position."""
+    nx = setup.grid.shape[1]
+    r, c = np.divmod(setup.cells[positions], nx)
+    n_tc = -(-nx // tile_size)
+    return (r // tile_size) * n_tc + c // tile_size
+
+
+def modelled_positions(setup, compute) -> np.ndarray | None:
+    """The positions of the modelled cells: None for every cell (``cells = "all"``), else the glacier
+    cells and the valid cells within ``glacier_buffer_m`` of a glacier cell (Euclidean distance
+    between cell centres, scipy.ndimage.distance_transform_edt)."""
+    if compute.cells == "all":
+        return None
+    from scipy.ndimage import distance_transform_edt
+
+    grid = setup.grid
+    glacier = setup.glaciers.total_fraction > 0
+    if not glacier.any():
+        return np.zeros(0, dtype=np.int64)
+    dx, dy = grid.cell_size_m
+    dist = distance_transform_edt(~glacier, sampling=(abs(dy), abs(dx)))
+    near = (dist <= compute.glacier_buffer_m).ravel()[setup.cells]
+    return np.flatnonzero(near)
+
+
+def make_units(setup, tile_size: int, positions: np.ndarray | None = None) -> list[Unit]:
+    """The units of a run: windows of ``tile_size`` cells with at least one modelled cell."""
+    ny, nx = setup.grid.shape
+    n_tc = -(-nx // tile_size)
+    pos = np.arange(setup.cells.size) if positions is None else np.asarray(positions, dtype=np.int64)
+    uid = window_of(setup, tile_size, pos)
+    order = np.argsort(uid, kind="stable")
+    ids, start = np.unique(uid[order], return_index=True)
+    bounds = np.append(start, order.size)
+    g_parts: dict[int, list] = {}
+    for g, gpos in enumerate(setup.glacier_pos):
+        gu = window_of(setup, tile_size, gpos)
+        for u in np.unique(gu):
+            g_parts.setdefault(int(u), []).append((g, np.flatnonzero(gu == u)))
+    units = []
+    for k, u in enumerate(ids):
+        mine = pos[order[bounds[k]:bounds[k + 1]]]
+        parts = []
+        for g, share in g_parts.get(int(u), []):
+            gp = setup.glacier_pos[g][share]
+            parts.append((g, np.searchsorted(mine, gp), gp, share))
+        r0, c0 = (int(u) // n_tc) * tile_size, (int(u) % n_tc) * tile_size
+        units.append(Unit(index=int(u), rows=(r0, min(r0 + tile_size, ny)), cols=(c0, min(c0 + tile_size, nx)),
+                          positions=mine, glaciers=tuple(parts)))
+    return units
+
+
+@dataclass
+class UnitResult:
+    """What a unit sends back: per-cell fields of its positions and the partial sums."""
+
+    index: int
+    positions: np.ndarray
+    fields: dict
+    glacier_sums: dict          # glacier index -> exact.Sums of its part in the unit
+    budget: exact.Sums
+    daily: np.ndarray | None
+    seconds: float
+    slide_seconds: float
+    kernel: object = None       # the kernel result, kept only by a run of one unit in this process
+
+
+def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: float,
+             threads: int | dict | None = None, progress: Progress = None, whole: bool = False,
+             keep_kernel: bool = False) -> UnitResult:
+    """Run one unit: the kernel over its cells, its fields and partial sums (a dask task).
+
+    ``threads``: numba threads for the task (a dict host -> threads for a remote cluster);
+    ``whole``: the unit is every cell of the setup (the run needs no cut).
+    """
+    from .model import cell_fields, glacier_part_sums, simulate, water_budget_sums
+
+    if isinstance(threads, dict):
+        import socket
+        threads = threads.get(socket.gethostname(), threads.get("*"))
+    if threads:
+        import numba
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    t0 = time.perf_counter()
+    cells = None if whole else unit.positions
+    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells)
+    sub = setup if whole else setup.select(unit.positions)
+    f = cell_fields(sub, kres, 0)
+    parts = glacier_part_sums(setup, f, unit.glaciers)
+    gsums = {g: s for (g, *_), s in zip(unit.glaciers, parts)}
+    budget = water_budget_sums(sub, kres, 0)
+    daily = None if kres.daily is None else kres.daily[0]
+    return UnitResult(index=unit.index, positions=unit.positions, fields=f, glacier_sums=gsums, budget=budget,
+                      daily=daily, seconds=time.perf_counter() - t0, slide_seconds=float(kres.slide_seconds),
+                      kernel=kres if keep_kernel else None)
+
+
+@dataclass
+class Merged:
+    """The merged results of every unit (see the module docstring)."""
+
+    fields: dict
+    glacier_sums: list
+    budget: exact.Sums
+    daily: np.ndarray | None
+    region_area_m2: np.ndarray
+    n_units: int
+    scheduler: str
+    kernel: object = None
+    timings: dict = field(default_factory=dict)
+    notes: tuple = ()
+
+
+def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
+    """Areas of the daily-sum regions (glaciers, ice_free, catchment weighted) of the modelled cells,
+    m2, computed as the kernel computes them."""
+    cols = setup.surface_columns if positions is None else setup.surface_columns.select(positions)
+    n_regions = len(setup.glaciers.names) + 2
+    area = setup.grid.cell_area_m2 * cols.share
+    cw = setup.catchment_weight
+    if positions is not None and cw is not None:
+        cw = cw[positions]
+    weight = np.ones(cols.n) if cw is None else np.asarray(cw, dtype="float64")[cols.cell]
+    return np.concatenate([np.bincount(cols.region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
+                           [float(np.sum(area * weight))]])
+
+
+def merge(setup, results: list[UnitResult], positions: np.ndarray | None) -> tuple:
+    """Fields by position, exact sums merged, daily volumes added in unit order."""
+    results = sorted(results, key=lambda r: r.index)
+    n = setup.cells.size
+    names = list(results[0].fields) if results else []
+    fields = {}
+    for name in names:
+        ny = results[0].fields[name].shape[0]
+        out = np.full((ny, n), np.nan, dtype="float32")
+        for r in results:
+            out[:, r.positions] = r.fields[name]
+        fields[name] = out
+    n_gl = len(setup.glaciers.names)
+    gsums = [exact.merge([r.glacier_sums[g] for r in results if g in r.glacier_sums]) for g in range(n_gl)]
+    budget = exact.merge([r.budget for r in results])
+    daily = None
+    if results and results[0].daily is not None:
+        daily = results[0].daily.copy() if len(results) > 1 else results[0].daily
+        for r in results[1:]:
+            daily += r.daily
+    return fields, gsums, budget, daily
+
+
+def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
+              progress: Progress = None, client=None) -> Merged:
+    """Run every unit of ``config``'s ``[compute]`` settings and merge them (module docstring)."""
+    comp = config.compute
+    positions = modelled_positions(setup, comp)
+    units = make_units(setup, comp.tile_size, positions)
+    whole = positions is None and len(units) == 1
+    t0 = time.perf_counter()
+    if client is None and comp.scheduler == "local" and (len(units) <= 1 or comp.workers == 1):
+        how = "synchronous: one unit" if len(units) <= 1 else "synchronous: one worker"
+        results = []
+        for k, u in enumerate(units):
+            results.append(run_unit(setup, config, u, warming_k, precip_change_pct,
+                                    progress=progress if len(units) == 1 else None, whole=whole,
+                                    keep_kernel=len(units) == 1))
+            if progress is not None and len(units) > 1:
+                progress("units", k + 1, len(units))
+            pause_point("unit")
+    else:
+        results, how = _distributed(setup, config, units, warming_k, precip_change_pct, progress, client)
+    fields, gsums, budget, daily = merge(setup, results, positions)
+    notes = ()
+    if positions is not None:
+        notes = (f'[compute] cells = "glaciers": modelled {positions.size} of {setup.cells.size} valid cells '
+                 f"(the glacier cells and those within {comp.glacier_buffer_m:g} m of them); the ice_free and "
+                 "catchment rows of water_budget.csv and runoff.csv cover those cells only.",)
+    return Merged(notes=notes, fields=fields, glacier_sums=gsums, budget=budget, daily=daily,
+                  region_area_m2=region_areas(setup, positions), n_units=len(units), scheduler=how,
+                  kernel=results[0].kernel if len(results) == 1 else None,
+                  timings={"units_s": time.perf_counter() - t0,
+                           "unit_kernel_s": float(sum(r.seconds for r in results)),
+                           "redistribution_s": float(sum(r.slide_seconds for r in results))})
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+def _host_cores() -> tuple[str, int]:
+    import socket
+    return socket.gethostname(), _cores()
+
+
+def _distributed(setup, config, units, warming_k, precip_change_pct, progress, client):
+    """The units as tasks of a dask.distributed cluster: local, at an address, or the caller's client."""
+    from dask.distributed import Client, LocalCluster, as_completed
+
+    comp = config.compute
+    own = []
+    try:
+        if client is None and comp.scheduler == "local":
+            cluster = LocalCluster(n_workers=comp.workers, threads_per_worker=1, processes=True,
+                                   dashboard_address=None)
+            own.append(cluster)
+            client = Client(cluster)
+            own.insert(0, client)
+            threads = max(1, _cores() // comp.workers)
+            how = f"dask LocalCluster: {comp.workers} worker processes, {threads} numba threads each"
+        else:
+            if client is None:
+                client = Client(comp.scheduler)
+                own.append(client)
+            threads = _host_threads(client)
+            how = f"dask.distributed at {client.scheduler.address}"
+        remote = client.scatter(setup, broadcast=True)
+        futures = [client.submit(run_unit, remote, config, u, warming_k, precip_change_pct, threads,
+                                 pure=False, key=f"firnline-unit-{u.index}-{time.monotonic_ns()}")
+                   for u in units]
+        results = []
+        for k, fut in enumerate(as_completed(futures), start=1):
+            results.append(fut.result())
+            if progress is not None:
+                progress("units", k, len(units))
+            pause_point("unit")
+        return results, how
+    finally:
+        for thing in own:
+            thing.close()
+
+
+def _host_threads(client) -> dict:
+    """numba threads per task on each host of a cluster: the host's cores over its task threads."""
+    info = client.scheduler_info().get("workers", {})
+    per_host: dict = {}
+    for w in info.values():
+        host = w.get("host", "")
+        per_host[host] = per_host.get(host, 0) + int(w.get("nthreads", 1))
+    cores = client.run(_host_cores)
+    out = {}
+    for addr, (name, n) in cores.items():
+        host = info.get(addr, {}).get("host", "")
+        out[name] = max(1, n // max(per_host.get(host, 1), 1))
+    out["*"] = 1
+    return out

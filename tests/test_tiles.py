@@ -1,0 +1,237 @@
+"""Tiled runs ([compute], firnline.tiles): the same numbers as the untiled run, bit for bit.
+
+Maps are assembled by position; the glacier and water-budget tables come from exact partial
+sums (firnline.exact) that merge in any order. Checked on a synthetic valley with one glacier
+cut by four units and on the demo; the dask.distributed path on a two-worker LocalCluster.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+
+import firnline
+from firnline import exact
+from firnline.cli import main
+from firnline.model import prepare, run
+from firnline.tiles import make_units, modelled_positions
+
+CELL = 50.0
+X0, Y0 = 600000.0, 5150000.0
+
+
+def compute(cfg, **kw):
+    return dataclasses.replace(cfg, compute=dataclasses.replace(cfg.compute, **kw))
+
+
+def valley(ny=40, nx=40) -> np.ndarray:
+    """A valley draining south: walls rising east and west, floor rising north, a few nodata cells."""
+    r, c = np.mgrid[0:ny, 0:nx]
+    z = 2200.0 + 25.0 * (ny - r) + 3.0 * np.abs(c - nx / 2) ** 1.6 + 5.0 * np.sin(r * 0.7) * np.cos(c * 0.5)
+    z[0, :3] = np.nan
+    return z
+
+
+def valley_case(tmp_path, builders, snow=None, **sections):
+    """A 40 x 40 valley with one glacier over rows and columns 8..31 (cut by 20-cell units)."""
+    builders.write_dem(tmp_path / "dem.tif", valley(), cell=CELL, x0=X0, y0=Y0)
+    builders.seasonal_station(tmp_path / "station.csv", "2015-10-01", "2018-09-30")
+    glacier = shapely.box(X0 + 8 * CELL, Y0 - 31 * CELL, X0 + 31.5 * CELL, Y0 - 8.3 * CELL)
+    builders.write_outlines(tmp_path / "gl.geojson", ["middle"], [glacier], "GeoJSON", crs="EPSG:32632")
+    sec = builders.base_sections(station_elevation=2300.0)
+    sec["glaciers"] = {"outlines": "gl.geojson"}
+    sec["snow"].update(snow or {})
+    for k, v in sections.items():
+        sec.setdefault(k, {}).update(v)
+    return firnline.load_config(builders.write_config(tmp_path / "valley.toml", sec))
+
+
+def assert_same_run(a, b, exact_budget=True):
+    for name in a.fields.data_vars:
+        assert np.array_equal(a.fields[name].values, b.fields[name].values, equal_nan=True), name
+    for table in ("summary", "profiles", "gradients"):
+        pd.testing.assert_frame_equal(getattr(a, table), getattr(b, table), check_exact=True)
+    wa, wb = a.water_budget, b.water_budget
+    if exact_budget:
+        pd.testing.assert_frame_equal(wa, wb, check_exact=True)
+    else:
+        rest = [c for c in wa.columns if c != "residual_mm"]
+        pd.testing.assert_frame_equal(wa[rest], wb[rest], check_exact=True)
+        np.testing.assert_allclose(wa.residual_mm, wb.residual_mm, rtol=0, atol=1e-9)
+    # daily region volumes: the kernel adds them per thread in the order threads finish, so
+    # equal to float64 rounding only
+    np.testing.assert_allclose(a.runoff.discharge_m3s, b.runoff.discharge_m3s, rtol=1e-12, atol=1e-15)
+
+
+# ----------------------------------------------------------------------------
+# exact sums
+# ----------------------------------------------------------------------------
+
+def test_exact_sums_merge_in_any_order_and_match_a_correctly_rounded_sum():
+    rng = np.random.default_rng(3)
+    v = rng.normal(size=20000) * 10.0 ** rng.uniform(-9, 7, 20000)
+    k = rng.integers(0, 7, v.size)
+    whole = exact.values(exact.of(k, v))
+    perm = rng.permutation(v.size)
+    cuts = np.sort(rng.choice(v.size, 11, replace=False))
+    parts = [exact.of(k[perm][a:b], v[perm][a:b]) for a, b in zip(np.r_[0, cuts], np.r_[cuts, v.size])]
+    merged = exact.values(exact.merge(parts[::-1]))
+    assert np.array_equal(whole[0], merged[0]) and np.array_equal(whole[1], merged[1])
+    # against math.fsum (the correctly rounded sum, Python standard library): a few ulp
+    ref = np.array([math.fsum(v[k == j]) for j in range(7)])
+    np.testing.assert_allclose(whole[1], ref, rtol=1e-14)
+    assert np.isnan(exact.values(exact.of([0, 0, 1], [1.0, np.nan, 2.0]))[1][0])
+
+
+# ----------------------------------------------------------------------------
+# tiled == untiled
+# ----------------------------------------------------------------------------
+
+def test_one_glacier_across_four_units_gives_the_untiled_numbers(tmp_path, builders):
+    cfg = valley_case(tmp_path, builders)
+    setup = prepare(cfg)
+    units = make_units(setup, 20)
+    assert len(units) == 4
+    assert all(any(g == 0 for g, *_ in u.glaciers) for u in units)      # the glacier is in all four
+    whole = run(cfg, setup=setup)
+    tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
+    assert whole.timings["units"] == 1 and tiled.timings["units"] == 4
+    assert_same_run(whole, tiled)
+    # uneven units (tile 16: 3 x 3 windows, the last ones narrow) give the same again
+    assert_same_run(whole, run(compute(cfg, tile_size=16, workers=1), setup=setup))
+
+
+def test_with_snow_redistribution_and_every_process_on_tiles_give_the_same_maps_and_tables(tmp_path, builders):
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "refreezing": "cold-content",
+                                                "firn_years": 5, "spinup_years": 1, "min_slide_slope_deg": 15.0})
+    setup = prepare(cfg)
+    whole = run(cfg, setup=setup)
+    assert np.nanmax(np.abs(whole.fields["redistribution"].values)) > 0.01     # snow does slide here
+    tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
+    # residual_mm, the float rounding of the books (~1e-7 mm), may differ in its last bit: the
+    # kernel's float64 year-end storage of a column can differ by one ulp (see DEVELOPERS.md, tiles)
+    assert_same_run(whole, tiled, exact_budget=False)
+
+
+def test_the_demo_tiled_equals_the_demo_untiled(tmp_path):
+    assert main(["demo", str(tmp_path / "in"), "--quiet"]) == 0
+    cfg = firnline.load_config(tmp_path / "in" / "demo.toml")
+    setup = prepare(cfg)
+    whole = run(cfg, setup=setup)
+    tiled = run(compute(cfg, tile_size=128, workers=1), setup=setup)
+    assert tiled.timings["units"] == 9
+    assert_same_run(whole, tiled, exact_budget=False)
+
+
+# ----------------------------------------------------------------------------
+# cells = "glaciers"
+# ----------------------------------------------------------------------------
+
+def test_glacier_cells_and_their_buffer_only_give_the_glacier_results_of_the_full_run(tmp_path, builders):
+    cfg = valley_case(tmp_path, builders, compute={"cells": "glaciers", "glacier_buffer_m": 120.0})
+    setup = prepare(cfg)
+    pos = modelled_positions(setup, cfg.compute)
+    glacier = setup.glacier_mask
+    assert glacier[pos].sum() == glacier.sum() and pos.size < setup.cells.size
+    # the buffer: every modelled ice-free cell lies within 120 m (2 cells + 20 m) of a glacier cell
+    r, c = np.divmod(setup.cells, setup.grid.shape[1])
+    gr, gc = r[glacier], c[glacier]
+    for p in pos[~glacier[pos]]:
+        assert np.min(np.hypot(gr - r[p], gc - c[p])) * CELL <= 120.0
+    part = run(cfg, setup=setup)
+    full = run(compute(cfg, cells="all"), setup=setup)
+    pd.testing.assert_frame_equal(part.summary, full.summary, check_exact=True)
+    pd.testing.assert_frame_equal(part.profiles, full.profiles, check_exact=True)
+    acc = part.fields["accumulation"].values[0]
+    assert np.isfinite(acc).sum() == pos.size
+    tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
+    assert_same_run(part, tiled)
+
+
+def test_glacier_cells_only_refuse_a_catchment_for_runoff(tmp_path, builders, capsys):
+    cfg = valley_case(tmp_path, builders)
+    builders.write_outlines(tmp_path / "c.geojson", ["c"], [shapely.box(X0, Y0 - 2000, X0 + 2000, Y0)], "GeoJSON",
+                            crs="EPSG:32632")
+    text = (tmp_path / "valley.toml").read_text()
+    (tmp_path / "bad.toml").write_text(text + '\n[compute]\ncells = "glaciers"\n\n[runoff]\ncatchment = "c.geojson"\n')
+    assert main(["run", str(tmp_path / "bad.toml"), "--quiet"]) == 2
+    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+    assert '[compute] cells = "glaciers"' in line and "[runoff] catchment" in line and 'cells = "all"' in line
+    assert not (tmp_path / "out").exists() and cfg is not None
+
+
+# ----------------------------------------------------------------------------
+# [compute] keys
+# ----------------------------------------------------------------------------
+
+@pytest.mark.parametrize("key, value, words", [
+    ("tile_size", 8, "whole number from 16"),
+    ("tile_size", 100.5, "whole number"),
+    ("workers", 0, "whole number from 1"),
+    ("scheduler", "my cluster", "address of a dask.distributed scheduler"),
+    ("cells", "ice", '"all", "glaciers"'),
+    ("glacier_buffer_m", -5, ">= 0"),
+])
+def test_bad_compute_values_are_refused_naming_the_key(builders, tmp_path, capsys, key, value, words):
+    cfg = builders.folder_case(tmp_path, compute={key: value})
+    assert main(["run", str(cfg), "--quiet"]) == 2
+    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+    assert f"[compute] {key}" in line and words in line
+    assert not (tmp_path / "out").exists()
+
+
+def test_compute_defaults_and_the_run_record(builders, tmp_path):
+    cfg = firnline.load_config(builders.folder_case(tmp_path, compute={"scheduler": "tcp://10.0.0.5:8786"}))
+    assert cfg.compute.scheduler == "tcp://10.0.0.5:8786"
+    cfg = firnline.load_config(builders.folder_case(tmp_path))
+    c = cfg.compute
+    assert (c.tile_size, c.workers, c.scheduler, c.cells, c.glacier_buffer_m) == (2048, 2, "local", "all", 500.0)
+    out = tmp_path / "o"
+    assert main(["run", str(tmp_path / "case.toml"), "--out", str(out), "--quiet", "--no-report"]) == 0
+    info = json.loads((out / "run.json").read_text())
+    assert info["config"]["compute"] == {"tile_size": 2048, "workers": 2, "scheduler": "local", "cells": "all",
+                                         "glacier_buffer_m": 500.0}
+    assert info["compute"]["units"] == 1 and info["compute"]["scheduler"].startswith("synchronous")
+    assert info["compute"]["modelled_cells"] == 200
+
+
+def test_a_unit_that_cannot_fit_is_refused_before_computing(builders, tmp_path, capsys):
+    """A sparse 20 000 x 20 000 DEM (a tiny file): units of 16384 x 16384 cells cannot fit."""
+    builders.folder_case(tmp_path)
+    builders.write_sparse_dem(tmp_path / "big.tif", 20_000, cell=25.0)
+    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 1})
+    assert main(["run", str(cfg), "--quiet"]) == 2
+    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+    assert "[compute] tile_size = 16384" in line and "268435456 cells" in line and "GB" in line
+    assert "3 balance years" in line and "set [compute] tile_size to" in line
+    assert not (tmp_path / "out").exists()
+
+
+# ----------------------------------------------------------------------------
+# dask.distributed
+# ----------------------------------------------------------------------------
+
+def test_a_two_worker_local_cluster_gives_the_serial_result(tmp_path, builders):
+    pytest.importorskip("dask.distributed")
+    from dask.distributed import Client, LocalCluster
+
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "min_slide_slope_deg": 15.0})
+    setup = prepare(cfg)
+    serial = run(compute(cfg, tile_size=20, workers=1), setup=setup)
+    calls = []
+    local = run(compute(cfg, tile_size=20, workers=2), setup=setup,
+                progress=lambda label, done, total: calls.append((label, done, total)))
+    assert local.compute.startswith("dask LocalCluster: 2 worker processes")
+    assert [c for c in calls if c[0] == "units"][-1] == ("units", 4, 4)
+    assert_same_run(serial, local, exact_budget=False)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        given = run(compute(cfg, tile_size=20), setup=setup, client=client)
+    assert given.compute.startswith("dask.distributed at ")
+    assert_same_run(serial, given, exact_budget=False)

@@ -29,6 +29,7 @@ oversubscribe the cores.
 
 from __future__ import annotations
 
+import logging
 import os
 import time
 from dataclasses import dataclass, field
@@ -261,8 +262,10 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
     own = []
     try:
         if client is None and comp.scheduler == "local":
+            # the cluster's own warnings (a task cancelled by Ctrl-C, ...) stay out of the
+            # console, which says in one sentence what happened; errors still show
             cluster = LocalCluster(n_workers=comp.workers, threads_per_worker=1, processes=True,
-                                   dashboard_address=None)
+                                   dashboard_address=None, silence_logs=logging.ERROR)
             own.append(cluster)
             client = Client(cluster)
             own.insert(0, client)

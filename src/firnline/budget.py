@@ -18,14 +18,22 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import InputError
+from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_FLUX, N_SEASON, N_STATE
 
 # bytes per valid cell that do not grow with years: DEM float64, valid mask, slope and
 # aspect float64, per-cell copies (elevation, mask, indices), kernel state per scenario
 _BYTES_PER_CELL = 8 + 1 + 8 + 8 + 8 + 1 + 8
-_STATE_BYTES_PER_CELL_SCENARIO = 8 * (1 + 1) + 8 * 16      # snowpack, cumulative, running sums
-# bytes per cell, scenario and year: kernel results (16 terms, float32, as the kernel keeps
-# them) plus the per-year fields (5 maps float32 on the cells and on the grid)
-_BYTES_PER_CELL_SCENARIO_YEAR = 4 * 16 + 4 * 5 * 2
+# the kernel per surface column and scenario (firnline.kernel): the state and its copy at the
+# start, the cumulative balance, the firn age layers (5, the default firn_years), and the
+# chunks' kept rows (state and running sums, rows CHUNK_STRIDE apart) that persist between
+# calls with sliding snow or cell-mode forcing
+_STATE_BYTES_PER_CELL_SCENARIO = (8 * 2 * N_STATE + 8 + 8 * 5
+                                  + 8 * (N_STATE + N_SEASON * N_FLUX) * CHUNK_STRIDE // CHUNK_CELLS)
+# bytes per cell, scenario and year: the kernel's results as it keeps them (season x flux sums
+# and year-end snow and firn float32, year-end storage float64)
+_KERNEL_BYTES_PER_CELL_YEAR = 4 * N_SEASON * N_FLUX + 4 + 4 + 8
+# ... plus the per-year fields (5 maps float32 on the cells and on the grid)
+_BYTES_PER_CELL_SCENARIO_YEAR = _KERNEL_BYTES_PER_CELL_YEAR + 4 * 5 * 2
 _BYTES_PER_PROFILE_ROW = 200                                 # a pandas row of the profile tables
 _GLACIER_RELIEF_M = 5000.0                                  # upper bound of one glacier's relief
 _FIXED_BYTES = 300 * 2**20                                  # interpreter, numba, GDAL, pandas
@@ -106,10 +114,10 @@ def check(est: Estimate, available: int | None = None) -> None:
 
 
 # one unit of a tiled run (firnline.tiles) in one worker process: its setup cut, kernel state and
-# running sums per surface column, and per year the kernel's results (16 terms float32), the
-# unit's per-year fields (8 maps float32) and their copies in the merge (generous, as above)
+# running sums per surface column, and per year the kernel's results, the unit's per-year
+# fields (8 maps float32) and their copies in the merge (generous, as above)
 _UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO
-_UNIT_BYTES_PER_CELL_YEAR = 4 * 16 + 4 * 8 * 2
+_UNIT_BYTES_PER_CELL_YEAR = _KERNEL_BYTES_PER_CELL_YEAR + 4 * 8 * 2
 
 
 def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1) -> tuple[int, int]:

@@ -121,8 +121,10 @@ dynamically (:data:`TASK_CHUNKSIZE`), so a thread slowed by a competing program 
 hold up the other, and station mode makes few parallel calls (:data:`GROUP_CELLS` cells
 each) so there are few barriers to wait at.
 
-Memory: state (states x scenarios x cells and firn_years age layers, float64), results
-(seasons x fluxes x scenarios x years x cells, float32) and the daily region sums (threads x
+Memory: state (states x scenarios x cells and firn_years age layers, float64), with sliding
+snow or cell mode the chunks' kept rows (``Targets.work``: (states + seasons x fluxes) x
+scenarios x cells, float64), results (seasons x fluxes x scenarios x years x cells, float32)
+and the daily region sums (threads x
 scenarios x days x regions x terms, float64, only when asked for); no (days x cells) array is
 ever made in station mode, and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
 """
@@ -249,7 +251,7 @@ COLD_PER_K = 2097.0 / 334000.0
 SLIDE_INTERVAL_DAYS = 5
 if (N_STATE, N_FLUX) != (4, 12):  # pragma: no cover - a reminder for whoever adds a member
     raise ImportError("kernel: handle every State and Flux member in _cell_day and _store_day")
-#: cells per chunk: the chunk's state and sums (~10 kB) stay in the L1/L2 cache
+#: columns per chunk: the chunk's rows (about 100 kB, see K_LEN and W_LEN) stay in the L2 cache
 CHUNK_CELLS = 256
 #: chunks per parallel task
 CHUNKS_PER_TASK = 4

@@ -15,6 +15,7 @@ from firnline.runoff import (
     check_discharge,
     kling_gupta,
     linear_reservoir,
+    linear_reservoirs,
     mm_per_day_to_m3s,
     nash_sutcliffe,
     route,
@@ -64,6 +65,30 @@ def test_zero_storage_constant_passes_the_release_through():
     rel = np.array([1.0, 0.0, 5.0])
     out, s = linear_reservoir(rel, 0.0)
     assert np.array_equal(out, rel) and not s.any()
+
+
+def test_many_reservoirs_in_one_pass_follow_the_exact_daily_solution_of_each():
+    # Source: the exact daily solution of dS/dt = R - S/k with R constant within a day
+    # (Baker et al., 1982; Hock and Noetzli, 1997): S_t = S_(t-1) e^(-1/k) + R_t k (1 - e^(-1/k)),
+    # written out here day by day for each row, and k = 0 passing the release through.
+    rng = np.random.default_rng(3)
+    rel = rng.gamma(0.5, 4.0, size=(5, 400))
+    k = [0.0, 1.5, 8.0, 25.0, 60.0]
+    s0 = [9.0, 0.0, 2.0, 40.0, 100.0]
+    out, s = linear_reservoirs(rel, k, s0)
+    for i, ki in enumerate(k):
+        if ki == 0.0:
+            assert np.array_equal(out[i], rel[i]) and not s[i].any()
+            continue
+        a = math.exp(-1.0 / ki)
+        prev = s0[i]
+        for t in range(rel.shape[1]):
+            now = prev * a + rel[i, t] * ki * (1.0 - a)
+            assert s[i, t] == pytest.approx(now, rel=1e-12)
+            assert out[i, t] == pytest.approx(rel[i, t] + prev - now, rel=1e-9, abs=1e-12)
+            prev = now
+        # volume: released + storage at the start = routed + storage at the end
+        assert out[i].sum() == pytest.approx(rel[i].sum() + s0[i] - s[i, -1], rel=1e-12)
 
 
 def test_nse_and_kge_on_hand_made_series():

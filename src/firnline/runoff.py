@@ -96,16 +96,56 @@ def linear_reservoir(release, k_days: float, storage0: float = 0.0):
     r = np.asarray(release, dtype="float64")
     if k_days < 0 or not math.isfinite(k_days):
         raise ValueError("the storage constant must be a finite number of days >= 0")
-    if k_days == 0.0:
-        return r.copy(), np.zeros_like(r)
-    a = math.exp(-1.0 / k_days)
-    gain = k_days * (1.0 - a)
-    # S_t = a S_(t-1) + gain R_t : a first-order recursive filter (scipy.signal.lfilter)
-    from scipy.signal import lfilter
+    out, s = linear_reservoirs(r[None, :], [k_days], [storage0])
+    return out[0], s[0]
 
-    s, _ = lfilter([gain], [1.0, -a], r, zi=[a * storage0])
-    prev = np.concatenate(([storage0], s[:-1]))
-    return r + prev - s, s
+
+def linear_reservoirs(release, k_days, storage0=None):
+    """Route many daily series at once, each through its own linear reservoir, exactly.
+
+    The same solution as :func:`linear_reservoir` (Baker et al., 1982; Hock and Noetzli,
+    1997), S_t = a S_(t-1) + k (1 - a) R_t with a = exp(-dt/k), evaluated as one pass over
+    the days for all series together, so the cost grows with the days, not with the number
+    of regions and reservoirs.
+
+    Parameters
+    ----------
+    release : array_like (n_series, n_days)
+        Water released into each reservoir each day, mm d-1.
+    k_days : array_like (n_series,)
+        Storage constant of each reservoir, days (>= 0; 0 passes the release through).
+    storage0 : array_like (n_series,), optional
+        Storage at the start, mm (default empty; ignored where k = 0).
+
+    Returns
+    -------
+    outflow : ndarray (n_series, n_days)
+        Water leaving each reservoir each day, mm d-1.
+    storage : ndarray (n_series, n_days)
+        Storage at the end of each day, mm.
+    """
+    r = np.asarray(release, dtype="float64")
+    if r.ndim != 2:
+        raise ValueError("release must be (n_series, n_days)")
+    k = np.asarray(k_days, dtype="float64").reshape(r.shape[0])
+    if not np.all(np.isfinite(k)) or np.any(k < 0):
+        raise ValueError("the storage constant must be a finite number of days >= 0")
+    pass_through = k == 0.0
+    a = np.array([0.0 if x == 0.0 else math.exp(-1.0 / x) for x in k.tolist()])
+    gain = np.where(pass_through, 0.0, k * (1.0 - a))
+    s = np.zeros(r.shape[0]) if storage0 is None else np.array(storage0, dtype="float64").reshape(r.shape[0])
+    s[pass_through] = 0.0
+    start = s.copy()
+    rt = np.ascontiguousarray(r.T)                     # (n_days, n_series): one row a day
+    storage = np.empty_like(rt)
+    for t in range(rt.shape[0]):
+        s = a * s + gain * rt[t]
+        storage[t] = s
+    storage = storage.T
+    prev = np.concatenate((start[:, None], storage[:, :-1]), axis=1)
+    out = r + prev - storage
+    out[pass_through] = r[pass_through]
+    return out, np.ascontiguousarray(storage)
 
 
 @dataclass(frozen=True)
@@ -154,14 +194,10 @@ def route(release_mm: np.ndarray, storage_days: Sequence[float], area_m2: float,
     if rel.ndim != 2 or rel.shape[0] != len(RESERVOIRS):
         raise ValueError("release_mm must be (4, n_days): snow, firn, ice, ground")
     s0 = np.zeros(len(RESERVOIRS)) if storage0_mm is None else np.asarray(storage0_mm, float)
-    outs, ends = [], []
-    for i, k in enumerate(storage_days):
-        o, s = linear_reservoir(rel[i], float(k), float(s0[i]))
-        outs.append(o)
-        ends.append(s[-1] if len(s) else s0[i])
-    by = np.array(outs).reshape(rel.shape)
+    by, s = linear_reservoirs(rel, [float(k) for k in storage_days], s0)
+    ends = s[:, -1] if s.shape[1] else s0.copy()
     total = by.sum(axis=0)
-    return Routed(outflow_mm=total, by_reservoir_mm=by, storage_mm=np.array(ends),
+    return Routed(outflow_mm=total, by_reservoir_mm=by, storage_mm=ends,
                   discharge_m3s=mm_per_day_to_m3s(total, area_m2))
 
 
@@ -244,12 +280,14 @@ def glacier_ice_share(ice_melt_routed, routed_total):
         return np.where(b > 0, np.clip(a / np.where(b > 0, b, 1.0), 0.0, 1.0), 0.0)
 
 
-def _spun_up_storage(release_mm: np.ndarray, k: float, spinup_days: int) -> float:
-    """Storage at the start: the end storage of routing the first ``spinup_days`` from empty."""
-    if spinup_days <= 0 or k == 0.0 or release_mm.size == 0:
-        return 0.0
-    _, s = linear_reservoir(release_mm[:spinup_days], k, 0.0)
-    return float(s[-1])
+def _spun_up_storage(release_mm: np.ndarray, k, spinup_days: int) -> np.ndarray:
+    """Storage at the start of each series (rows of ``release_mm``, constants ``k``): the end
+    storage of routing its first ``spinup_days`` days from empty."""
+    n = release_mm.shape[0]
+    if spinup_days <= 0 or release_mm.shape[1] == 0:
+        return np.zeros(n)
+    _, s = linear_reservoirs(release_mm[:, :spinup_days], k)
+    return s[:, -1].copy()
 
 
 def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_days: Sequence[float],
@@ -301,19 +339,18 @@ def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_
     mm["released_mm"] = released.sum(axis=1)
     k = tuple(float(x) for x in storage_days)
     n_r, n_d = len(regions), v.shape[0]
-    routed = np.zeros((n_r, 4, n_d))
-    s0 = np.zeros((n_r, 4))
-    s1 = np.zeros((n_r, 4))
-    ice_routed = np.zeros((n_r, n_d))
     ice_i = RESERVOIRS.index("ice")
     ice_melt = np.minimum(mm["ice_melt_mm"], released[:, ice_i])   # ice melt is released at bare ice
-    for r in range(n_r):
-        s0[r] = [_spun_up_storage(released[r, i], k[i], spinup_days) for i in range(4)]
-        out = route(released[r], k, area[r], storage0_mm=s0[r])
-        routed[r], s1[r] = out.by_reservoir_mm, out.storage_mm
-        # the ice reservoir is linear: ice melt alone, from its own share of the start storage
-        share0 = (_spun_up_storage(ice_melt[r], k[ice_i], spinup_days))
-        ice_routed[r] = linear_reservoir(ice_melt[r], k[ice_i], share0)[0]
+    # every region's four reservoirs, then (the ice reservoir is linear) ice melt alone through
+    # the ice reservoir from its own share of the start storage: one pass over the days for all
+    series_in = np.concatenate((released.reshape(n_r * 4, n_d), ice_melt), axis=0)
+    k_rows = np.concatenate((np.tile(k, n_r), np.full(n_r, k[ice_i])))
+    start = _spun_up_storage(series_in, k_rows, spinup_days)
+    out, storage = linear_reservoirs(series_in, k_rows, start)
+    routed = out[:n_r * 4].reshape(n_r, 4, n_d)
+    ice_routed = out[n_r * 4:]
+    s0 = start[:n_r * 4].reshape(n_r, 4)
+    s1 = (storage[:n_r * 4, -1] if n_d else start[:n_r * 4]).reshape(n_r, 4)
     discharge = routed.sum(axis=1) * 1e-3 * area[:, None] / SECONDS_PER_DAY
     return RunoffSeries(dates=dates, regions=tuple(regions), area_m2=area, mm=mm, routed_mm=routed,
                         ice_melt_routed_mm=ice_routed, discharge_m3s=discharge, storage_start_mm=s0,

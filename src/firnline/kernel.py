@@ -87,6 +87,8 @@ Forcing: two modes
   time (at most :data:`CELL_BLOCK_BYTES` of forcing, never days x cells for the whole
   record) and adds the scenario's warming and scales the precipitation itself; the
   lapse rate, precipitation gradient and factor of :class:`KernelParams` are not used.
+  With a ``column_order`` attribute equal to :meth:`Cells.column_order` the blocks'
+  columns are in that order and are read as slices (:data:`CELL_ORDERED`).
 
 Scenarios are per scenario and per calendar month (:class:`Scenarios`): warming
 ``(n_scen, 12)`` K and precipitation scale ``(n_scen, 12)``; a uniform change is twelve
@@ -264,7 +266,8 @@ CELL_BLOCK_BYTES = 256 << 20
 #: at most this many days per cell-mode block
 CELL_BLOCK_DAYS = 64
 
-STATION, CELL = 0, 1    # forcing modes of the compiled core
+STATION, CELL, CELL_ORDERED = 0, 1, 2    # forcing modes of the compiled core (CELL_ORDERED: the
+                                         # blocks' columns in Cells.column_order(), read as slices)
 
 
 # ----------------------------------------------------------------------------
@@ -398,6 +401,14 @@ class Cells:
         ice = np.asarray(self.ice, dtype=bool)
         return np.where(ice, 0, int(self.n_glaciers)).astype(np.int64)
 
+    def column_order(self) -> np.ndarray:
+        """The order in which the kernel hands out the columns (by region, stable), int64.
+
+        A cell-mode forcing whose blocks hold the columns in this order (and says so by its
+        ``column_order`` attribute) is read by the kernel as contiguous slices, not gathered.
+        """
+        return np.argsort(self.region_ids(), kind="stable").astype(np.int64)
+
 
 @dataclass(frozen=True)
 class Slide:
@@ -450,7 +461,13 @@ class StationForcing:
 
 
 class CellForcing(Protocol):
-    """Cell mode: forcing already at each cell (see the module docstring)."""
+    """Cell mode: forcing already at each cell (see the module docstring).
+
+    The blocks' columns are the cells' columns in their own order, or, when the provider has
+    an attribute ``column_order`` (equal to :meth:`Cells.column_order`), in that order: the
+    kernel then reads each chunk's columns as one contiguous slice of a day's row, which
+    vectorises (a gather by column index does not).
+    """
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         """Temperature (deg C) and precipitation (mm), each (b - a, n_cells) float32."""
@@ -876,7 +893,7 @@ def _advance(method, mode, carry, first, last, cells, days, t_block, p_block, sc
                 if first or not carry:
                     _fill_kept(kp, out, s, m, cidx)
                 _chunk(method, mode, cells, days, t_block, p_block, scen, par, out,
-                       m, s, n_days, w, kp, rad_chunk, runs, cidx, res)
+                       m, s, n_days, w, kp, rad_chunk, runs, cidx, res, c0)
                 if last or not carry:
                     _store_state(kp, out, s, m, cidx)
 
@@ -1108,7 +1125,7 @@ def _day_cells(method, w, kp, a0, m, t0, lapse, p0, warm, pscale, par):
 
 @njit(cache=True, error_model="numpy")
 def _chunk(method, mode, cells, days, t_block, p_block, scen, par, out, m, s, n_days,
-           w, kp, rad_chunk, runs, cidx, res):
+           w, kp, rad_chunk, runs, cidx, res, c0):
     """One chunk of ``m`` columns ``cidx[:m]`` and one scenario over all days of the call
     (``w``: the task's rows, ``W_*``, inputs filled by :func:`_fill_inputs`; ``kp``: the
     chunk's kept rows, ``K_*``, filled by :func:`_fill_kept`; ``rad_chunk``: the chunk's
@@ -1133,8 +1150,18 @@ def _chunk(method, mode, cells, days, t_block, p_block, scen, par, out, m, s, n_
         if mode == STATION:
             # T = t0 + lapse * dz + warming, P = p0 * orog * scale (see the module docstring)
             t0, lapse, p0 = days.t_station[d], days.lapse[d], days.p_station[d]
+        elif mode == CELL_ORDERED:
+            # forcing at the cells, the chunk's columns contiguous in the block (positions
+            # c0 .. c0+m-1 of the column order): the same expressions with t0 = 0, lapse = 1,
+            # p0 = 1 (exact)
+            t0, lapse, p0 = 0.0, 1.0, 1.0
+            t_row = t_block[d, c0:c0 + m]
+            p_row = p_block[d, c0:c0 + m]
+            for i in range(m):
+                w[W_T * CH + i] = t_row[i]
+                w[W_P * CH + i] = p_row[i]
         else:
-            # forcing at the cells: the same expressions with t0 = 0, lapse = 1, p0 = 1 (exact)
+            # forcing at the cells, gathered by column
             t0, lapse, p0 = 0.0, 1.0, 1.0
             for i in range(m):
                 w[W_T * CH + i] = t_block[d, cidx[i]]
@@ -1406,7 +1433,7 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                              wcat=np.ascontiguousarray(area * 1e-3 * weight),
                              # columns handed out in region order (few region runs per chunk
                              # for the daily sums); results are stored at each column's place
-                             order=np.argsort(region, kind="stable").astype(np.int64))
+                             order=cells.column_order())
     days = _day_arrays(calendar, params, station, rad, snaps)
     n_regions = cells.n_regions
     weighted = bool(np.any(weight != 1.0))
@@ -1466,9 +1493,15 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
                 progress(int(n_days * c_hi // n))
         return 0.0
     edges = {0, n_days}
+    cell_mode = CELL
     if station is None:
         step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
         edges |= set(range(0, n_days, step))
+        given = getattr(forcing, "column_order", None)
+        if given is not None:
+            if not np.array_equal(np.asarray(given), cell_arrays.order):
+                raise ValueError("forcing.column_order must equal Cells.column_order() of the kernel's cells")
+            cell_mode = CELL_ORDERED
     slides = set(_slide_boundaries(calendar, int(slide.every_days))) if slide is not None else set()
     edges = sorted(edges | slides)
     slide_s = 0.0
@@ -1486,7 +1519,7 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
             p = np.ascontiguousarray(p, dtype="float32")
             if t.shape != (b - a, n) or p.shape != (b - a, n):
                 raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
-            _advance(int(method), CELL, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+            _advance(int(method), cell_mode, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
                      t, p, scen, par, 0, n, out)
         else:
             _advance(int(method), STATION, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),

@@ -458,19 +458,20 @@ def cell_forcing(setup: Setup, params: KernelParams, positions: np.ndarray | Non
 
 
 class ColumnDays:
-    """A cell-mode forcing provider seen through the kernel's day order and surface columns.
+    """A cell-mode forcing provider seen through the kernel's day order and column order.
 
     ``days`` maps the kernel's days (spin-up years first, then the record) to days of the
-    record, ``column_cell`` each surface column to its cell; :meth:`block` asks the
-    provider for each run of consecutive record days and gives (b - a, n_cols) float32.
+    record; the provider gives the surface columns in the kernel's ``column_order``
+    (:meth:`firnline.kernel.Cells.column_order`; it was made for the cells of the columns
+    in that order), which this object passes on as its ``column_order`` so the kernel reads
+    each chunk's columns as a slice. :meth:`block` asks the provider for each run of
+    consecutive record days and gives (b - a, n_cols) float32.
     """
 
-    def __init__(self, provider, days: np.ndarray, column_cell: np.ndarray):
+    def __init__(self, provider, days: np.ndarray, column_order: np.ndarray):
         self.provider = provider
         self.days = np.asarray(days, dtype=np.int64)
-        self.column_cell = np.asarray(column_cell, dtype=np.int64)
-        n = int(np.max(self.column_cell)) + 1 if self.column_cell.size else 0
-        self._identity = self.column_cell.size == n and np.array_equal(self.column_cell, np.arange(n))
+        self.column_order = np.asarray(column_order, dtype=np.int64)
 
     def block(self, a: int, b: int):
         d = self.days[a:b]
@@ -484,8 +485,6 @@ class ColumnDays:
             parts_p.append(np.asarray(p, dtype="float32"))
         t = parts_t[0] if len(parts_t) == 1 else np.concatenate(parts_t)
         p = parts_p[0] if len(parts_p) == 1 else np.concatenate(parts_p)
-        if not self._identity:
-            t, p = t[:, self.column_cell], p[:, self.column_cell]
         return t, p
 
 
@@ -585,10 +584,6 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     calendar = Calendar(np.asarray(f.month)[days], np.asarray(f.day_of_year)[days],
                         np.concatenate([spin_year, np.asarray(f.year_index) + n_spin_years]),
                         np.asarray(f.winter)[days])
-    if f.cells_source is not None:      # several stations or a gridded file: the kernel's cell mode
-        forcing = ColumnDays(cell_forcing(setup, params), days, cols.cell)
-    else:
-        forcing = StationForcing(f.temperature_c[days], f.precipitation_mm[days], cfg.climate.station_elevation_m)
     rad = None
     if params.use_radiation:
         rad = setup.radiation if cols.n == cols.n_cells else setup.radiation.subset(cols.cell)
@@ -605,6 +600,11 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
     kcells = Cells(setup.z_m[cols.cell], cols.ice, rad, region=region,
                    area_m2=setup.grid.cell_area_m2 * cols.share, catchment_weight=weight,
                    n_glaciers=n_gl + (halo is not None and daily))
+    if f.cells_source is not None:      # several stations or a gridded file: the kernel's cell mode
+        order = kcells.column_order()
+        forcing = ColumnDays(cell_forcing(setup, params, cols.cell[order]), days, order)
+    else:
+        forcing = StationForcing(f.temperature_c[days], f.precipitation_mm[days], cfg.climate.station_elevation_m)
     slide = None
     if setup.routing is not None and cfg.snow.redistribution == "gravitational":
         slide = Slide(setup.routing, cols.cell, cols.share)

@@ -353,6 +353,15 @@ def test_plain_numbers_in_csv(tmp_path):
     assert (tmp_path / "t.csv").read_text().splitlines() == ["a", "0.00000015", "250000000", "\"\""]
 
 
+def test_plain_numbers_of_a_column_are_plain_number_of_each_value():
+    from firnline.outputs import plain_number, plain_numbers
+    rng = np.random.default_rng(0)
+    x = np.concatenate([rng.normal(0, 1, 5000) * 10.0 ** rng.integers(-9, 9, 5000),
+                        [0.0, -0.0, np.nan, np.inf, 9.9999996, 99999.95, -4e-7, 12345678.9, 0.15, 2.5]])
+    for digits in (3, 6, 8):
+        assert list(plain_numbers(x, digits)) == [plain_number(v, digits) for v in x]
+
+
 def test_one_unit_spelling(demo_run):
     """m w.e. is written one way in every text output (no "mwe", "m we", "m.w.e.")."""
     _, out = demo_run

@@ -73,7 +73,8 @@ def netcdf(folder: Path, data: np.ndarray) -> float:
     ny, nx = data.shape[1:]
     ds = xr.Dataset({f"v{k}": (("balance_year", "y", "x"), data, {"units": "m w.e."}) for k in range(MAPS)},
                     coords={"balance_year": np.arange(2000, 2000 + data.shape[0]),
-                            "y": 5300000.0 - 25.0 * (np.arange(ny) + 0.5), "x": 400000.0 + 25.0 * (np.arange(nx) + 0.5)})
+                            "y": 5300000.0 - 25.0 * (np.arange(ny) + 0.5),
+                            "x": 400000.0 + 25.0 * (np.arange(nx) + 0.5)})
     p = folder / "b.nc"
     outputs.write_netcdf(p, ds, CRS("EPSG:32632"))
     return p.stat().st_size / 1e6
@@ -89,23 +90,19 @@ def main() -> None:
     data = fields(args.size, args.years)
     n = args.years * MAPS
     print(f"{n} maps of {args.size} x {args.size} float32 cells ({data.nbytes * MAPS / 1e6:.0f} MB raw)")
-    chosen_cog, chosen_nc = dict(outputs.COG_OPTIONS), dict(outputs.NETCDF_ENCODING)
     with tempfile.TemporaryDirectory() as td:
         folder = Path(td)
-        for label, opts in COG_CANDIDATES.items():
-            outputs.COG_OPTIONS = opts
-            mb = geotiff(folder, data)
-            s = best_of(lambda: geotiff(folder, data), args.repeat)
-            mark = "  <- firnline" if opts == chosen_cog else ""
-            print(f"GeoTIFF (COG) {label:34s} {s:6.2f} s {mb:8.1f} MB{mark}")
-        outputs.COG_OPTIONS = chosen_cog
-        for label, opts in NETCDF_CANDIDATES.items():
-            outputs.NETCDF_ENCODING = opts
-            mb = netcdf(folder, data)
-            s = best_of(lambda: netcdf(folder, data), args.repeat)
-            mark = "  <- firnline" if opts == chosen_nc else ""
-            print(f"NetCDF-4      {label:34s} {s:6.2f} s {mb:8.1f} MB{mark}")
-        outputs.NETCDF_ENCODING = chosen_nc
+        for kind, setting, candidates, write in (("GeoTIFF (COG)", "COG_OPTIONS", COG_CANDIDATES, geotiff),
+                                                 ("NetCDF-4", "NETCDF_ENCODING", NETCDF_CANDIDATES, netcdf)):
+            chosen = dict(getattr(outputs, setting))
+            for label, opts in candidates.items():
+                setattr(outputs, setting, opts)
+                mb = write(folder, data)
+                s = best_of(lambda: write(folder, data), args.repeat)
+                mark = "  <- firnline" if opts == chosen else ""
+                print(f"{kind:14s} {label:34s} {s:6.2f} s {mb:8.1f} MB{mark}")
+            setattr(outputs, setting, chosen)
+
 
 if __name__ == "__main__":
     t0 = time.perf_counter()

@@ -100,3 +100,39 @@ def test_bad_station_tables_and_gridded_files_exit_2(tmp_path, capsys, climate, 
     err = capsys.readouterr().err
     assert words in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+def test_linear_station_forcing_equals_the_blocks_and_asks_blocks_only_for_days_with_a_gap(tmp_path, monkeypatch):
+    """The kernel makes the station network's forcing inside its chunks on the days every station
+    reports (LINEAR mode) and asks for blocks only on the other days; the balances equal those of
+    the block path (forcing rounded to float32 there, so to 1e-5 m w.e.)."""
+    from firnline import stations
+    d, t, p = record()
+    write_dem(tmp_path / "dem.tif", ramp(30, 4, 3300.0, 2000.0))
+    write_station(tmp_path / "station.csv", t=t, p=p)
+    z2 = 2800.0
+    t2 = t + LAPSE * (z2 - Z_ST) + 0.7
+    t2[[40, 41, 300]] = np.nan                         # the high station misses three days
+    pd.DataFrame({"date": d.strftime("%Y-%m-%d"), "temperature_c": t2,
+                  "precipitation_mm": p * (1 + GRAD * (z2 - Z_ST))}).to_csv(tmp_path / "high.csv", index=False)
+    (tmp_path / "stations.csv").write_text(f"station,x,y,elevation_m,file\nlow,600010,5149000,{Z_ST},station.csv\n"
+                                           f"high,600190,5148600,{z2},high.csv\n")
+    sec = sections({"stations": "stations.csv"})
+    sec["snow"] = {"spinup_years": 0}
+    cfg = firnline.load_config(write_config(tmp_path / "two.toml", sec))
+    asked = []
+    block = stations.StationCells.block
+
+    def recording(self, a, b):
+        asked.extend(range(a, b))
+        return block(self, a, b)
+    monkeypatch.setattr(stations.StationCells, "block", recording)
+    linear = firnline.run(cfg)
+    assert sorted(set(asked)) == [40, 41, 300]
+    monkeypatch.delattr(stations.StationCells, "linear")
+    asked.clear()
+    blocks = firnline.run(cfg)
+    assert len(set(asked)) == len(d)
+    np.testing.assert_allclose(linear.summary.annual_balance_mwe, blocks.summary.annual_balance_mwe, atol=1e-5)
+    np.testing.assert_allclose(linear.fields["annual_balance"].values, blocks.fields["annual_balance"].values,
+                               atol=1e-5, equal_nan=True)

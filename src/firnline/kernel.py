@@ -266,8 +266,9 @@ CELL_BLOCK_BYTES = 256 << 20
 #: at most this many days per cell-mode block
 CELL_BLOCK_DAYS = 64
 
-STATION, CELL, CELL_ORDERED = 0, 1, 2    # forcing modes of the compiled core (CELL_ORDERED: the
-                                         # blocks' columns in Cells.column_order(), read as slices)
+STATION, CELL, CELL_ORDERED, LINEAR = 0, 1, 2, 3   # forcing modes of the compiled core (CELL_ORDERED:
+# the blocks' columns in Cells.column_order(), read as slices; LINEAR: T and P made in the chunk
+# from the days' coefficients and the columns' basis rows, see CellForcing.linear)
 
 
 # ----------------------------------------------------------------------------
@@ -471,6 +472,13 @@ class CellForcing(Protocol):
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         """Temperature (deg C) and precipitation (mm), each (b - a, n_cells) float32."""
+
+    # Optional, with ``column_order``: ``linear() -> (coef, basis, kt, full)`` or None. On the
+    # days where ``full`` is True the forcing is linear in a few per-column basis rows:
+    # T[d, c] = sum_{k < kt} coef[d, k] basis[k, c], P[d, c] = sum_{k >= kt} coef[d, k]
+    # basis[k, c] (coef (n_days, K) and basis (K, n_cells) float32, basis columns in
+    # ``column_order``); the kernel then makes T and P inside each chunk (LINEAR mode: no block
+    # is written or read) and asks ``block`` only for the other days.
 
 
 @dataclass(frozen=True)
@@ -846,13 +854,15 @@ W_LEN = (W_CAT_FREE + 1) * CHUNK_STRIDE
 
 @njit(parallel=True, cache=True, error_model="numpy")
 def _advance(method, mode, carry, first, last, cells, days, t_block, p_block, scen, par, c_lo, c_hi,
-             out):
+             out, kt=0):
     """Advance cells ``c_lo .. c_hi-1`` (in ``cells.order``) over the days of ``days`` (see the
     module docstring).
 
-    ``mode`` is STATION or CELL (then ``t_block``/``p_block`` are (n_days, n_cells)
-    float32). ``carry``: the chunks' work buffers persist in ``out.work`` between calls (cell
-    mode, whose blocks cut years, and snow redistribution, whose calls cut the record);
+    ``mode`` is STATION, CELL or CELL_ORDERED (then ``t_block``/``p_block`` are (n_days,
+    n_cells) float32), or LINEAR (then ``t_block`` is the days' coefficients (n_days, K) and
+    ``p_block`` the columns' basis (K, n_cells) in column order, the first ``kt`` rows for T).
+    ``carry``: the chunks' work buffers persist in ``out.work`` between calls (cell mode,
+    whose blocks cut years, and snow redistribution, whose calls cut the record);
     ``first`` fills them, ``last`` stores the final state in ``out.state``. Without
     ``carry`` each chunk runs the whole record in a buffer of its task.
     """
@@ -893,7 +903,7 @@ def _advance(method, mode, carry, first, last, cells, days, t_block, p_block, sc
                 if first or not carry:
                     _fill_kept(kp, out, s, m, cidx)
                 _chunk(method, mode, cells, days, t_block, p_block, scen, par, out,
-                       m, s, n_days, w, kp, rad_chunk, runs, cidx, res, c0)
+                       m, s, n_days, w, kp, rad_chunk, runs, cidx, res, c0, kt)
                 if last or not carry:
                     _store_state(kp, out, s, m, cidx)
 
@@ -1125,7 +1135,7 @@ def _day_cells(method, w, kp, a0, m, t0, lapse, p0, warm, pscale, par):
 
 @njit(cache=True, error_model="numpy")
 def _chunk(method, mode, cells, days, t_block, p_block, scen, par, out, m, s, n_days,
-           w, kp, rad_chunk, runs, cidx, res, c0):
+           w, kp, rad_chunk, runs, cidx, res, c0, kt):
     """One chunk of ``m`` columns ``cidx[:m]`` and one scenario over all days of the call
     (``w``: the task's rows, ``W_*``, inputs filled by :func:`_fill_inputs`; ``kp``: the
     chunk's kept rows, ``K_*``, filled by :func:`_fill_kept`; ``rad_chunk``: the chunk's
@@ -1150,6 +1160,20 @@ def _chunk(method, mode, cells, days, t_block, p_block, scen, par, out, m, s, n_
         if mode == STATION:
             # T = t0 + lapse * dz + warming, P = p0 * orog * scale (see the module docstring)
             t0, lapse, p0 = days.t_station[d], days.lapse[d], days.p_station[d]
+        elif mode == LINEAR:
+            # forcing made here from the day's coefficients and the chunk's basis rows (float64
+            # sums); then the same expressions with t0 = 0, lapse = 1, p0 = 1 (exact)
+            t0, lapse, p0 = 0.0, 1.0, 1.0
+            n_basis = t_block.shape[1]
+            for i in range(m):
+                w[W_T * CH + i] = 0.0
+                w[W_P * CH + i] = 0.0
+            for k in range(n_basis):
+                v = np.float64(t_block[d, k])
+                row = p_block[k, c0:c0 + m]
+                r0 = (W_T if k < kt else W_P) * CH
+                for i in range(m):
+                    w[r0 + i] += v * row[i]
         elif mode == CELL_ORDERED:
             # forcing at the cells, the chunk's columns contiguous in the block (positions
             # c0 .. c0+m-1 of the column order): the same expressions with t0 = 0, lapse = 1,
@@ -1494,6 +1518,7 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
         return 0.0
     edges = {0, n_days}
     cell_mode = CELL
+    lin = None
     if station is None:
         step = max(1, min(CELL_BLOCK_DAYS, CELL_BLOCK_BYTES // (8 * n)))
         edges |= set(range(0, n_days, step))
@@ -1502,6 +1527,17 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
             if not np.array_equal(np.asarray(given), cell_arrays.order):
                 raise ValueError("forcing.column_order must equal Cells.column_order() of the kernel's cells")
             cell_mode = CELL_ORDERED
+            lin = forcing.linear() if hasattr(forcing, "linear") else None
+    if lin is not None:
+        coef, basis, kt, full = lin
+        coef = np.ascontiguousarray(coef, dtype="float32")
+        basis = np.ascontiguousarray(basis, dtype="float32")
+        full = np.asarray(full, dtype=bool)
+        if coef.shape != (n_days, basis.shape[0]) or basis.shape[1] != n or full.shape != (n_days,) \
+                or not 0 < int(kt) < basis.shape[0]:
+            raise ValueError("forcing.linear() must give coef (n_days, K), basis (K, n_cells), 0 < kt < K "
+                             "and full (n_days,)")
+        edges |= {k for k in range(1, n_days) if full[k] != full[k - 1]}
     slides = set(_slide_boundaries(calendar, int(slide.every_days))) if slide is not None else set()
     edges = sorted(edges | slides)
     slide_s = 0.0
@@ -1513,7 +1549,10 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
     for a, b in zip(edges[:-1], edges[1:]):
         if a in slides:
             slide_s += _slide(slide, out, int(days.season[a]), n_cells, where)
-        if station is None:
+        if lin is not None and full[a]:
+            _advance(int(method), LINEAR, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+                     np.ascontiguousarray(coef[a:b]), basis, scen, par, 0, n, out, int(kt))
+        elif station is None:
             t, p = forcing.block(a, b)
             t = np.ascontiguousarray(t, dtype="float32")
             p = np.ascontiguousarray(p, dtype="float32")

@@ -487,6 +487,15 @@ class ColumnDays:
         p = parts_p[0] if len(parts_p) == 1 else np.concatenate(parts_p)
         return t, p
 
+    def linear(self):
+        """The provider's ``linear()`` (see :class:`firnline.kernel.CellForcing`) on the
+        kernel's days, or None when it has none."""
+        if not hasattr(self.provider, "linear"):
+            return None
+        coef, basis, kt, full = self.provider.linear()
+        return (np.ascontiguousarray(np.asarray(coef)[self.days]), basis, kt,
+                np.asarray(full, dtype=bool)[self.days])
+
 
 def spinup_days(forcing: Forcing, spinup_years: int) -> np.ndarray:
     """Indices of the days cycled before the record: its first balance years, repeated as needed.

@@ -199,6 +199,19 @@ class StationCells:
     def n_days(self) -> int:
         return self.t0.shape[0]
 
+    def linear(self):
+        """The forcing as coefficients of the days times basis rows of the cells (the kernel's
+        LINEAR mode, :class:`firnline.kernel.CellForcing`): on days when every station reports,
+        T = [T0, lapse] . [w; dz] and P = P0 . (w x orog), the products of :meth:`block`.
+
+        Returns ``(coef (n_days, 2 ns + 1) float32, basis (2 ns + 1, n_cells) float32, kt = ns + 1,
+        full (n_days,) bool)``; on the days not ``full`` the weights are renormalised per cell
+        (:meth:`block`), which is not linear.
+        """
+        coef = np.ascontiguousarray(np.column_stack([self._at, self._ap]).astype("float32"))
+        basis = np.ascontiguousarray(np.vstack([self._bt, self._bp]))
+        return coef, basis, self._bt.shape[0], self.full.copy()
+
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32.
 

@@ -240,12 +240,17 @@ def _bilinear_block(run_start, run_quad, piece, wx, wy, ct, cp, lapse, dz, orog,
                 q = run_quad[r]
                 ta, tb, tc, te = ct[d, 0, q], ct[d, 1, q], ct[d, 2, q], ct[d, 3, q]
                 pa, pb, pc, pe = cp[d, 0, q], cp[d, 1, q], cp[d, 2, q], cp[d, 3, q]
-                for i in range(run_start[r], run_start[r + 1]):
-                    x = wx[i]
-                    y = wy[i]
+                # views from the run's first cell, so the loop index starts at 0 (numba then
+                # drops its negative-index check and the loop vectorises)
+                i0, i1 = run_start[r], run_start[r + 1]
+                xr, yr, dzr, orr = wx[i0:i1], wy[i0:i1], dz[i0:i1], orog[i0:i1]
+                tr, pr = t_out[d, i0:i1], p_out[d, i0:i1]
+                for i in range(i1 - i0):
+                    x = xr[i]
+                    y = yr[i]
                     xy = x * y
-                    t_out[d, i] = ta + tb * x + tc * y + te * xy + lap * dz[i]
-                    p_out[d, i] = (pa + pb * x + pc * y + pe * xy) * orog[i]
+                    tr[i] = ta + tb * x + tc * y + te * xy + lap * dzr[i]
+                    pr[i] = (pa + pb * x + pc * y + pe * xy) * orr[i]
 
 
 # ----------------------------------------------------------------------------

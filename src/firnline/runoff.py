@@ -94,8 +94,6 @@ def linear_reservoir(release, k_days: float, storage0: float = 0.0):
         Storage at the end of each day, mm.
     """
     r = np.asarray(release, dtype="float64")
-    if k_days < 0 or not math.isfinite(k_days):
-        raise ValueError("the storage constant must be a finite number of days >= 0")
     out, s = linear_reservoirs(r[None, :], [k_days], [storage0])
     return out[0], s[0]
 
@@ -143,9 +141,7 @@ def linear_reservoirs(release, k_days, storage0=None):
         storage[t] = s
     storage = storage.T
     prev = np.concatenate((start[:, None], storage[:, :-1]), axis=1)
-    out = r + prev - storage
-    out[pass_through] = r[pass_through]
-    return out, np.ascontiguousarray(storage)
+    return r + prev - storage, np.ascontiguousarray(storage)   # k = 0: storage 0, out = r
 
 
 @dataclass(frozen=True)

@@ -190,8 +190,11 @@ class StationCells:
                                    network.y_m, network.power)
         # days on which every station reports: T = [T0, lapse] @ [w; dz], P = P0 @ (w * orog),
         # two products (:func:`_linear_block`) that write each output value once
-        self._bt = np.ascontiguousarray(np.vstack([self.weights, self.dz[None, :].astype("float32")]))
-        self._bp = np.ascontiguousarray((self.weights * self.orog[None, :]).astype("float32"))
+        # one basis array (the kernel's LINEAR mode reads it whole, see linear()): T rows, then P rows
+        self._basis = np.ascontiguousarray(np.vstack([self.weights, self.dz[None, :].astype("float32"),
+                                                      (self.weights * self.orog[None, :]).astype("float32")]))
+        self._bt = self._basis[:self.weights.shape[0] + 1]
+        self._bp = self._basis[self.weights.shape[0] + 1:]
         self._at = np.ascontiguousarray(np.column_stack([self.t0, self.lapse]))
         self._ap = np.ascontiguousarray(self.p0)
 
@@ -209,8 +212,7 @@ class StationCells:
         (:meth:`block`), which is not linear.
         """
         coef = np.ascontiguousarray(np.column_stack([self._at, self._ap]).astype("float32"))
-        basis = np.ascontiguousarray(np.vstack([self._bt, self._bp]))
-        return coef, basis, self._bt.shape[0], self.full.copy()
+        return coef, self._basis, self._bt.shape[0], self.full.copy()
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
         """Temperature (deg C) and precipitation (mm) at every cell for days a .. b-1, each (b-a, n_cells) float32.

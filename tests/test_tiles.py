@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import os
 
 import numpy as np
 import pandas as pd
@@ -235,3 +236,105 @@ def test_a_two_worker_local_cluster_gives_the_serial_result(tmp_path, builders):
         given = run(compute(cfg, tile_size=20), setup=setup, client=client)
     assert given.compute.startswith("dask.distributed at ")
     assert_same_run(serial, given, exact_budget=False)
+
+
+# ----------------------------------------------------------------------------
+# streamed per-year maps (firnline.yearmaps)
+# ----------------------------------------------------------------------------
+
+def written_products(folder):
+    """Every product of a run folder by what it holds: GeoTIFF pixels, profile and tags (without
+    the config path and the time), NetCDF variables and attributes, other files byte for byte."""
+    import rasterio
+    import xarray as xr
+
+    moving = {"config", "config_sha256", "created_utc"}
+    out = {}
+    for p in sorted(folder.iterdir()):
+        if p.name.startswith(".") or p.name in ("run.json", "report.html", "glaciers.gpkg"):
+            continue
+        if p.suffix == ".tif":
+            with rasterio.open(p) as src:
+                out[p.name] = (src.read(), dict(src.profile), src.overviews(1),
+                               {k: v for k, v in src.tags().items() if k not in moving})
+        elif p.suffix == ".nc":
+            with xr.open_dataset(p) as ds:
+                out[p.name] = ds.load()
+        else:
+            out[p.name] = p.read_bytes()
+    return out
+
+
+def assert_same_products(a, b):
+    assert set(a) == set(b)
+    for name in a:
+        if name.endswith(".tif"):
+            assert np.array_equal(a[name][0], b[name][0], equal_nan=True), name
+            assert a[name][1:] == b[name][1:], name
+        elif name.endswith(".nc"):
+            assert a[name].identical(b[name]), name
+        else:
+            assert a[name] == b[name], name
+
+
+def test_maps_streamed_through_a_file_give_the_products_of_maps_in_memory(tmp_path, builders, monkeypatch):
+    """A run whose maps pass SPILL_BYTES keeps them in a chunked file beside the output folder and
+    writes every product from it a strip at a time: the same files (GeoTIFF pixels, NetCDF, CSV,
+    map and chart PNGs) as the maps held in memory; the file is gone once the result is closed."""
+    from firnline import yearmaps
+
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "min_slide_slope_deg": 15.0})
+    cfg = compute(cfg, tile_size=16, workers=1)            # 3 x 3 units, the last ones narrow
+    setup = prepare(cfg)
+    held = run(cfg, setup=setup)
+    assert not held.maps.spilled and isinstance(held.fields["annual_balance"].data, np.ndarray)
+    held.write(tmp_path / "held")
+    monkeypatch.setattr(yearmaps, "SPILL_BYTES", 0)
+    monkeypatch.setattr(yearmaps, "STRIP_BYTES", 3 * 40 * 4 * 7)          # strips of 7 rows
+    streamed = run(cfg, setup=setup)
+    folder = streamed.maps.dir
+    assert streamed.maps.spilled and folder.parent == tmp_path and folder.name.startswith(".out.firnline-maps-")
+    assert not isinstance(streamed.fields["annual_balance"].data, np.ndarray)      # lazy, over the file
+    assert_same_run(held, streamed)
+    streamed.write(tmp_path / "streamed")
+    assert_same_products(written_products(tmp_path / "held"), written_products(tmp_path / "streamed"))
+    assert not list((tmp_path / "streamed").glob("*.source.tif"))
+    streamed.close()
+    assert not folder.exists()
+
+
+def test_an_interrupted_streamed_run_removes_its_maps_file(tmp_path, builders, monkeypatch):
+    from firnline import yearmaps
+
+    monkeypatch.setattr(yearmaps, "SPILL_BYTES", 0)
+    cfg = compute(valley_case(tmp_path, builders), tile_size=20, workers=1)
+
+    def stop(label, done, total):
+        if label == "units" and done == 2:
+            assert [p.name for p in tmp_path.glob(".out.firnline-maps-*")]      # being written
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        run(cfg, progress=stop)
+    assert not list(tmp_path.glob(".out.firnline-maps-*"))
+
+
+def test_the_maps_file_of_a_killed_run_is_cleared_by_the_next_command(tmp_path, builders):
+    """A folder of spilled maps whose process is gone goes with the next run on that output folder;
+    one of a live process stays."""
+    cfg = builders.folder_case(tmp_path)
+    dead = subprocess_pid_that_ended()
+    stale = tmp_path / f".out.firnline-maps-{dead}-0123456789ab"
+    live = tmp_path / f".out.firnline-maps-{os.getppid()}-0123456789ab"
+    for d in (stale, live):
+        d.mkdir()
+        (d / "maps.nc").write_bytes(b"")
+    assert main(["run", str(cfg), "--quiet", "--no-report"]) == 0
+    assert not stale.exists() and live.exists()
+
+
+def subprocess_pid_that_ended() -> int:
+    import subprocess
+    import sys
+    proc = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    return int(proc.stdout)

@@ -6,7 +6,9 @@ years (from the station file's line count and the configured period), the number
 scenarios, the band width (profile rows) and, for the radiation method, the horizon
 sectors and the radiation table. It is deliberately generous (float64 working copies,
 the per-year fields of every scenario, the writers' temporaries); a run it refuses would
-at best have swapped for hours.
+at best have swapped for hours. ``firnline run`` streams its per-year maps
+(:mod:`firnline.yearmaps`): its estimate counts the whole DEM's setup, one unit's kernel results
+and at most :data:`firnline.yearmaps.SPILL_BYTES` of maps, not every year of every cell.
 """
 
 from __future__ import annotations
@@ -34,6 +36,7 @@ _STATE_BYTES_PER_CELL_SCENARIO = (8 * 2 * N_STATE + 8 + 8 * 5
 _KERNEL_BYTES_PER_CELL_YEAR = 4 * N_SEASON * N_FLUX + 4 + 4 + 8
 # ... plus the per-year fields (5 maps float32 on the cells and on the grid)
 _BYTES_PER_CELL_SCENARIO_YEAR = _KERNEL_BYTES_PER_CELL_YEAR + 4 * 5 * 2
+_MAPS = 8                     # per-year maps of a run (firnline.tiles, firnline.yearmaps)
 _BYTES_PER_PROFILE_ROW = 200                                 # a pandas row of the profile tables
 _GLACIER_RELIEF_M = 5000.0                                  # upper bound of one glacier's relief
 _FIXED_BYTES = 300 * 2**20                                  # interpreter, numba, GDAL, pandas
@@ -51,13 +54,26 @@ class Estimate:
 
 
 def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_m: float = 50.0,
-             glaciers: int = 1, radiation_sectors: int | None = None) -> Estimate:
-    """Peak memory of a run, bytes (see the module docstring for what is counted)."""
+             glaciers: int = 1, radiation_sectors: int | None = None, unit_cells: int | None = None) -> Estimate:
+    """Peak memory of a run, bytes (see the module docstring for what is counted).
+
+    ``unit_cells``: the cells of one unit of work when the run's per-year maps are streamed
+    (``firnline run``: :mod:`firnline.yearmaps` holds at most :data:`~firnline.yearmaps.SPILL_BYTES`
+    of them, the rest goes to a file), so the kernel's per-year results are one unit's; None
+    counts every year of every cell (a sweep keeps every scenario's maps).
+    """
+    from .yearmaps import SPILL_BYTES, STRIP_BYTES
+
     ny, nx = shape
     cells = ny * nx
     b = _FIXED_BYTES + cells * _BYTES_PER_CELL
-    b += cells * scenarios * _STATE_BYTES_PER_CELL_SCENARIO
-    b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
+    if unit_cells is None:
+        b += cells * scenarios * _STATE_BYTES_PER_CELL_SCENARIO
+        b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
+    else:
+        unit = min(unit_cells, cells)
+        b += unit * scenarios * (_STATE_BYTES_PER_CELL_SCENARIO + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
+        b += min(cells * max(years, 1) * 4 * _MAPS, SPILL_BYTES) + 2 * STRIP_BYTES
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
     b += bands * max(years, 1) * glaciers * scenarios * _BYTES_PER_PROFILE_ROW
     if radiation_sectors:
@@ -109,8 +125,7 @@ def check(est: Estimate, available: int | None = None) -> None:
         f"This run needs about {_gb(est.bytes)} of memory (DEM {ny} x {nx} cells, {est.years} balance years, "
         f"{est.scenarios} scenario{'s' if est.scenarios != 1 else ''}, band width {est.band_width_m:g} m), "
         f"more than the {_gb(avail)} available; use a coarser DEM (or a smaller window of it), fewer years "
-        "([climate] start and end) or fewer scenarios (a tiled run bounds the kernel's memory per unit, "
-        "but the maps of every year are still assembled in memory).")
+        "([climate] start and end) or fewer scenarios.")
 
 
 # one unit of a tiled run (firnline.tiles) in one worker process: its setup cut, kernel state and
@@ -163,18 +178,20 @@ def count_lines(path: Path, limit: int = 2**31) -> int:
                 return n
 
 
-def estimate_for(config, scenarios: int = 1) -> Estimate:
-    """The estimate of a run of ``config`` from file headers only (no input is read whole)."""
+def estimate_for(config, scenarios: int = 1, streamed: bool = False) -> Estimate:
+    """The estimate of a run of ``config`` from file headers only (no input is read whole);
+    ``streamed``: the run's maps are streamed (:func:`estimate`, ``unit_cells``)."""
     shape, years, glaciers = _header_sizes(config)
     sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
-    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors)
+    unit = unit_bytes(config.compute.tile_size, shape, years, scenarios)[1] if streamed else None
+    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit)
 
 
-def check_run(config, scenarios: int = 1, available: int | None = None) -> None:
+def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:
     """The checks before a run: its units (:func:`check_unit`), then the whole run (:func:`check`)."""
     shape, years, _ = _header_sizes(config)
     check_unit(config.compute, shape, years, scenarios, available)
-    check(estimate_for(config, scenarios), available)
+    check(estimate_for(config, scenarios, streamed), available)
 
 
 def _header_sizes(config) -> tuple[tuple[int, int], int, int]:

@@ -303,13 +303,16 @@ class BalanceMaps:
              ela_lines: dict[int, list[np.ndarray]], ela_text: str = "") -> bytes:
         """PNG bytes of the map for one period.
 
-        seasons : {"annual_balance"|"winter_balance"|"summer_balance": (ny, nx) m w.e.}
+        seasons : {"annual_balance"|"winter_balance"|"summer_balance": m w.e.}, maps of the whole
+            grid (ny, nx) or of the view's window only
         ela_lines : {glacier id: polylines} drawn on the annual panel
         """
         v, s = self.view, self.step
         win = (slice(v.r0, v.r1), slice(v.c0, v.c1))
         for im, (var, label), title in zip(self.images, SEASONS, self.titles):
-            im.set_data(np.ma.masked_invalid(block_reduce(seasons[var][win], s)))
+            a = seasons[var]
+            a = a if a.shape == (v.r1 - v.r0, v.c1 - v.c0) else a[win]
+            im.set_data(np.ma.masked_invalid(block_reduce(a, s)))
             title.set_text(label)
         segs = [ln for k in v.glaciers for ln in ela_lines.get(k, [])]
         ela = []

@@ -647,7 +647,9 @@ class RunResult:
 
     fields : xarray.Dataset, dims (balance_year, y, x): annual_balance, winter_balance,
         summer_balance (glacier surface; NaN off glaciers), accumulation, ablation (every
-        valid cell), all m w.e.; glacier_fraction and elevation (y, x).
+        valid cell), all m w.e.; glacier_fraction and elevation (y, x). Numpy-backed, or for a run
+        whose maps pass :data:`firnline.yearmaps.SPILL_BYTES` dask-backed over a chunked file (read a
+        window or a year at a time; ``.values`` of a whole variable loads every year)
     summary : DataFrame with :data:`SUMMARY_COLUMNS`
     profiles : DataFrame with :data:`PROFILE_COLUMNS`
     gradients : DataFrame (glacier, balance_year, gradient_mwe_per_100m)
@@ -677,6 +679,14 @@ class RunResult:
     compute: str = ""
     #: what ``[compute] cells = "glaciers"`` left out (console and run.json notes)
     compute_notes: tuple = ()
+    #: where ``fields`` live (:class:`firnline.yearmaps.YearMaps`): in memory, or for a large run in
+    #: a file beside the output folder, removed by :meth:`close` or when the result is collected
+    maps: object = None
+
+    def close(self) -> None:
+        """Release the per-year maps (a large run's spill file); ``fields`` cannot be read after."""
+        if self.maps is not None:
+            self.maps.close()
 
     @property
     def notes(self) -> tuple:
@@ -812,10 +822,10 @@ def to_grid(setup: Setup, values: np.ndarray, where: np.ndarray | None = None) -
     return setup.grid.to_grid(values, where, setup.cells)
 
 
-def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> xr.Dataset:
-    """Per-year maps as an xarray Dataset with dims (balance_year, y, x) and units."""
+def fields_dataset(setup: Setup, maps: dict, years: Sequence[int]) -> xr.Dataset:
+    """Per-year maps ``name -> (n_years, ny, nx)`` (numpy or dask; :class:`firnline.yearmaps.YearMaps`)
+    as an xarray Dataset with dims (balance_year, y, x) and units."""
     x, y = setup.grid.cell_centres()
-    on_glacier = setup.glacier_mask
     long_names = {
         "annual_balance": "annual surface mass balance of the glacier surface",
         "winter_balance": "winter surface mass balance of the glacier surface (fixed-date system)",
@@ -828,11 +838,8 @@ def fields_dataset(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[
     }
     data = {}
     for name, ln in long_names.items():
-        if name not in fields:
-            continue
-        where = on_glacier if name.endswith("balance") else None
-        data[name] = (("balance_year", "y", "x"), to_grid(setup, fields[name], where),
-                      {"units": "m w.e.", "long_name": ln})
+        if name in maps:
+            data[name] = (("balance_year", "y", "x"), maps[name], {"units": "m w.e.", "long_name": ln})
     frac = setup.glaciers.total_fraction.astype("float32")
     data["glacier_fraction"] = (("y", "x"), np.where(setup.grid.valid, frac, np.nan).astype("float32"),
                                 {"units": "1", "long_name": "glacier share of the cell area"})
@@ -878,12 +885,11 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
     merged = tiles.run_units(setup, config, warming_k, precip_change_pct, progress=progress, client=client)
     t1 = time.perf_counter()
     years = [int(y) for y in setup.forcing.years]
-    f = merged.fields
     bw = config.balance.band_width_m
     met = {name: glacier_years_from_sums(sums, len(years), bw)
            for name, sums in zip(setup.glaciers.names, merged.glacier_sums)}
     summary, profiles, gradients = tables(met, years)
-    ds = fields_dataset(setup, f, years)
+    ds = fields_dataset(setup, merged.maps.arrays(), years)
     budget = wb.budget_from_sums(merged.budget, wb.region_names(setup.glaciers.names), years)
     t2 = time.perf_counter()
     series, gauge = runoff_from_daily(setup, config, merged.daily, merged.region_area_m2)
@@ -895,7 +901,7 @@ def run(config: Config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
                      precip_change_pct=precip_change_pct, fields=ds, summary=summary,
                      profiles=profiles, gradients=gradients, timings=timings, runoff=series, gauge=gauge,
                      water_budget=budget, kernel=merged.kernel, compute=merged.scheduler,
-                     compute_notes=merged.notes)
+                     compute_notes=merged.notes, maps=merged.maps)
 
 
 def region_names(setup: Setup) -> list[str]:

@@ -58,7 +58,7 @@ from .errors import InputError
 MANIFEST = ".firnline-manifest.json"
 """Name of the manifest inside an output folder (JSON, see :func:`read_manifest`)."""
 MANIFEST_FORMAT = 1
-WORK_TAG = ".firnline-"       # sibling work entries: .OUT.firnline-lock, -staging-*, -old-*
+WORK_TAG = ".firnline-"       # sibling work entries: .OUT.firnline-lock, -staging-*, -old-*, -maps-*
 LONGEST_SUFFIX = len(".firnline-staging-4294967295-0123456789ab") + 1
 CLUTTER = {".DS_Store", "Thumbs.db", "desktop.ini"}   # written by file browsers; kept as they are
 DERIVED_SUFFIXES = (".aux.xml", ".ovr", ".msk")         # GDAL sidecars of our rasters: replaced
@@ -565,6 +565,10 @@ class OutputFolder:
             # killed between the two renames of a swap: the earlier set comes back
             os.rename(olds[0], p)
             work.remove(olds[0])
+        # the spilled maps of a run that was killed (firnline.yearmaps); a live run's stay
+        from .yearmaps import WORK_PART, stale
+        work += [e for e in p.parent.iterdir()
+                 if e.name.startswith(prefix) and f"{WORK_TAG}{WORK_PART}" in e.name and stale(e.name)]
         for e in work:
             shutil.rmtree(e, ignore_errors=True)
         if self.cache_dir is not None:

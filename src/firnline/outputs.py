@@ -37,47 +37,76 @@ COG_OPTIONS = dict(COMPRESS="DEFLATE", PREDICTOR="YES", BLOCKSIZE=256, LEVEL=1, 
 NETCDF_ENCODING = {"zlib": True, "complevel": 1, "shuffle": True, "tile": 512}
 
 
-def write_geotiff(path: Path, bands: np.ndarray | Sequence[np.ndarray], transform, crs,
-                  descriptions: Sequence[str], units: str, tags: dict | None = None,
-                  dtype: str = "float32", nodata: float = NODATA) -> None:
+#: A GeoTIFF whose bands take more than this is staged in a file beside it, not in memory.
+MEMORY_SOURCE_BYTES = 256 * 2**20
+
+
+def write_geotiff(path: Path, bands, transform, crs, descriptions: Sequence[str], units: str,
+                  tags: dict | None = None, dtype: str = "float32", nodata: float = NODATA) -> None:
     """Write one or more 2D bands as a cloud-optimised GeoTIFF (COG).
 
-    NaN becomes ``nodata``. ``descriptions`` gives one text per band; ``units`` is set
-    on every band; ``tags`` (provenance) go into the dataset metadata.
+    ``bands``: a (ny, nx) or (count, ny, nx) array, or a sequence of (ny, nx) arrays; numpy, xarray
+    or dask (read a strip of rows at a time, :func:`firnline.yearmaps.row_strips`, so a map held in a
+    file is never loaded whole). NaN becomes ``nodata``. ``descriptions`` gives one text per band;
+    ``units`` is set on every band; ``tags`` (provenance) go into the dataset metadata.
 
-    The bands are first written to an in-memory GTiff (where rasterio can set band
-    descriptions, units and tags), then copied with GDAL's COG driver, which carries
-    that metadata over and lays the file out as the COG standard asks (GDAL COG driver
-    documentation; OGC Cloud Optimized GeoTIFF standard, 2023): 256 x 256 tiles,
-    DEFLATE (floating-point predictor for floats), overviews down to one tile
-    (averaged for floats, the most frequent value for integer ids), and every IFD
-    ahead of the image data.
+    The bands are first written to a tiled GTiff, in memory (or, above
+    :data:`MEMORY_SOURCE_BYTES`, in a file beside ``path`` removed afterwards), where rasterio can
+    set band descriptions, units and tags, then copied with GDAL's COG driver, which carries that
+    metadata over and lays the file out as the COG standard asks (GDAL COG driver documentation;
+    OGC Cloud Optimized GeoTIFF standard, 2023): 256 x 256 tiles, DEFLATE (floating-point
+    predictor for floats), overviews down to one tile (averaged for floats, the most frequent
+    value for integer ids), and every IFD ahead of the image data.
     """
+    import rasterio
     from rasterio.io import MemoryFile
     from rasterio.shutil import copy as gdal_copy
+    from rasterio.windows import Window
 
-    arr = np.asarray(bands)
-    if arr.ndim == 2:
-        arr = arr[None]
-    count, ny, nx = arr.shape
-    is_float = np.dtype(dtype).kind == "f"
-    if is_float:
-        data = np.where(np.isfinite(arr), arr, nodata).astype(dtype)
+    from .yearmaps import row_strips
+
+    if isinstance(bands, (list, tuple)):
+        layers = list(bands)
+    elif getattr(bands, "ndim", np.ndim(bands)) == 2:
+        layers = [bands]
     else:
-        data = arr.astype(dtype)
+        layers = [bands[i] for i in range(bands.shape[0])]
+    count = len(layers)
+    ny, nx = layers[0].shape
+    is_float = np.dtype(dtype).kind == "f"
     profile = dict(driver="GTiff", width=nx, height=ny, count=count, dtype=dtype, crs=crs,
                    transform=transform, nodata=nodata, tiled=True, blockxsize=256, blockysize=256)
-    with MemoryFile() as mem:
-        with mem.open(**profile) as tmp:
-            tmp.write(data)
-            for b in range(count):
-                tmp.set_band_description(b + 1, descriptions[b])
-                tmp.set_band_unit(b + 1, units)
-            if tags:
-                tmp.update_tags(**{k: str(v) for k, v in tags.items()})
-        with mem.open() as src:
-            gdal_copy(src, str(path), driver="COG", **COG_OPTIONS, BIGTIFF="IF_SAFER",
-                      OVERVIEW_RESAMPLING="AVERAGE" if is_float else "MODE")
+
+    def fill(tmp) -> None:
+        for b, layer in enumerate(layers):
+            for r0, r1 in row_strips((ny, nx), np.dtype(dtype).itemsize):
+                a = np.asarray(layer[r0:r1])
+                data = np.where(np.isfinite(a), a, nodata).astype(dtype) if is_float else a.astype(dtype)
+                tmp.write(data, b + 1, window=Window(0, r0, nx, r1 - r0))
+            tmp.set_band_description(b + 1, descriptions[b])
+            tmp.set_band_unit(b + 1, units)
+        if tags:
+            tmp.update_tags(**{k: str(v) for k, v in tags.items()})
+
+    def to_cog(src) -> None:
+        gdal_copy(src, str(path), driver="COG", **COG_OPTIONS, BIGTIFF="IF_SAFER",
+                  OVERVIEW_RESAMPLING="AVERAGE" if is_float else "MODE")
+
+    if count * ny * nx * np.dtype(dtype).itemsize <= MEMORY_SOURCE_BYTES:
+        with MemoryFile() as mem:
+            with mem.open(**profile) as tmp:
+                fill(tmp)
+            with mem.open() as src:
+                to_cog(src)
+        return
+    source = Path(path).with_name(Path(path).name + ".source.tif")
+    try:
+        with rasterio.open(source, "w", **profile, BIGTIFF="IF_SAFER") as tmp:
+            fill(tmp)
+        with rasterio.open(source) as src:
+            to_cog(src)
+    finally:
+        source.unlink(missing_ok=True)
 
 
 def _clean(obj):

@@ -12,6 +12,7 @@ import dataclasses
 import warnings
 from pathlib import Path
 
+import dask
 import numpy as np
 import pandas as pd
 
@@ -19,6 +20,7 @@ from . import __version__, provenance
 from .metrics import balanced_budget
 from .model import RunResult, TerrainResult, parameters_used
 from .outputs import staged, write_csv, write_geotiff, write_json, write_netcdf
+from .yearmaps import reduce_years
 
 MAPS = [  # (variable in fields, file prefix, description)
     ("annual_balance", "annual_balance", "annual surface mass balance"),
@@ -92,7 +94,7 @@ def run_json(result: RunResult, files: list[str]) -> dict:
                    "balance_years": [int(y) for y in setup.forcing.years]},
         "initial_condition": initial_condition(cfg, setup),
         "compute": {"units": result.timings.get("units", 1), "scheduler": result.compute,
-                    "modelled_cells": int(np.isfinite(result.fields["accumulation"].values[0]).sum())
+                    "modelled_cells": int(np.isfinite(np.asarray(result.fields["accumulation"][0])).sum())
                     if result.fields.sizes.get("balance_year") else 0},
         "glacier_lookup": {str(i + 1): n for i, n in enumerate(setup.glaciers.names)},
         **glacier_results(result),
@@ -189,7 +191,9 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
     years = [int(y) for y in ds.balance_year.values]
     summary = summary_csv(result)
     budget = balanced_budget(result.summary)
-    with staged(out_dir) as st:
+    # maps held in a file are read a strip or a year at a time in this process, even when a
+    # dask.distributed client is the default scheduler
+    with dask.config.set(scheduler="synchronous"), staged(out_dir) as st:
         write_csv(st.path("summary.csv"), summary)
         write_csv(st.path("profiles.csv"), result.profiles)
         write_csv(st.path("balanced_budget.csv"), budget)
@@ -199,9 +203,9 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
             if var not in ds:
                 continue
             for i, year in enumerate(years):
-                write_geotiff(st.path(f"{prefix}_{year}.tif"), ds[var].values[i], grid.transform, grid.crs,
+                write_geotiff(st.path(f"{prefix}_{year}.tif"), ds[var].data[i], grid.transform, grid.crs,
                               [f"{desc}, balance year {year}"], "m w.e.", tags)
-        mean = ds["annual_balance"].mean("balance_year").values
+        mean = record_mean(ds["annual_balance"])
         write_geotiff(st.path("mean_annual_balance.tif"), mean, grid.transform, grid.crs,
                       [f"mean annual surface mass balance {years[0]}-{years[-1]}"], "m w.e.", tags)
         write_geotiff(st.path("glacier_id.tif"), setup.glaciers.id_map, grid.transform, grid.crs,
@@ -218,7 +222,7 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
                      year_bounds=year_bounds(years, result.config.balance.year_start),
                      cell_methods=netcdf_cell_methods(result.config))
         outlines = gis.outline_geometries(result.config, grid, setup.glaciers)
-        lines = ela_lines_all(result, summary)
+        lines = ela_lines_all(result, summary, mean)
         write_glaciers_gpkg(st.path("glaciers.gpkg"), result, summary, budget, outlines, lines)
         if result.runoff is not None:
             from .runoff_products import write_run_runoff
@@ -241,8 +245,15 @@ def write_run(result: RunResult, out_dir: Path, report: bool = True) -> list[Pat
     return [Path(out_dir) / n for n in st.names]
 
 
-def ela_lines_all(result: RunResult, summary: pd.DataFrame) -> dict:
-    """ELA contour lines per (glacier, balance year) and (glacier, "mean"), map coordinates."""
+def record_mean(maps) -> np.ndarray:
+    """The mean over the balance years of (balance_year, y, x) maps (xarray), NaN-skipping as xarray's
+    mean is, one strip of rows at a time (:func:`firnline.yearmaps.reduce_years`)."""
+    return reduce_years(maps, lambda strip: strip.mean("balance_year").values)
+
+
+def ela_lines_all(result: RunResult, summary: pd.DataFrame, mean: np.ndarray | None = None) -> dict:
+    """ELA contour lines per (glacier, balance year) and (glacier, "mean"), map coordinates;
+    ``mean``: the record-mean annual balance map (default: computed, :func:`record_mean`)."""
     from .gis import ela_lines
     from .metrics import ela
     setup = result.setup
@@ -250,7 +261,8 @@ def ela_lines_all(result: RunResult, summary: pd.DataFrame) -> dict:
     gl = setup.glaciers
     x, y = grid.cell_centres()
     s = summary.set_index(["glacier", "balance_year"])
-    mean = result.fields["annual_balance"].mean("balance_year").values
+    if mean is None:
+        mean = record_mean(result.fields["annual_balance"])
     out = {}
     for k, name in enumerate(gl.names):
         inside = gl.id_map == k + 1
@@ -317,13 +329,13 @@ def run_figures(result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame, 
     data = MapData(elevation=grid.elevation, id_map=gl.id_map, x=x, y=y, cell_size_m=grid.cell_size_m,
                    crs=grid.crs, crs_label=grid.crs.to_string(), names=names, outlines=outlines)
     views = plan_views(grid.valid, gl.id_map, names, [float(area.get(n, 0.0)) for n in names], site)
-    seasons = {v: ds[v].values for v in ("annual_balance", "winter_balance", "summer_balance")}
+    seasons = ("annual_balance", "winter_balance", "summer_balance")
     periods = years + ["mean"]
     means = {}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)   # cells off the glaciers are NaN in every year
-        for v, a in seasons.items():
-            means[v] = np.nanmean(a, axis=0)
+        for v in seasons:
+            means[v] = reduce_years(ds[v].data, lambda a: np.nanmean(a, axis=0))
     ela_text = {}
     for p in periods:
         if p == "mean":
@@ -332,11 +344,19 @@ def run_figures(result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame, 
             ela_text[p] = "; dashed: the year's ELA"
     maps = {}
     for view in views:
-        win = (slice(None), slice(view.r0, view.r1), slice(view.c0, view.c1))
-        vmax = colour_limit([a[win] for a in seasons.values()])
+        # one year of one view's window is read at a time (the maps of a large run live in a file)
+        win = (slice(view.r0, view.r1), slice(view.c0, view.c1))
+        finite = []
+        for v in seasons:
+            for i in range(len(years)):
+                a = np.asarray(ds[v].data[(i, *win)])
+                finite.append(a[np.isfinite(a)])
+        vmax = colour_limit(finite)
+        del finite
         drawer = BalanceMaps(data, view, vmax, site)
         for p in periods:
-            fields = {v: (means[v] if p == "mean" else seasons[v][years.index(p)]) for v in seasons}
+            fields = {v: (means[v][win] if p == "mean" else np.asarray(ds[v].data[(years.index(p), *win)]))
+                      for v in seasons}
             ela = {k + 1: lines.get((n, p), []) for k, n in enumerate(names)}
             label = f"mean of the balance years {years[0]}-{years[-1]}" if p == "mean" else f"balance year {p}"
             maps[(view.key, p)] = (f"map_{view.key}_{p}.png", drawer.draw(label, fields, ela))

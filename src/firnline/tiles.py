@@ -14,9 +14,10 @@ every cell upslope of them, so the unit's cells are exact) and returns
 * its daily region volumes (runoff), added in unit order: equal to the untiled run to float
   rounding only (the kernel itself adds them per thread, in the order threads finish).
 
-Terrain, horizons and the radiation table are computed once for the whole DEM by
-:func:`firnline.model.prepare` (no per-unit halo yet), and the per-year maps of the whole
-run are assembled in memory before the writers run.
+The fields go into the run's :class:`firnline.yearmaps.YearMaps` as each unit arrives
+(:class:`Collector`), in memory or, for a large run, into a chunked file read lazily, so the run
+holds one unit's results at a time. Terrain, horizons and the radiation table are computed once
+for the whole DEM by :func:`firnline.model.prepare` (no per-unit halo yet).
 
 Scheduling (:func:`run_units`): a run of one unit, or with ``workers = 1``, runs in this
 process (the synchronous path: no copy of the inputs to other processes, and numba's
@@ -39,6 +40,7 @@ import numpy as np
 from . import exact
 from .outdir import pause_point
 from .progress import Progress
+from .yearmaps import YearMaps, on_glaciers_only
 
 
 @dataclass(frozen=True)
@@ -117,6 +119,8 @@ class UnitResult:
     index: int
     positions: np.ndarray
     fields: dict
+    rows: tuple
+    cols: tuple
     glacier_sums: dict          # glacier index -> exact.Sums of its part in the unit
     budget: exact.Sums
     daily: np.ndarray | None
@@ -150,7 +154,8 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     gsums = {g: s for (g, *_), s in zip(unit.glaciers, parts)}
     budget = water_budget_sums(sub, kres, 0)
     daily = None if kres.daily is None else kres.daily[0]
-    return UnitResult(index=unit.index, positions=unit.positions, fields=f, glacier_sums=gsums, budget=budget,
+    return UnitResult(index=unit.index, positions=unit.positions, fields=f, rows=unit.rows, cols=unit.cols,
+                      glacier_sums=gsums, budget=budget,
                       daily=daily, seconds=time.perf_counter() - t0, slide_seconds=float(kres.slide_seconds),
                       kernel=kres if keep_kernel else None)
 
@@ -159,7 +164,7 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
 class Merged:
     """The merged results of every unit (see the module docstring)."""
 
-    fields: dict
+    maps: YearMaps
     glacier_sums: list
     budget: exact.Sums
     daily: np.ndarray | None
@@ -185,27 +190,44 @@ def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
                            [float(np.sum(area * weight))]])
 
 
-def merge(setup, results: list[UnitResult], positions: np.ndarray | None) -> tuple:
-    """Fields by position, exact sums merged, daily volumes added in unit order."""
-    results = sorted(results, key=lambda r: r.index)
-    n = setup.cells.size
-    names = list(results[0].fields) if results else []
-    fields = {}
-    for name in names:
-        ny = results[0].fields[name].shape[0]
-        out = np.full((ny, n), np.nan, dtype="float32")
-        for r in results:
-            out[:, r.positions] = r.fields[name]
-        fields[name] = out
-    n_gl = len(setup.glaciers.names)
-    gsums = [exact.merge([r.glacier_sums[g] for r in results if g in r.glacier_sums]) for g in range(n_gl)]
-    budget = exact.merge([r.budget for r in results])
-    daily = None
-    if results and results[0].daily is not None:
-        daily = results[0].daily.copy() if len(results) > 1 else results[0].daily
-        for r in results[1:]:
-            daily += r.daily
-    return fields, gsums, budget, daily
+class Collector:
+    """Takes the units' results as they finish: fields placed into the run's :class:`YearMaps` at
+    once (and dropped), exact sums and daily volumes kept to be merged by :meth:`finish`."""
+
+    def __init__(self, setup, tile_size: int, work_dir=None, prefix: str = ".firnline-",
+                 spill_bytes: int | None = None):
+        self.setup, self.tile = setup, int(tile_size)
+        self.work_dir, self.prefix, self.spill_bytes = work_dir, prefix, spill_bytes
+        self.maps: YearMaps | None = None
+        self.parts: list = []          # (index, glacier sums, budget, daily) of every unit
+
+    def add(self, r: UnitResult) -> None:
+        setup = self.setup
+        if self.maps is None:
+            first = next(iter(r.fields.values()), np.zeros((0, 0)))
+            self.maps = YearMaps(list(r.fields), first.shape[0], setup.grid.shape, (self.tile, self.tile),
+                                 self.work_dir, self.spill_bytes, self.prefix)
+        rr, cc = np.divmod(setup.cells[r.positions], setup.grid.shape[1])
+        on_glacier = setup.glacier_mask[r.positions]
+        for name, values in r.fields.items():
+            if on_glaciers_only(name):
+                values = np.where(on_glacier, values, np.nan)
+            self.maps.put(name, r.rows, r.cols, rr, cc, values)
+        r.fields = {}
+        self.parts.append((r.index, r.glacier_sums, r.budget, r.daily))
+
+    def finish(self) -> tuple:
+        """The maps, the merged glacier and budget sums, the daily volumes added in unit order."""
+        parts = sorted(self.parts, key=lambda p: p[0])
+        n_gl = len(self.setup.glaciers.names)
+        gsums = [exact.merge([p[1][g] for p in parts if g in p[1]]) for g in range(n_gl)]
+        budget = exact.merge([p[2] for p in parts])
+        daily = None
+        if parts and parts[0][3] is not None:
+            daily = parts[0][3].copy() if len(parts) > 1 else parts[0][3]
+            for p in parts[1:]:
+                daily += p[3]
+        return self.maps, gsums, budget, daily
 
 
 def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
@@ -216,30 +238,56 @@ def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 
     units = make_units(setup, comp.tile_size, positions)
     whole = positions is None and len(units) == 1
     t0 = time.perf_counter()
-    if client is None and comp.scheduler == "local" and (len(units) <= 1 or comp.workers == 1):
-        how = "synchronous: one unit" if len(units) <= 1 else "synchronous: one worker"
-        results = []
-        for k, u in enumerate(units):
-            results.append(run_unit(setup, config, u, warming_k, precip_change_pct,
-                                    progress=progress if len(units) == 1 else None, whole=whole,
-                                    keep_kernel=len(units) == 1))
-            if progress is not None and len(units) > 1:
-                progress("units", k + 1, len(units))
-            pause_point("unit")
-    else:
-        results, how = _distributed(setup, config, units, warming_k, precip_change_pct, progress, client)
-    fields, gsums, budget, daily = merge(setup, results, positions)
+    work_dir, prefix = maps_work_dir(config)
+    collect = Collector(setup, comp.tile_size, work_dir, prefix)
+    seconds = []
+    kernel = None
+    try:
+        if client is None and comp.scheduler == "local" and (len(units) <= 1 or comp.workers == 1):
+            how = "synchronous: one unit" if len(units) <= 1 else "synchronous: one worker"
+            for k, u in enumerate(units):
+                r = run_unit(setup, config, u, warming_k, precip_change_pct,
+                             progress=progress if len(units) == 1 else None, whole=whole,
+                             keep_kernel=len(units) == 1)
+                kernel = r.kernel
+                seconds.append((r.seconds, r.slide_seconds))
+                collect.add(r)
+                if progress is not None and len(units) > 1:
+                    progress("units", k + 1, len(units))
+                pause_point("unit")
+        else:
+            how = _distributed(setup, config, units, warming_k, precip_change_pct, progress, client,
+                               collect, seconds)
+        maps, gsums, budget, daily = collect.finish()
+    except BaseException:
+        if collect.maps is not None:
+            collect.maps.close()
+        raise
     notes = ()
     if positions is not None:
         notes = (f'[compute] cells = "glaciers": modelled {positions.size} of {setup.cells.size} valid cells '
                  f"(the glacier cells and those within {comp.glacier_buffer_m:g} m of them); the ice_free and "
                  "catchment rows of water_budget.csv and runoff.csv cover those cells only.",)
-    return Merged(notes=notes, fields=fields, glacier_sums=gsums, budget=budget, daily=daily,
+    return Merged(notes=notes, maps=maps, glacier_sums=gsums, budget=budget, daily=daily,
                   region_area_m2=region_areas(setup, positions), n_units=len(units), scheduler=how,
-                  kernel=results[0].kernel if len(results) == 1 else None,
+                  kernel=kernel if len(units) == 1 else None,
                   timings={"units_s": time.perf_counter() - t0,
-                           "unit_kernel_s": float(sum(r.seconds for r in results)),
-                           "redistribution_s": float(sum(r.slide_seconds for r in results))})
+                           "unit_kernel_s": float(sum(a for a, _ in seconds)),
+                           "redistribution_s": float(sum(b for _, b in seconds))})
+
+
+def maps_work_dir(config) -> tuple:
+    """Where a run's spilled maps go (:mod:`firnline.yearmaps`): a work folder beside the output folder
+    (the disk that takes the outputs), named like its other work entries; the system's temporary
+    folder when the output folder's parent does not exist yet."""
+    import tempfile
+    from pathlib import Path
+
+    from .outdir import WORK_TAG
+    out = Path(config.output.dir)
+    if out.parent.is_dir():
+        return out.parent, f".{out.name}{WORK_TAG}"
+    return Path(tempfile.gettempdir()), f".firnline-{out.name}-"
 
 
 def _cores() -> int:
@@ -254,7 +302,7 @@ def _host_cores() -> tuple[str, int]:
     return socket.gethostname(), _cores()
 
 
-def _distributed(setup, config, units, warming_k, precip_change_pct, progress, client):
+def _distributed(setup, config, units, warming_k, precip_change_pct, progress, client, collect, seconds):
     """The units as tasks of a dask.distributed cluster: local, at an address, or the caller's client."""
     from dask.distributed import Client, LocalCluster, as_completed
 
@@ -281,13 +329,16 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
         futures = [client.submit(run_unit, remote, config, u, warming_k, precip_change_pct, threads,
                                  pure=False, key=f"firnline-unit-{u.index}-{time.monotonic_ns()}")
                    for u in units]
-        results = []
         for k, fut in enumerate(as_completed(futures), start=1):
-            results.append(fut.result())
+            r = fut.result()
+            futures.remove(fut)        # the worker may drop the unit's results once they are here
+            del fut
+            seconds.append((r.seconds, r.slide_seconds))
+            collect.add(r)
             if progress is not None:
                 progress("units", k, len(units))
             pause_point("unit")
-        return results, how
+        return how
     finally:
         for thing in own:
             thing.close()

@@ -87,12 +87,13 @@ def input_paths(cfg) -> list[Path]:
     return paths
 
 
-def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1, extra_inputs=()):
+def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1, extra_inputs=(), streamed: bool = False):
     """Check the inputs, the memory and the output folder, then lock it; all before any computation.
 
     ``extra_inputs`` are input files named on the command line rather than in the config
     (they too must be regular files and may not lie in the output folder). Returns the
-    claimed :class:`firnline.outdir.OutputFolder` (a context manager).
+    claimed :class:`firnline.outdir.OutputFolder` (a context manager). ``streamed``: the command's
+    per-year maps are streamed (``firnline run``; :func:`firnline.budget.estimate`).
     """
     from .. import budget
     from ..files import regular_file
@@ -102,6 +103,6 @@ def claim_output(args, cfg, out: Path, command: str, scenarios: int = 1, extra_i
     for p in inputs:
         if p.exists():            # a missing file is named by its reader, with its key
             regular_file(p, "input file")
-    budget.check_run(cfg, scenarios)
+    budget.check_run(cfg, scenarios, streamed=streamed)
     return claim(out, command, inputs=inputs, force=getattr(args, "force", False),
                  cache_dir=cfg.radiation.cache_dir)

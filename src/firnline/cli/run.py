@@ -33,11 +33,14 @@ def main(args) -> int:
     # the same checks as a sweep: finite, > -100 %
     scenario_list([args.warming], [args.precip_change], names=SCENARIO_OPTIONS)
     cfg, out = config_and_out(args)
-    with claim_output(args, cfg, out, "run"):
+    with claim_output(args, cfg, out, "run", streamed=True):
         result = run(cfg, warming_k=args.warming, precip_change_pct=args.precip_change,
                      progress=progress_bars(args.quiet))
-        say(args, *result.notes)
-        files = write_run(result, out, report=not args.no_report)
+        try:
+            say(args, *result.notes)
+            files = write_run(result, out, report=not args.no_report)
+        finally:
+            result.close()          # a large run's maps file beside the output folder
     print(summary_table(result.summary))
     if result.gauge is not None:
         say(args, gauge_line(result.gauge))

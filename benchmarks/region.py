@@ -13,7 +13,8 @@ writes the products.
 Prints: the grid, units and scheduler, the wall time of the run (prepare + units + merge) and
 of writing, cells per second (valid cells x balance years / run time, and per cell-day), the
 peak resident memory of this process and of the largest worker process (RUSAGE_CHILDREN: the
-local cluster's workers are children of this process). Targets (issue 14): below 2.5 GB per
+local cluster's workers are children of this process), and this process's peak in each phase
+(making the inputs, prepare, run, write; sampled every 50 ms). Targets (issue 14): below 2.5 GB per
 process at 1e8 cells, time linear in cells x days, the 1e8-cell year within 15 minutes.
 """
 
@@ -125,6 +126,28 @@ cells = "{cells_mode}"
     return folder / "region.toml"
 
 
+class PhasePeaks:
+    """Peak resident memory of this process per phase, sampled every 50 ms from /proc/self/statm
+    (Linux; elsewhere only the whole-process peak of getrusage is printed)."""
+
+    def __init__(self):
+        import threading
+        self.phase, self.peaks = "start", {}
+        self._page = resource.getpagesize()
+        if Path("/proc/self/statm").exists():
+            threading.Thread(target=self._watch, daemon=True).start()
+
+    def _watch(self) -> None:
+        while True:
+            with open("/proc/self/statm") as f:
+                rss = int(f.read().split()[1]) * self._page / 2**30
+            self.peaks[self.phase] = max(self.peaks.get(self.phase, 0.0), rss)
+            time.sleep(0.05)
+
+    def __call__(self, phase: str) -> None:
+        self.phase = phase
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--cells", type=float, default=1e6)
@@ -139,26 +162,33 @@ def main() -> None:
     import firnline
     from firnline.model import prepare, simulate
 
+    phase = PhasePeaks()
     with tempfile.TemporaryDirectory() as td:
         folder = args.keep or Path(td)
+        phase("make inputs")
         folder.mkdir(parents=True, exist_ok=True)
         t0 = time.perf_counter()
         cfg = firnline.load_config(make_case(folder, args.cells, args.years, args.tile, args.workers,
                                              args.cells_mode))
         t_make = time.perf_counter() - t0
         t0 = time.perf_counter()
+        phase("prepare")
         setup = prepare(cfg)
         t_prepare = time.perf_counter() - t0
         # numba compilation (or its on-disk cache) once, on a few cells, so the timing is of the work
         simulate(setup, cfg, cells=np.arange(min(1000, setup.cells.size)))
         t0 = time.perf_counter()
+        phase("run")
         result = firnline.run(cfg, setup=setup)
         t_run = time.perf_counter() - t0
         t_write = 0.0
         if not args.no_write:
             t0 = time.perf_counter()
+            phase("write")
             result.write(folder / "out")
             t_write = time.perf_counter() - t0
+        spilled = result.maps.spilled
+        result.close()
     n = setup.cells.size
     cell_days = n * setup.forcing.n_days
     own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
@@ -166,13 +196,17 @@ def main() -> None:
     print(f"grid {setup.grid.shape[0]} x {setup.grid.shape[1]}: {n} valid cells, "
           f"{int(setup.glacier_mask.sum())} glacier cells in {len(setup.glaciers.names)} glaciers, "
           f"{len(setup.forcing.years)} balance years ({setup.forcing.n_days} days)")
-    print(f"units {result.timings['units']} of tile {args.tile}; {result.compute}")
+    print(f"units {result.timings['units']} of tile {args.tile}; {result.compute}; per-year maps "
+          f"{'in a file beside the output folder' if spilled else 'in memory'}")
     print(f"make inputs {t_make:.1f} s; prepare {t_prepare:.1f} s; run {t_run:.1f} s "
           f"(units {result.timings['kernel_s']:.1f} s, metrics {result.timings['metrics_s']:.1f} s); "
           f"write {t_write:.1f} s")
     print(f"{n * len(setup.forcing.years) / (t_prepare + t_run):.3g} cell-years per second (prepare + run); "
           f"{(t_prepare + t_run) / cell_days * 1e9:.1f} ns per cell-day")
-    print(f"peak memory: this process {own:.2f} GB, largest worker process {kids:.2f} GB")
+    print(f"peak memory: this process {own:.2f} GB, largest worker process {kids:.2f} GB (RUSAGE_CHILDREN)")
+    if phase.peaks:
+        print("peak memory of this process by phase: " + ", ".join(
+            f"{k} {v:.2f} GB" for k, v in phase.peaks.items() if k != "start"))
 
 
 if __name__ == "__main__":

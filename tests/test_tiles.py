@@ -21,7 +21,7 @@ import firnline
 from firnline import exact
 from firnline.cli import main
 from firnline.model import prepare, run
-from firnline.tiles import make_units, modelled_positions
+from firnline.tiles import make_units, modelled_positions, run_unit
 
 CELL = 50.0
 X0, Y0 = 600000.0, 5150000.0
@@ -128,6 +128,12 @@ def test_the_demo_tiled_equals_the_demo_untiled(tmp_path):
     tiled = run(compute(cfg, tile_size=128, workers=1), setup=setup)
     assert tiled.timings["units"] == 9
     assert_same_run(whole, tiled, exact_budget=False)
+    # a unit's daily sums hold its own glaciers only (plus ice_free and catchment), placed by id
+    n_gl = len(setup.glaciers.names)
+    for unit in make_units(setup, 128)[:4]:
+        ids, sums = run_unit(setup, cfg, unit, 0.0, 0.0).daily
+        mine = sorted(g for g, *_ in unit.glaciers)
+        assert list(ids) == mine + [n_gl, n_gl + 1] and sums.shape[1] == len(mine) + 2
 
 
 # ----------------------------------------------------------------------------
@@ -338,3 +344,22 @@ def subprocess_pid_that_ended() -> int:
     import sys
     proc = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
     return int(proc.stdout)
+
+
+def test_fields_and_budget_made_in_blocks_of_years_equal_those_of_the_whole_record(tmp_path, builders,
+                                                                                   monkeypatch):
+    """A unit's fields and water-budget sums are made a block of years at a time (a year's storage
+    at the start is the previous year's end): one year a block gives the same maps and tables, bit
+    for bit, with every [snow] process on and a spin-up."""
+    from firnline import tiles
+
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "refreezing": "cold-content",
+                                                "firn_years": 5, "spinup_years": 1, "min_slide_slope_deg": 15.0})
+    setup = prepare(cfg)
+    whole = run(cfg, setup=setup)
+    monkeypatch.setattr(tiles, "BLOCK_BYTES", 1)
+    blocked = run(cfg, setup=setup)
+    assert len(setup.forcing.years) == 3
+    assert_same_run(whole, blocked)
+    tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
+    assert_same_run(whole, tiled, exact_budget=False)

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import InputError
-from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_FLUX, N_SEASON, N_STATE
+from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_DAILY, N_FLUX, N_SEASON, N_STATE
 
 # bytes per valid cell that do not grow with years: DEM float64, valid mask, slope and
 # aspect float64, per-cell copies (elevation, mask, indices), kernel state per scenario
@@ -74,6 +74,7 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
         unit = min(unit_cells, cells)
         b += unit * scenarios * (_STATE_BYTES_PER_CELL_SCENARIO + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
         b += min(cells * max(years, 1) * 4 * _MAPS, SPILL_BYTES) + 2 * STRIP_BYTES
+        b += scenarios * 366 * max(years, 1) * (glaciers + 2) * N_DAILY * 8     # the run's daily region sums
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
     b += bands * max(years, 1) * glaciers * scenarios * _BYTES_PER_PROFILE_ROW
     if radiation_sectors:
@@ -135,27 +136,34 @@ _UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO
 _UNIT_BYTES_PER_CELL_YEAR = _KERNEL_BYTES_PER_CELL_YEAR + 4 * 8 * 2
 
 
-def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1) -> tuple[int, int]:
-    """Peak memory of one unit's task (bytes) and its cells: a DEM smaller than a unit is one unit."""
+def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1,
+               glaciers: int = 1) -> tuple[int, int]:
+    """Peak memory of one unit's task (bytes) and its cells: a DEM smaller than a unit is one unit.
+
+    Besides the per-cell terms, a unit holds the daily region sums of its own glaciers (days x
+    regions x :data:`~firnline.kernel.N_DAILY` terms, float64, per thread and summed: counted
+    three times), taken as its share of the DEM's glaciers plus 16."""
     cells = min(int(tile_size), shape[0]) * min(int(tile_size), shape[1])
     b = _FIXED_BYTES + cells * scenarios * (_UNIT_BYTES_PER_CELL + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
+    mine = min(glaciers, math.ceil(glaciers * cells / max(shape[0] * shape[1], 1)) + 16)
+    b += 3 * scenarios * 366 * max(years, 1) * (mine + 2) * N_DAILY * 8
     return int(b), cells
 
 
 def check_unit(compute, shape: tuple[int, int], years: int, scenarios: int = 1,
-               available: int | None = None) -> None:
+               available: int | None = None, glaciers: int = 1) -> None:
     """InputError when the units of ``[compute]`` cannot fit: ``workers`` units at once (one per worker
     process of a local cluster; one unit when the DEM is one unit) against the available memory."""
     avail = available_bytes() if available is None else available
     if avail is None:
         return
-    need, cells = unit_bytes(compute.tile_size, shape, years, scenarios)
+    need, cells = unit_bytes(compute.tile_size, shape, years, scenarios, glaciers)
     n_units = -(-shape[0] // compute.tile_size) * -(-shape[1] // compute.tile_size)
     at_once = min(compute.workers, n_units) if compute.scheduler == "local" else 1
     if need * at_once <= avail:
         return
     fits = [t for t in (4096, 2048, 1024, 512, 256, 128, 64, 32, 16)
-            if t < compute.tile_size and unit_bytes(t, shape, years, scenarios)[0] * at_once <= avail]
+            if t < compute.tile_size and unit_bytes(t, shape, years, scenarios, glaciers)[0] * at_once <= avail]
     fix = (f"set [compute] tile_size to {fits[0]} or less" if fits else
            "free memory or use a machine with more (even a unit of 16 x 16 cells does not fit)")
     workers = f" ({at_once} workers at once: {_gb(need * at_once)})" if at_once > 1 else ""
@@ -189,8 +197,8 @@ def estimate_for(config, scenarios: int = 1, streamed: bool = False) -> Estimate
 
 def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:
     """The checks before a run: its units (:func:`check_unit`), then the whole run (:func:`check`)."""
-    shape, years, _ = _header_sizes(config)
-    check_unit(config.compute, shape, years, scenarios, available)
+    shape, years, glaciers = _header_sizes(config)
+    check_unit(config.compute, shape, years, scenarios, available, glaciers)
     check(estimate_for(config, scenarios, streamed), available)
 
 

@@ -564,6 +564,9 @@ class KernelResult:
     daily: np.ndarray | None = None
     region_area_m2: np.ndarray | None = None
     slide_seconds: float = 0.0
+    #: the glaciers (setup order) of the daily sums' glacier regions, when only some are kept
+    #: (``simulate(local_regions=True)``); None: every glacier, in order
+    region_ids: np.ndarray | None = None
 
     def released(self) -> np.ndarray:
         """Water released per balance year (snow, firn and ice origins), (scenarios, years, cells)."""
@@ -585,6 +588,18 @@ class KernelResult:
                             storage_end=self.storage_end[:, n_years:],
                             storage_start=self.storage_end[:, n_years - 1], daily=days,
                             region_area_m2=self.region_area_m2, year_days=self.year_days[n_years:])
+
+    def year_block(self, a: int, b: int) -> "KernelResult":
+        """Balance years ``a .. b-1`` only, as views (no copy; the daily sums and snapshots are
+        left out): the starting storage becomes the storage at the end of year ``a - 1``, so every
+        per-year quantity of the block equals that of the whole result."""
+        def cut(v):
+            return None if v is None else v[:, a:b]
+        start = self.storage_start if a == 0 or self.storage_end is None else self.storage_end[:, a - 1]
+        return dataclasses.replace(self, sums=self.sums[:, :, :, a:b], snow_end=cut(self.snow_end),
+                                   firn_end=cut(self.firn_end), storage_end=cut(self.storage_end),
+                                   storage_start=start, daily=None, snapshots=None,
+                                   year_days=None if self.year_days is None else self.year_days[a:b])
 
     def spinup_days_of(self, n_years: int) -> int:
         return int(np.sum(self.year_days[:n_years]))

@@ -526,7 +526,7 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
              precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
              snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
              scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None,
-             daily: bool = True) -> KernelResult:
+             daily: bool = True, local_regions: bool = False) -> KernelResult:
     """Run the kernel on a prepared setup.
 
     The kernel runs over the setup's surface columns (:class:`Columns`); the result's last
@@ -560,6 +560,10 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         ``setup.catchment_weight``, else 1).
     daily : bool
         Keep the daily region sums (``KernelResult.daily``, for runoff); False saves their cost.
+    local_regions : bool
+        The daily sums of the glaciers with columns in the run only, followed by ice_free and
+        catchment; ``KernelResult.region_ids`` names their glaciers (a unit of a tiled run: days x
+        its few glaciers, not days x every glacier of the setup, in each thread).
     """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
@@ -600,6 +604,15 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         catchment_weight = setup.catchment_weight
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
     region, n_gl = cols.region, len(setup.glaciers.names)
+    region_ids = None
+    if local_regions and daily:
+        # the daily sums of the glaciers this run holds only (a unit of a tiled run holds a few of
+        # a range's thousands): glacier g -> its place in region_ids, ice-free after them
+        asked = region < n_gl if halo is None else (region < n_gl) & ~halo[cols.cell]
+        region_ids = np.unique(region[asked])
+        local = np.full(n_gl + 1, region_ids.size, dtype=np.int32)
+        local[region_ids] = np.arange(region_ids.size, dtype=np.int32)
+        region, n_gl = local[region], int(region_ids.size)
     if halo is not None and daily:
         # the upslope cells outside the asked ones go to an extra region, dropped below, so the
         # daily sums hold the asked cells only (as the rest of the result does)
@@ -634,6 +647,8 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
                                                              for k in asked]))
     if keep is not None:
         kres = kres.columns(keep)
+    if region_ids is not None:
+        kres = dataclasses.replace(kres, region_ids=region_ids)
     return kres
 
 
@@ -758,9 +773,10 @@ def water_budget(setup: Setup, kres: KernelResult, scenario: int = 0,
 
 
 def water_budget_sums(setup: Setup, kres: KernelResult, scenario: int = 0,
-                      catchment_weight: np.ndarray | None = None):
+                      catchment_weight: np.ndarray | None = None, first_year: int = 0):
     """The exact region sums of :func:`water_budget` (:func:`firnline.water_budget.budget_sums`); the
-    sums of the units of a tiled run (each a :meth:`Setup.select`) merge into those of the whole run."""
+    sums of the units of a tiled run (each a :meth:`Setup.select`) merge into those of the whole run,
+    and so do those of blocks of years (``kres`` a :meth:`KernelResult.year_block` from ``first_year``)."""
     from . import water_budget as wb
     cols = setup.surface_columns
     s = scenario
@@ -769,7 +785,7 @@ def water_budget_sums(setup: Setup, kres: KernelResult, scenario: int = 0,
     terms = wb.column_budget(lambda flux: kres.year_sum(flux)[s], kres.storage_start[s], kres.storage_end[s])
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]
     return wb.budget_sums(terms, setup.grid.cell_area_m2 * cols.share, cols.region, weight,
-                          len(setup.glaciers.names) + 2, len(setup.forcing.years))
+                          len(setup.glaciers.names) + 2, len(setup.forcing.years), first_year)
 
 
 def glacier_metrics(setup: Setup, fields: dict[str, np.ndarray], years: Sequence[int]) -> dict:

@@ -16,7 +16,7 @@ import dask
 import numpy as np
 import pandas as pd
 
-from . import __version__, provenance
+from . import __version__, provenance, yearmaps
 from .metrics import balanced_budget
 from .model import RunResult, TerrainResult, parameters_used
 from .outputs import staged, write_csv, write_geotiff, write_json, write_netcdf
@@ -344,19 +344,26 @@ def run_figures(result: RunResult, summary: pd.DataFrame, budget: pd.DataFrame, 
             ela_text[p] = "; dashed: the year's ELA"
     maps = {}
     for view in views:
-        # one year of one view's window is read at a time (the maps of a large run live in a file)
+        # a view's window is read once for every year when that is small, else one year at a time
+        # (the maps of a large run live in a file)
         win = (slice(view.r0, view.r1), slice(view.c0, view.c1))
+        cells = (view.r1 - view.r0) * (view.c1 - view.c0)
+        stack = None
+        if len(seasons) * len(years) * cells * 4 <= yearmaps.STRIP_BYTES:
+            stack = {v: np.asarray(ds[v].data[(slice(None), *win)]) for v in seasons}
+
+        def year_window(v, i):
+            return stack[v][i] if stack is not None else np.asarray(ds[v].data[(i, *win)])
         finite = []
         for v in seasons:
             for i in range(len(years)):
-                a = np.asarray(ds[v].data[(i, *win)])
+                a = year_window(v, i)
                 finite.append(a[np.isfinite(a)])
         vmax = colour_limit(finite)
         del finite
         drawer = BalanceMaps(data, view, vmax, site)
         for p in periods:
-            fields = {v: (means[v][win] if p == "mean" else np.asarray(ds[v].data[(years.index(p), *win)]))
-                      for v in seasons}
+            fields = {v: (means[v][win] if p == "mean" else year_window(v, years.index(p))) for v in seasons}
             ela = {k + 1: lines.get((n, p), []) for k, n in enumerate(names)}
             label = f"mean of the balance years {years[0]}-{years[-1]}" if p == "mean" else f"balance year {p}"
             maps[(view.key, p)] = (f"map_{view.key}_{p}.png", drawer.draw(label, fields, ela))

@@ -112,6 +112,12 @@ def make_units(setup, tile_size: int, positions: np.ndarray | None = None) -> li
     return units
 
 
+#: A unit's fields and budget terms are made in blocks of years whose float64 temporaries take
+#: about this much (:func:`run_unit`).
+BLOCK_BYTES = 256 * 2**20
+_TEMP_BYTES_PER_COLUMN_YEAR = 8 * 40       # the float64 arrays of cell_fields and column_budget
+
+
 @dataclass
 class UnitResult:
     """What a unit sends back: per-cell fields of its positions and the partial sums."""
@@ -123,7 +129,7 @@ class UnitResult:
     cols: tuple
     glacier_sums: dict          # glacier index -> exact.Sums of its part in the unit
     budget: exact.Sums
-    daily: np.ndarray | None
+    daily: object                # (days, regions, terms), or (region ids, their sums); None without
     seconds: float
     slide_seconds: float
     kernel: object = None       # the kernel result, kept only by a run of one unit in this process
@@ -147,13 +153,31 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
     t0 = time.perf_counter()
     cells = None if whole else unit.positions
-    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells)
+    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells,
+                    local_regions=not whole)
     sub = setup if whole else setup.select(unit.positions)
-    f = cell_fields(sub, kres, 0)
+    # the fields and budget terms in blocks of years (float64 temporaries of one block, not of
+    # every year); each year's values are those of the whole record, bit for bit
+    n_years, n_cols = kres.sums.shape[3], kres.sums.shape[4]
+    step = max(1, BLOCK_BYTES // max(1, n_cols * _TEMP_BYTES_PER_COLUMN_YEAR))
+    f, budgets = {}, []
+    for a in range(0, n_years, step):
+        kb = kres.year_block(a, min(n_years, a + step))
+        for name, v in cell_fields(sub, kb, 0).items():
+            if name not in f:
+                f[name] = np.empty((n_years, v.shape[1]), dtype=v.dtype)
+            f[name][a:a + v.shape[0]] = v
+        budgets.append(water_budget_sums(sub, kb, 0, first_year=a))
+    if n_years == 0:
+        f = cell_fields(sub, kres, 0)
+        budgets.append(water_budget_sums(sub, kres, 0))
+    budget = exact.merge(budgets) if len(budgets) > 1 else budgets[0]
     parts = glacier_part_sums(setup, f, unit.glaciers)
     gsums = {g: s for (g, *_), s in zip(unit.glaciers, parts)}
-    budget = water_budget_sums(sub, kres, 0)
     daily = None if kres.daily is None else kres.daily[0]
+    if daily is not None and kres.region_ids is not None:       # its glaciers, ice_free, catchment
+        n_gl = len(setup.glaciers.names)
+        daily = (np.concatenate([kres.region_ids, [n_gl, n_gl + 1]]), daily)
     return UnitResult(index=unit.index, positions=unit.positions, fields=f, rows=unit.rows, cols=unit.cols,
                       glacier_sums=gsums, budget=budget,
                       daily=daily, seconds=time.perf_counter() - t0, slide_seconds=float(kres.slide_seconds),
@@ -192,14 +216,20 @@ def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
 
 class Collector:
     """Takes the units' results as they finish: fields placed into the run's :class:`YearMaps` at
-    once (and dropped), exact sums and daily volumes kept to be merged by :meth:`finish`."""
+    once (and dropped), exact sums merged, daily volumes added in unit order (a unit that arrives
+    early waits for those before it), so the run holds about one unit's results at a time."""
 
-    def __init__(self, setup, tile_size: int, work_dir=None, prefix: str = ".firnline-",
+    def __init__(self, setup, units: list, tile_size: int, work_dir=None, prefix: str = ".firnline-",
                  spill_bytes: int | None = None):
         self.setup, self.tile = setup, int(tile_size)
         self.work_dir, self.prefix, self.spill_bytes = work_dir, prefix, spill_bytes
         self.maps: YearMaps | None = None
-        self.parts: list = []          # (index, glacier sums, budget, daily) of every unit
+        self.order = sorted(u.index for u in units)
+        self.next = 0
+        self.early: dict = {}          # daily volumes of units that came before their turn
+        self.daily = None
+        self.glacier_parts: dict = {}  # glacier -> its parts' sums
+        self.budgets: list = []
 
     def add(self, r: UnitResult) -> None:
         setup = self.setup
@@ -214,20 +244,31 @@ class Collector:
                 values = np.where(on_glacier, values, np.nan)
             self.maps.put(name, r.rows, r.cols, rr, cc, values)
         r.fields = {}
-        self.parts.append((r.index, r.glacier_sums, r.budget, r.daily))
+        for g, sums in r.glacier_sums.items():
+            self.glacier_parts.setdefault(g, []).append(sums)
+        self.budgets = [exact.merge(self.budgets + [r.budget])]
+        self.early[r.index] = r.daily
+        while self.next < len(self.order) and self.order[self.next] in self.early:
+            d = self.early.pop(self.order[self.next])
+            self.next += 1
+            if d is None:
+                continue
+            if isinstance(d, tuple):      # the daily sums of some regions only (ids, sums)
+                ids, d = d
+                if self.daily is None:
+                    n_reg = len(self.setup.glaciers.names) + 2
+                    self.daily = np.zeros((d.shape[0], n_reg) + d.shape[2:], dtype=d.dtype)
+                self.daily[:, ids] += d
+            elif self.daily is None:
+                self.daily = d.copy() if len(self.order) > 1 else d
+            else:
+                self.daily += d
 
     def finish(self) -> tuple:
-        """The maps, the merged glacier and budget sums, the daily volumes added in unit order."""
-        parts = sorted(self.parts, key=lambda p: p[0])
+        """The maps, the merged glacier and budget sums, the daily volumes."""
         n_gl = len(self.setup.glaciers.names)
-        gsums = [exact.merge([p[1][g] for p in parts if g in p[1]]) for g in range(n_gl)]
-        budget = exact.merge([p[2] for p in parts])
-        daily = None
-        if parts and parts[0][3] is not None:
-            daily = parts[0][3].copy() if len(parts) > 1 else parts[0][3]
-            for p in parts[1:]:
-                daily += p[3]
-        return self.maps, gsums, budget, daily
+        gsums = [exact.merge(self.glacier_parts.get(g, [])) for g in range(n_gl)]
+        return self.maps, gsums, exact.merge(self.budgets), self.daily
 
 
 def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
@@ -239,7 +280,7 @@ def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 
     whole = positions is None and len(units) == 1
     t0 = time.perf_counter()
     work_dir, prefix = maps_work_dir(config)
-    collect = Collector(setup, comp.tile_size, work_dir, prefix)
+    collect = Collector(setup, units, comp.tile_size, work_dir, prefix)
     seconds = []
     kernel = None
     try:

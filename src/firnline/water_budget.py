@@ -110,24 +110,30 @@ def _budget_key(term: int, year: int, region, n_years: int, n_regions: int):
 
 
 def budget_sums(terms: dict[str, np.ndarray], area_m2: np.ndarray, region: np.ndarray,
-                catchment_weight: np.ndarray, n_regions: int, n_years: int) -> exact.Sums:
+                catchment_weight: np.ndarray, n_regions: int, n_years: int, first_year: int = 0) -> exact.Sums:
     """The exact region sums behind :func:`budget_table` (volumes in mm m2 and areas in m2).
 
     Sums of some columns (the units of a tiled run) merged with :func:`firnline.exact.merge`
-    equal those of all columns exactly, whatever the order.
+    equal those of all columns exactly, whatever the order. ``terms`` may hold a block of the
+    ``n_years`` years, starting at ``first_year``: the blocks' sums then merge into those of all
+    years (the areas are counted with the block of the first year only).
     """
     region = np.asarray(region, dtype=np.int64)
     area = np.asarray(area_m2, dtype="float64")
     w_cat = area * np.asarray(catchment_weight, dtype="float64")
     cat = np.full(region.size, n_regions - 1, dtype=np.int64)
-    parts = [exact.of(np.concatenate([_budget_key(0, 0, region, n_years, n_regions),
-                                      _budget_key(0, 0, cat, n_years, n_regions)]), np.concatenate([area, w_cat]))]
+    parts = []
+    if first_year == 0:
+        parts.append(exact.of(np.concatenate([_budget_key(0, 0, region, n_years, n_regions),
+                                              _budget_key(0, 0, cat, n_years, n_regions)]),
+                              np.concatenate([area, w_cat])))
     for t, key in enumerate(_TERMS, start=1):
         v = np.asarray(terms[key], dtype="float64")
-        for y in range(v.shape[0]):
+        for i in range(v.shape[0]):
+            y = first_year + i
             parts.append(exact.of(np.concatenate([_budget_key(t, y, region, n_years, n_regions),
                                                   _budget_key(t, y, cat, n_years, n_regions)]),
-                                  np.concatenate([v[y] * area, v[y] * w_cat])))
+                                  np.concatenate([v[i] * area, v[i] * w_cat])))
     return exact.merge(parts)
 
 

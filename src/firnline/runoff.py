@@ -133,15 +133,17 @@ def linear_reservoirs(release, k_days, storage0=None):
     gain = np.where(pass_through, 0.0, k * (1.0 - a))
     s = np.zeros(r.shape[0]) if storage0 is None else np.array(storage0, dtype="float64").reshape(r.shape[0])
     s[pass_through] = 0.0
-    start = s.copy()
     rt = np.ascontiguousarray(r.T)                     # (n_days, n_series): one row a day
     storage = np.empty_like(rt)
+    out = np.empty_like(rt)
     for t in range(rt.shape[0]):
+        prev = s
         s = a * s + gain * rt[t]
         storage[t] = s
-    storage = storage.T
-    prev = np.concatenate((start[:, None], storage[:, :-1]), axis=1)
-    return r + prev - storage, np.ascontiguousarray(storage)   # k = 0: storage 0, out = r
+        out[t] = rt[t] + prev - s                      # k = 0: storage 0, out = r
+    del rt                                             # one day-major copy less at a time
+    out = np.ascontiguousarray(out.T)
+    return out, np.ascontiguousarray(storage.T)
 
 
 @dataclass(frozen=True)
@@ -340,6 +342,7 @@ def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_
     # every region's four reservoirs, then (the ice reservoir is linear) ice melt alone through
     # the ice reservoir from its own share of the start storage: one pass over the days for all
     series_in = np.concatenate((released.reshape(n_r * 4, n_d), ice_melt), axis=0)
+    del depth, released, ice_melt      # (days x regions) arrays no longer needed while routing
     k_rows = np.concatenate((np.tile(k, n_r), np.full(n_r, k[ice_i])))
     start = _spun_up_storage(series_in, k_rows, spinup_days)
     out, storage = linear_reservoirs(series_in, k_rows, start)

@@ -306,7 +306,8 @@ def test_maps_streamed_through_a_file_give_the_products_of_maps_in_memory(tmp_pa
     assert_same_products(written_products(tmp_path / "held"), written_products(tmp_path / "streamed"))
     assert not list((tmp_path / "streamed").glob("*.source.tif"))
     streamed.close()
-    assert not folder.exists()
+    held.close()
+    assert not folder.exists() and streamed.maps.spilled and not held.maps.spilled
 
 
 def test_an_interrupted_streamed_run_removes_its_maps_file(tmp_path, builders, monkeypatch):

@@ -66,7 +66,8 @@ class YearMaps:
         self._handles: list = []          # open files, closed by the finalizer
         self._file = self._opened = None
         self._closer = None
-        if size <= limit or self.n_years == 0:
+        self._spilled = not (size <= limit or self.n_years == 0)
+        if not self._spilled:
             self._memory = {n: np.full((self.n_years,) + self.shape, np.nan, dtype="float32") for n in self.names}
             return
         import h5netcdf
@@ -87,7 +88,8 @@ class YearMaps:
 
     @property
     def spilled(self) -> bool:
-        return self._memory is None
+        """The maps are in a file (also after :meth:`close`)."""
+        return self._spilled
 
     def put(self, name: str, rows: tuple[int, int], cols: tuple[int, int], r: np.ndarray, c: np.ndarray,
             values: np.ndarray) -> None:

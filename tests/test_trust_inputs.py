@@ -193,10 +193,11 @@ def test_special_file_as_input_is_refused_at_once(builders, tmp_path, capsys, ro
 
 
 def test_memory_estimate_refuses_a_run_that_cannot_fit(builders, tmp_path, capsys):
-    """A sparse 200 000 x 200 000 DEM (its header says 4e10 cells; the file is tiny)."""
+    """A sparse 200 000 x 200 000 DEM (its header says 4e10 cells; the file is tiny). Small units
+    (tile_size 256), so the check of one unit passes on any machine and the whole run is refused."""
     builders.folder_case(tmp_path)
     builders.write_sparse_dem(tmp_path / "big.tif", 200_000)
-    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"})
+    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 256})
     line = refused(builders, ["run", str(cfg)], capsys, "200000 x 200000 cells", "memory", "coarser DEM",
                    "3 balance years")
     assert "GB" in line

@@ -186,10 +186,11 @@ def count_lines(path: Path, limit: int = 2**31) -> int:
                 return n
 
 
-def estimate_for(config, scenarios: int = 1, streamed: bool = False) -> Estimate:
+def estimate_for(config, scenarios: int = 1, streamed: bool = False, sizes: tuple | None = None) -> Estimate:
     """The estimate of a run of ``config`` from file headers only (no input is read whole);
-    ``streamed``: the run's maps are streamed (:func:`estimate`, ``unit_cells``)."""
-    shape, years, glaciers = _header_sizes(config)
+    ``streamed``: the run's maps are streamed (:func:`estimate`, ``unit_cells``); ``sizes``: the
+    DEM shape, balance years and glaciers when already read (default: read from the headers)."""
+    shape, years, glaciers = _header_sizes(config) if sizes is None else sizes
     sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
     unit = unit_bytes(config.compute.tile_size, shape, years, scenarios)[1] if streamed else None
     return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit)
@@ -197,9 +198,10 @@ def estimate_for(config, scenarios: int = 1, streamed: bool = False) -> Estimate
 
 def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:
     """The checks before a run: its units (:func:`check_unit`), then the whole run (:func:`check`)."""
-    shape, years, glaciers = _header_sizes(config)
+    sizes = _header_sizes(config)           # the station file's lines are counted once
+    shape, years, glaciers = sizes
     check_unit(config.compute, shape, years, scenarios, available, glaciers)
-    check(estimate_for(config, scenarios, streamed), available)
+    check(estimate_for(config, scenarios, streamed, sizes), available)
 
 
 def _header_sizes(config) -> tuple[tuple[int, int], int, int]:

@@ -129,7 +129,7 @@ class UnitResult:
     cols: tuple
     glacier_sums: dict          # glacier index -> exact.Sums of its part in the unit
     budget: exact.Sums
-    daily: object                # (days, regions, terms), or (region ids, their sums); None without
+    daily: tuple | None          # (region ids, (days, their regions, terms)); ids None: every region
     seconds: float
     slide_seconds: float
     kernel: object = None       # the kernel result, kept only by a run of one unit in this process
@@ -161,25 +161,24 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     n_years, n_cols = kres.sums.shape[3], kres.sums.shape[4]
     step = max(1, BLOCK_BYTES // max(1, n_cols * _TEMP_BYTES_PER_COLUMN_YEAR))
     f, budgets = {}, []
-    for a in range(0, n_years, step):
+    for a in range(0, max(n_years, 1), step):
         kb = kres.year_block(a, min(n_years, a + step))
         for name, v in cell_fields(sub, kb, 0).items():
             if name not in f:
                 f[name] = np.empty((n_years, v.shape[1]), dtype=v.dtype)
             f[name][a:a + v.shape[0]] = v
         budgets.append(water_budget_sums(sub, kb, 0, first_year=a))
-    if n_years == 0:
-        f = cell_fields(sub, kres, 0)
-        budgets.append(water_budget_sums(sub, kres, 0))
-    budget = exact.merge(budgets) if len(budgets) > 1 else budgets[0]
     parts = glacier_part_sums(setup, f, unit.glaciers)
     gsums = {g: s for (g, *_), s in zip(unit.glaciers, parts)}
-    daily = None if kres.daily is None else kres.daily[0]
-    if daily is not None and kres.region_ids is not None:       # its glaciers, ice_free, catchment
-        n_gl = len(setup.glaciers.names)
-        daily = (np.concatenate([kres.region_ids, [n_gl, n_gl + 1]]), daily)
+    daily = None
+    if kres.daily is not None:          # (its glaciers, ice_free, catchment) or every region (None)
+        ids = None
+        if kres.region_ids is not None:
+            n_gl = len(setup.glaciers.names)
+            ids = np.concatenate([kres.region_ids, [n_gl, n_gl + 1]])
+        daily = (ids, kres.daily[0])
     return UnitResult(index=unit.index, positions=unit.positions, fields=f, rows=unit.rows, cols=unit.cols,
-                      glacier_sums=gsums, budget=budget,
+                      glacier_sums=gsums, budget=exact.merge(budgets),
                       daily=daily, seconds=time.perf_counter() - t0, slide_seconds=float(kres.slide_seconds),
                       kernel=kres if keep_kernel else None)
 
@@ -216,8 +215,9 @@ def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
 
 class Collector:
     """Takes the units' results as they finish: fields placed into the run's :class:`YearMaps` at
-    once (and dropped), exact sums merged, daily volumes added in unit order (a unit that arrives
-    early waits for those before it), so the run holds about one unit's results at a time."""
+    once (and dropped), daily volumes added in unit order (a unit that arrives early waits for
+    those before it), exact sums kept (each unit's are of its own glaciers: small) and merged by
+    :meth:`finish`; so the run holds about one unit's results at a time."""
 
     def __init__(self, setup, units: list, tile_size: int, work_dir=None, prefix: str = ".firnline-",
                  spill_bytes: int | None = None):
@@ -229,7 +229,7 @@ class Collector:
         self.early: dict = {}          # daily volumes of units that came before their turn
         self.daily = None
         self.glacier_parts: dict = {}  # glacier -> its parts' sums
-        self.budgets: list = []
+        self.budgets: list = []        # the units' water-budget sums (each of its own regions)
 
     def add(self, r: UnitResult) -> None:
         setup = self.setup
@@ -246,23 +246,21 @@ class Collector:
         r.fields = {}
         for g, sums in r.glacier_sums.items():
             self.glacier_parts.setdefault(g, []).append(sums)
-        self.budgets = [exact.merge(self.budgets + [r.budget])]
+        self.budgets.append(r.budget)
         self.early[r.index] = r.daily
         while self.next < len(self.order) and self.order[self.next] in self.early:
             d = self.early.pop(self.order[self.next])
             self.next += 1
             if d is None:
                 continue
-            if isinstance(d, tuple):      # the daily sums of some regions only (ids, sums)
-                ids, d = d
-                if self.daily is None:
-                    n_reg = len(self.setup.glaciers.names) + 2
-                    self.daily = np.zeros((d.shape[0], n_reg) + d.shape[2:], dtype=d.dtype)
-                self.daily[:, ids] += d
-            elif self.daily is None:
-                self.daily = d.copy() if len(self.order) > 1 else d
-            else:
-                self.daily += d
+            ids, d = d
+            if ids is None:               # every region: the whole run in one unit
+                self.daily = d
+                continue
+            if self.daily is None:
+                n_reg = len(self.setup.glaciers.names) + 2
+                self.daily = np.zeros((d.shape[0], n_reg) + d.shape[2:], dtype=d.dtype)
+            self.daily[:, ids] += d
 
     def finish(self) -> tuple:
         """The maps, the merged glacier and budget sums, the daily volumes."""

@@ -240,3 +240,44 @@ def test_scenarios_are_checked():
         Scenarios.uniform([0.0, 1.0], [0.0])
     with pytest.raises(ValueError, match=r"\(n_scen, 12\)"):
         Scenarios(np.zeros((1, 11)), np.ones((1, 11)))
+
+
+_OTHER_BUILD = """
+import pickle, sys
+import numpy as np
+from firnline.kernel import run_kernel
+args = pickle.load(open(sys.argv[1], "rb"))
+r = run_kernel(*args, daily=True)
+import numba
+pickle.dump((numba.config.CPU_NAME, r.sums, r.state_final, r.snow_end, r.daily), open(sys.argv[2], "wb"))
+"""
+
+
+def test_vector_width_leaves_the_results_unchanged(builders, tmp_path):
+    """The kernel built for the baseline x86-64 CPU (``NUMBA_CPU_NAME=generic``: 128-bit vectors)
+    gives this process's results (512-bit vectors on AVX-512 hosts, see firnline.jit) bit for
+    bit; only the daily region sums, reassociated partial sums, may differ in their last bits.
+    Also: a CPU the user names wins over firnline's choice."""
+    import os
+    import pickle
+    import subprocess
+    import sys
+
+    z, ice, T, P, month, doy, year, winter, table = relief_case(n_cells=3 * K.CHUNK_CELLS + 17, n_years=2)
+    p = builders.kernel_params(**PARAMS, method=Method.RADIATION)
+    cells = Cells(z, ice, table, region=np.where(ice, 0, 1), catchment_weight=np.linspace(0.2, 1.0, z.size),
+                  n_glaciers=1)
+    args = (cells, Calendar(month, doy, year, winter),
+            StationForcing(T, P, 1200.0), p, SCENARIOS)
+    here = run_kernel(*args, daily=True)
+    (tmp_path / "args.pkl").write_bytes(pickle.dumps(args))
+    env = dict(os.environ, NUMBA_CPU_NAME="generic")
+    subprocess.run([sys.executable, "-c", _OTHER_BUILD, str(tmp_path / "args.pkl"), str(tmp_path / "out.pkl")],
+                   env=env, check=True)
+    cpu, sums, state, snow_end, daily = pickle.loads((tmp_path / "out.pkl").read_bytes())
+    assert cpu == "generic"
+    np.testing.assert_array_equal(sums, here.sums)
+    np.testing.assert_array_equal(state, here.state_final)
+    np.testing.assert_array_equal(snow_end, here.snow_end)
+    np.testing.assert_allclose(daily, here.daily, rtol=1e-12, atol=1e-9)
+    assert here.daily.any() and here.sums.any()

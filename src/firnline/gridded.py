@@ -31,6 +31,7 @@ from pathlib import Path
 import numpy as np
 from numba import njit, prange
 
+from . import jit  # noqa: F401  (numba's threading layer and vector width, before compiling)
 from .errors import InputError
 from .forcing import Forcing, calendar
 

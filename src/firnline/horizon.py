@@ -53,6 +53,8 @@ import math
 import numpy as np
 from numba import njit, prange
 
+from . import jit  # noqa: F401  (numba's threading layer and vector width, before compiling)
+
 #: Changes whenever the algorithm changes the numbers it returns (cache keys use it).
 ALGORITHM_VERSION = "horizon-1"
 

@@ -85,7 +85,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit, prange
 
-from . import solar
+from . import jit, solar  # noqa: F401  (jit: numba's threading layer and vector width, before compiling)
 from .errors import InputError
 
 #: Changes whenever the algorithm changes the numbers it returns (cache keys use it).

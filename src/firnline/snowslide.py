@@ -65,15 +65,12 @@ cells, the row-major flat indices ``np.flatnonzero(valid.ravel())`` (ascending),
 from __future__ import annotations
 
 import functools
-import os
 from dataclasses import dataclass
 
-# idle worker threads sleep instead of spinning on a shared machine (as in firnline.kernel;
-# set before numba starts its threads, never over the user's own choice)
-os.environ.setdefault("OMP_WAIT_POLICY", "passive")
+import numpy as np
+from numba import njit, prange
 
-import numpy as np  # noqa: E402
-from numba import njit, prange  # noqa: E402
+from . import jit  # noqa: F401  (numba's threading layer and vector width, before compiling)
 
 #: Version of the routing built here; part of every cache key of a routing.
 ALGORITHM_VERSION = 1

@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 from numba import njit, prange
 
+from . import jit  # noqa: F401  (numba's threading layer and vector width, before compiling)
 from .errors import InputError
 from .forcing import Forcing, calendar, check_table, read_text_table
 from .grid import to_crs

@@ -380,3 +380,22 @@ def test_with_values_reaches_the_snow_section(tmp_path):
     cfg = _cfg(tmp_path).with_values(snow_density_kg_m3=300.0, ddf_snow_mm_per_day_k=4.0)
     assert cfg.snow.snow_density_kg_m3 == 300.0 and cfg.melt.ddf_snow_mm_per_day_k == 4.0
     assert cfg.snow.redistribution == "gravitational"
+
+
+@pytest.mark.parametrize("scheme", ["steepest", "multiple"])
+def test_routing_made_in_blocks_of_cells_equals_one_block(scheme, monkeypatch):
+    """The links made a few cells at a time (snowslide.ROUTING_BLOCK_CELLS) and put in
+    processing order give the routing of one block bit for bit (nodata, edges, pits)."""
+    rng = np.random.default_rng(8)
+    z = np.cumsum(rng.normal(5, 20, (23, 19)), axis=0) + rng.normal(0, 15, (23, 19))
+    valid = rng.random(z.shape) > 0.1
+    whole, _ = routing_of(z, valid, scheme=scheme)
+    monkeypatch.setattr(snowslide, "ROUTING_BLOCK_CELLS", 7)
+    blocks, _ = routing_of(z, valid, scheme=scheme)
+    for name in ("order", "recv_ptr", "recv_pos", "recv_weight", "holding_mm"):
+        a, b = getattr(whole, name), getattr(blocks, name)
+        assert a.dtype == b.dtype
+        np.testing.assert_array_equal(a, b)
+    assert (whole.recv_pos == EXPORT).any() and np.isinf(whole.holding_mm).any()
+    most = np.diff(whole.recv_ptr).max()
+    assert most == 1 if scheme == "steepest" else most > 1

@@ -248,20 +248,72 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     if scheme == "multiple" and not exponent > 0:
         raise ValueError("exponent of the multiple-flow-direction weights must be > 0")
     valid = np.asarray(valid, dtype=bool)
-    z = np.where(valid, np.asarray(elevation, dtype="float64"), np.nan)
-    ny, nx = z.shape
+    ny, nx = valid.shape
     dx, dy = (float(v) for v in cell_size_m)
     cells = np.flatnonzero(valid.ravel())
     n = cells.size
     if n >= np.iinfo(np.int32).max // 9:
         raise ValueError("too many cells for int32 routing arrays")
-    zc = z.ravel()[cells]
-    pos_grid = np.full(ny * nx, EXPORT, dtype=np.int32)
-    pos_grid[cells] = np.arange(n)
-    pos_pad = np.pad(pos_grid.reshape(ny, nx), 1, constant_values=EXPORT)
+    zc = np.asarray(elevation).ravel()[cells].astype("float64")
+    pos_pad = np.full((ny + 2, nx + 2), EXPORT, dtype=np.int32)
+    inner = pos_pad[1:-1, 1:-1]
+    inner[valid] = np.arange(n, dtype=np.int32)
+    slope = np.asarray(slope_deg)
+    # the links of each cell, block by block in cell order (every step is per cell, so the
+    # blocks give the values of one pass over all cells, bit for bit); then put in
+    # processing order
+    counts = np.zeros(n, dtype=np.int32)
+    links_pos, links_weight = [], []
+    holding = np.empty(n, dtype=np.float32)
+    for a in range(0, n, ROUTING_BLOCK_CELLS):
+        b = min(n, a + ROUTING_BLOCK_CELLS)
+        keep, recv, weight, hold = _block_links(pos_pad, zc, cells[a:b], a, nx, dx, dy,
+                                                slope.ravel()[cells[a:b]], snow_density_kg_m3,
+                                                min_slide_slope_deg, scheme, exponent)
+        holding[a:b] = hold
+        counts[a:b] = keep.sum(axis=1)
+        links_pos.append(recv[keep])
+        links_weight.append(weight[keep].astype(np.float32))
+    del pos_pad, inner
+    recv_cell = np.concatenate(links_pos) if links_pos else np.empty(0, np.int32)
+    weight_cell = np.concatenate(links_weight) if links_weight else np.empty(0, np.float32)
+    del links_pos, links_weight
+    order = np.argsort(-zc, kind="stable")
+    del zc
+    first = np.zeros(n + 1, dtype=np.int64)                 # each cell's first link (cell order)
+    np.cumsum(counts, out=first[1:])
+    counts_o = counts[order]
+    ptr = np.zeros(n + 1, dtype=np.int32)
+    np.cumsum(counts_o, out=ptr[1:])
+    # link j of processing step k is link (j - ptr[k]) of cell order[k]
+    src = np.repeat(first[:-1][order] - ptr[:-1], counts_o)
+    src += np.arange(src.size, dtype=np.int64)
+    return Routing(order=order.astype(np.int32), recv_ptr=ptr, recv_pos=recv_cell[src],
+                   recv_weight=weight_cell[src],
+                   holding_mm=holding, scheme=scheme,
+                   exponent=float(exponent) if scheme == "multiple" else 0.0,
+                   snow_density_kg_m3=float(snow_density_kg_m3),
+                   min_slide_slope_deg=float(min_slide_slope_deg))
+
+
+#: cells whose links :func:`build_routing` makes at once (about 400 bytes of temporaries each)
+ROUTING_BLOCK_CELLS = 1 << 18
+
+
+def _block_links(pos_pad, zc, cells, a, nx, dx, dy, slope_c, snow_density_kg_m3, min_slide_slope_deg,
+                 scheme, exponent):
+    """The receivers of the cells ``cells`` (flat indices; positions ``a ..`` in the run's order)
+    out of their eight neighbours (see :func:`build_routing`): ``keep`` (m, 8) which links
+    exist, ``recv`` (m, 8) int32 their positions, ``weight`` (m, 8) float64 their shares, and the
+    cells' holding capacities (float32, ``inf`` for cells that never release)."""
+    n = cells.size
+    zb = zc[a:a + n]
+    r, c = np.divmod(cells, nx)
+    base = (r + 1) * (nx + 2) + (c + 1)
+    flat = pos_pad.ravel()
     # position of the (dr, dc) neighbour of every cell, EXPORT off the DEM or on nodata
-    nbr = {off: pos_pad[1 + off[0]:1 + off[0] + ny, 1 + off[1]:1 + off[1] + nx].ravel()[cells]
-           for off in _OFFSETS}
+    nbr = {off: flat[base + off[0] * (nx + 2) + off[1]] for off in _OFFSETS}
+    del r, c, base
 
     def known(p):
         return np.where(p >= 0, zc[np.maximum(p, 0)], np.nan)
@@ -272,7 +324,7 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
         for kind, off in (("row", (d, 0)), ("col", (0, d))):
             here = known(nbr[off])
             there = known(nbr[-off[0], -off[1]])
-            mirror = np.where(np.isfinite(there), 2.0 * zc - there, zc)
+            mirror = np.where(np.isfinite(there), 2.0 * zb - there, zb)
             axis[kind, d] = np.where(np.isfinite(here), here, mirror)
 
     tan = np.empty((n, 8))
@@ -280,11 +332,11 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     for k, (dr, dc) in enumerate(_OFFSETS):
         p = nbr[dr, dc]
         if dr and dc:
-            virtual = axis["row", dr] + axis["col", dc] - zc
+            virtual = axis["row", dr] + axis["col", dc] - zb
         else:
             virtual = axis["row", dr] if dr else axis["col", dc]
         zn = np.where(p >= 0, zc[np.maximum(p, 0)], virtual)
-        tan[:, k] = (zc - zn) / np.hypot(dc * dx, dr * dy)
+        tan[:, k] = (zb - zn) / np.hypot(dc * dx, dr * dy)
         recv[:, k] = p
     del nbr, axis
     lower = tan > 0.0
@@ -300,22 +352,10 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     total = weight.sum(axis=1)
     has_receiver = total > 0
     weight /= np.where(has_receiver, total, 1.0)[:, None]
-
-    slope_c = np.asarray(slope_deg, dtype="float64").ravel()[cells]
-    holding = holding_capacity_mm(slope_c, snow_density_kg_m3, min_slide_slope_deg)
+    holding = holding_capacity_mm(np.asarray(slope_c, dtype="float64"), snow_density_kg_m3, min_slide_slope_deg)
     holding = np.where(has_receiver, holding, np.inf).astype(np.float32)
     keep &= np.isfinite(holding)[:, None]        # cells that never release need no links
-
-    order = np.argsort(-zc, kind="stable")
-    keep_o = keep[order]                         # (n, 8): row = processing step
-    ptr = np.zeros(n + 1, dtype=np.int32)
-    np.cumsum(keep_o.sum(axis=1), out=ptr[1:])
-    return Routing(order=order.astype(np.int32), recv_ptr=ptr, recv_pos=recv[order][keep_o],
-                   recv_weight=weight[order][keep_o].astype(np.float32),
-                   holding_mm=holding, scheme=scheme,
-                   exponent=float(exponent) if scheme == "multiple" else 0.0,
-                   snow_density_kg_m3=float(snow_density_kg_m3),
-                   min_slide_slope_deg=float(min_slide_slope_deg))
+    return keep, recv, weight, holding
 
 
 @njit(cache=True)

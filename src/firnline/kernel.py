@@ -1332,7 +1332,20 @@ def _slide_boundaries(calendar: Calendar, every: int) -> list[int]:
     return sorted(k for k in ks if 0 < k < n)
 
 
-def _slide(slide: Slide, out: Targets, season: int, n_cells: int, where: np.ndarray) -> float:
+SlideBuffers = namedtuple("SlideBuffers", "column_cell column_share cell_snow cell_firn before change exported busy")
+
+
+def _slide_buffers(slide: Slide, n_scen: int, n_cells: int) -> SlideBuffers:
+    """The arrays every call of :func:`_slide` of a run fills (made once per run, not per call;
+    ``change`` and ``exported`` are zero between calls)."""
+    def cells():
+        return np.zeros((n_scen, n_cells))
+    return SlideBuffers(np.ascontiguousarray(slide.column_cell, dtype=np.int64),
+                        np.ascontiguousarray(slide.column_share, dtype="float64"),
+                        cells(), cells(), cells(), cells(), cells(), np.zeros(n_scen, dtype=np.bool_))
+
+
+def _slide(slide: Slide, buf: SlideBuffers, out: Targets, season: int, where: np.ndarray) -> float:
     """Move snow between cells at a day boundary (:func:`firnline.snowslide.redistribute`) and
     share each cell's change back to its columns; returns the time spent, s.
 
@@ -1340,44 +1353,57 @@ def _slide(slide: Slide, out: Targets, season: int, n_cells: int, where: np.ndar
     column of the cell, a loss takes the same fraction of each column's snow (and the export
     in proportion), so every column keeps the cell's budget. Firn is immobile and fills the
     holding capacity first. The columns' state and sums are read and written in the chunks'
-    work buffers (``where``: each column's place in them).
+    work buffers (``where``: each column's place in them); scenarios in parallel. A scenario
+    with no cell over its holding capacity moves nothing, and is done once its cells' snow
+    is known.
     """
     import time
 
     from . import snowslide
     t0 = time.perf_counter()
-    col = np.ascontiguousarray(slide.column_cell, dtype=np.int64)
-    share = np.ascontiguousarray(slide.column_share, dtype="float64")
-    ns = out.state.shape[1]
-    cell_snow = np.zeros((ns, n_cells))
-    cell_firn = np.zeros((ns, n_cells))
-    _gather_cells(col, share, out.work, where, cell_snow, cell_firn)
-    before = cell_snow.copy()
-    change = np.zeros_like(cell_snow)
-    exported = np.zeros_like(cell_snow)
-    snowslide.redistribute(slide.routing, cell_snow, change=change, exported=exported, immobile=cell_firn)
-    _scatter_columns(col, out.work, where, season, before, change, exported)
+    _gather_cells(buf.column_cell, buf.column_share, out.work, where, slide.routing.holding_mm,
+                  buf.cell_snow, buf.cell_firn, buf.before, buf.busy)
+    if buf.busy.any():
+        snowslide.redistribute(slide.routing, buf.cell_snow, change=buf.change, exported=buf.exported,
+                               immobile=buf.cell_firn)
+        _scatter_columns(buf.column_cell, out.work, where, season, buf.before, buf.change, buf.exported,
+                         buf.busy)
     return time.perf_counter() - t0
 
 
-@njit(cache=True, error_model="numpy")
-def _gather_cells(col, share, work, where, cell_snow, cell_firn):
-    """Share-weighted snow and firn of each cell from its columns (scenarios x cells)."""
-    for sc in range(work.shape[0]):
+@njit(parallel=True, cache=True, error_model="numpy")
+def _gather_cells(col, share, work, where, holding, cell_snow, cell_firn, before, busy):
+    """Share-weighted snow and firn of each cell from its columns (scenarios x cells); ``busy``:
+    whether any cell holds more than its capacity (the test of the transport), and then a
+    copy of the snow in ``before``."""
+    for sc in prange(work.shape[0]):
+        cell_snow[sc, :] = 0.0
+        cell_firn[sc, :] = 0.0
         for j in range(col.size):
             c = col[j]
             cell_snow[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _SNOW) * CHUNK_STRIDE]
             cell_firn[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _FIRN) * CHUNK_STRIDE]
+        over = False
+        for c in range(holding.size):
+            if cell_snow[sc, c] + cell_firn[sc, c] > holding[c]:
+                over = True
+                break
+        busy[sc] = over
+        if over:
+            before[sc, :] = cell_snow[sc, :]
 
 
-@njit(cache=True, error_model="numpy")
-def _scatter_columns(col, work, where, season, before, change, exported):
+@njit(parallel=True, cache=True, error_model="numpy")
+def _scatter_columns(col, work, where, season, before, change, exported, busy):
     """Each cell's change by sliding back to its columns (see :func:`_slide`), with the
-    season's REDISTRIBUTION and EXPORTED sums of each column."""
+    season's REDISTRIBUTION and EXPORTED sums of each column; scenarios in parallel, the
+    ``busy`` ones only. Leaves ``change`` and ``exported`` zero for the next call."""
     snow_row = (K_STATE + _SNOW) * CHUNK_STRIDE
     redist_row = (K_RUN + season * N_FLUX + _REDIST) * CHUNK_STRIDE
     export_row = (K_RUN + season * N_FLUX + _EXPORTED) * CHUNK_STRIDE
-    for sc in range(work.shape[0]):
+    for sc in prange(work.shape[0]):
+        if not busy[sc]:
+            continue
         for j in range(col.size):
             c = col[j]
             ch = change[sc, c]
@@ -1393,6 +1419,8 @@ def _scatter_columns(col, work, where, season, before, change, exported):
             work[sc, at + snow_row] = max(work[sc, at + snow_row] + ch, 0.0)
             work[sc, at + redist_row] += ch
             work[sc, at + export_row] += ex
+        change[sc, :] = 0.0
+        exported[sc, :] = 0.0
 
 
 def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
@@ -1553,9 +1581,10 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
     pos = np.empty(n, dtype=np.int64)
     pos[cell_arrays.order] = np.arange(n)
     where = (pos // CHUNK_CELLS) * K_LEN + pos % CHUNK_CELLS
+    buf = _slide_buffers(slide, out.state.shape[1], n_cells) if slide is not None else None
     for a, b in zip(edges[:-1], edges[1:]):
         if a in slides:
-            slide_s += _slide(slide, out, int(days.season[a]), n_cells, where)
+            slide_s += _slide(slide, buf, out, int(days.season[a]), where)
         if lin is not None and full[a]:
             _advance(int(method), LINEAR, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
                      np.ascontiguousarray(coef[a:b]), basis, scen, par, 0, n, out, int(kt))

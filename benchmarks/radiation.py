@@ -80,7 +80,8 @@ def run_case(n: int, add_s: float) -> None:
     t0 = time.perf_counter()
     hz = horizon.horizon_angles(z, valid, CELL_M, SECTORS, DISTANCE_M)
     t1 = time.perf_counter()
-    table = radiation.compute_table(z, valid, slope, aspect, hz, lat, lon, TRANSMISSIVITY, STEP_MIN)
+    table = radiation.compute_table(z, valid, slope, aspect, hz, lat, lon, TRANSMISSIVITY, STEP_MIN,
+                                    in_place=True)   # as firnline.model does when the horizons are not kept
     t2 = time.perf_counter()
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()

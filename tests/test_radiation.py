@@ -232,6 +232,20 @@ def test_table_covers_valid_cells_in_c_order_and_reports_progress():
     np.testing.assert_array_equal(part, full[args["valid"].ravel()])
 
 
+def test_table_made_with_the_horizons_turned_into_sines_in_place_is_the_same():
+    """compute_table(in_place=True) overwrites the caller's float32 horizons with their sines
+    instead of copying them, and gives the same table bit for bit."""
+    args = _relief()
+    horizons = np.ascontiguousarray(args["horizon_rad"], dtype=np.float32)
+    valid = args["valid"]
+    copy = compute_table(**dict(args, horizon_rad=horizons.copy()))
+    own = horizons.copy()
+    table = compute_table(**dict(args, horizon_rad=own), in_place=True)
+    np.testing.assert_array_equal(table.values, copy.values)
+    np.testing.assert_array_equal(own[:, valid], np.sin(horizons[:, valid]))
+    assert not np.array_equal(own, horizons)
+
+
 def test_bracket_day_and_means_are_consistent():
     values = np.array([[0, 100], [40, 300], [400, 0]], dtype=np.uint16)
     table = RadiationTable(doy_nodes=np.array([10, 100, 300]), values=values, scale_w_m2=0.5)

@@ -357,8 +357,7 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     Returns
     -------
     table : RadiationTable
-    horizons : ndarray (n_sectors, ny, nx) radians, or None unless ``want_horizons`` or
-        the table had to be computed
+    horizons : ndarray (n_sectors, ny, nx) radians, or None unless ``want_horizons``
     note : str
         One sentence for the console: computed (and cached) or reused.
     """
@@ -388,8 +387,12 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     if table is not None:
         return table, horizons, "; ".join(damaged + ["reused the cached radiation climatology and horizons."])
     lon, lat = grid.lonlat()
+    # without want_horizons nobody reads them again: the table turns them into sines in place
     table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
-                          config.melt.transmissivity, rc.time_step_minutes, progress=progress)
+                          config.melt.transmissivity, rc.time_step_minutes, progress=progress,
+                          in_place=not want_horizons)
+    if not want_horizons:
+        horizons = None
     cache.save_table(rc.cache_dir, tkey, table)
     return table, horizons, ("; ".join(damaged + [""]) +
                              f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "

@@ -315,7 +315,7 @@ def _as_grid(value, shape, name):
 
 
 def _prepare(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
-             transmissivity, time_step_minutes) -> _Cells:
+             transmissivity, time_step_minutes, in_place=False) -> _Cells:
     valid = np.asarray(valid, dtype=bool)
     shape = valid.shape
     if valid.ndim != 2:
@@ -337,7 +337,10 @@ def _prepare(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lo
     for name, arr in (("elevation_m", elevation), ("lat_deg", lat), ("lon_deg", lon)):
         if not np.isfinite(arr[valid]).all():
             raise ValueError(f"{name} must be finite on every valid cell")
-    sin_horizon = np.empty(horizon.shape, dtype=np.float32)
+    if in_place and horizon.dtype == np.float32 and horizon.flags.c_contiguous and horizon.flags.writeable:
+        sin_horizon = horizon          # the same values as a new array: the same float32 sine
+    else:
+        sin_horizon = np.empty(horizon.shape, dtype=np.float32)
     for k in range(horizon.shape[0]):
         sector = horizon[k]
         if not np.isfinite(sector[valid]).all():
@@ -540,7 +543,7 @@ def compute_days(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg
 
 
 def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
-                  transmissivity, time_step_minutes, progress=None) -> RadiationTable:
+                  transmissivity, time_step_minutes, progress=None, in_place=False) -> RadiationTable:
     """Day-of-year climatology of daily mean potential clear-sky direct radiation.
 
     Hock (1999), J. Glaciology 45(149), 101-111, after Oke (1987): see the
@@ -575,6 +578,10 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
     progress : callable(label, done, total), optional
         Called after each of about 20 bands of rows (all days of a band are done
         together), label ``"radiation row bands"`` (see :mod:`firnline.progress`).
+    in_place : bool
+        Turn a C-contiguous float32 ``horizon_rad`` into the sines the computation
+        uses in place (the caller's horizons are then lost) instead of making a copy of
+        n_sectors x cells float32; the table is the same bit for bit.
 
     Returns
     -------
@@ -585,12 +592,13 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
         uint16 values at day nodes every ``NODE_SPACING_DAYS`` days, scale
         ``STORAGE_SCALE_W_M2``. Memory: the table, n_nodes x n_cells x 2
         bytes (186 MB for 10^6 cells), plus the sines of the horizon angles
-        (4 bytes per cell and sector, 288 MB for 72 sectors) and per-cell
-        working arrays; for 1000 x 1000 cells and 72 sectors the peak of
-        horizons and table together is about 0.75 GiB (benchmarks/radiation.py).
+        (4 bytes per cell and sector, 288 MB for 72 sectors; none with ``in_place``)
+        and per-cell working arrays; for 1000 x 1000 cells and 72 sectors the peak of
+        horizons and table together is about 0.75 GiB, 0.5 GiB with ``in_place``
+        (2000 x 2000: 3.1 and 2.0 GiB; benchmarks/radiation.py).
     """
     cells = _prepare(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
-                     transmissivity, time_step_minutes)
+                     transmissivity, time_step_minutes, in_place)
     nodes = day_nodes()
     n_cells = int(cells.valid.sum())
     values = np.empty((len(nodes), n_cells), dtype=np.uint16)

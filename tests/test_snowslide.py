@@ -399,3 +399,27 @@ def test_routing_made_in_blocks_of_cells_equals_one_block(scheme, monkeypatch):
     assert (whole.recv_pos == EXPORT).any() and np.isinf(whole.holding_mm).any()
     most = np.diff(whole.recv_ptr).max()
     assert most == 1 if scheme == "steepest" else most > 1
+
+
+def test_subset_keeps_the_links_of_its_cells_in_processing_order():
+    """snowslide.subset against its definition, written out cell by cell: the subset's cells in
+    the routing's order, each with its own links, receivers renumbered into the subset or LEAVE
+    (a compact window of positions and positions far apart take different paths inside)."""
+    rng = np.random.default_rng(12)
+    z = np.cumsum(rng.normal(5, 20, (90, 80)), axis=0) + rng.normal(0, 15, (90, 80))
+    r, _ = routing_of(z, scheme="multiple")
+    leaves = []
+    for sub in (np.arange(2000, 3500), np.array([5, 4000, 7100]), np.flatnonzero(snowslide.upslope(r, [6000]))):
+        s = snowslide.subset(r, sub)
+        index = {int(p): i for i, p in enumerate(sub)}
+        steps = [k for k in range(r.n_cells) if int(r.order[k]) in index]
+        assert s.order.tolist() == [index[int(r.order[k])] for k in steps]
+        links = [j for k in steps for j in range(r.recv_ptr[k], r.recv_ptr[k + 1])]
+        want = [int(p) if p < 0 else index.get(int(p), snowslide.LEAVE) for p in r.recv_pos[links]]
+        assert s.recv_pos.tolist() == want
+        np.testing.assert_array_equal(s.recv_weight, r.recv_weight[links])
+        np.testing.assert_array_equal(s.holding_mm, r.holding_mm[sub])
+        assert s.recv_ptr[-1] == len(links)
+        leaves.append(bool((s.recv_pos == snowslide.LEAVE).any()))
+    # the window and the scattered cells send snow out of the subset (LEAVE is exercised)
+    assert leaves[0] and leaves[1]

@@ -406,21 +406,37 @@ def subset(routing: Routing, positions) -> Routing:
     sub = np.asarray(positions, dtype=np.int64)
     if sub.size > 1 and np.any(np.diff(sub) <= 0):
         raise ValueError("subset takes ascending, distinct positions")
-    new = np.full(routing.n_cells, LEAVE, dtype=np.int32)
-    new[sub] = np.arange(sub.size, dtype=np.int32)
-    steps = np.flatnonzero(new[routing.order] >= 0)
-    counts = np.diff(routing.recv_ptr)[steps]
-    links = np.repeat(routing.recv_ptr[steps], counts) + (np.arange(counts.sum()) - np.repeat(
+    # the subset's processing steps, in processing order (work over the subset only: a unit of
+    # a tiled run does not pass over every cell of the DEM; Routing.step_of is made once)
+    steps = np.sort(routing.step_of[sub].astype(np.int64))
+    ptr0 = routing.recv_ptr.astype(np.int64)
+    counts = ptr0[steps + 1] - ptr0[steps]
+    links = np.repeat(ptr0[steps], counts) + (np.arange(counts.sum()) - np.repeat(
         np.cumsum(counts) - counts, counts))
     ptr = np.zeros(steps.size + 1, dtype=np.int32)
     np.cumsum(counts, out=ptr[1:])
     pos = routing.recv_pos[links]
-    return Routing(order=new[routing.order[steps]], recv_ptr=ptr,
-                   recv_pos=np.where(pos >= 0, new[np.maximum(pos, 0)], pos).astype(np.int32),
+    return Routing(order=_renumber(sub, routing.order[steps]).astype(np.int32), recv_ptr=ptr,
+                   recv_pos=np.where(pos >= 0, _renumber(sub, np.maximum(pos, 0)), pos).astype(np.int32),
                    recv_weight=routing.recv_weight[links], holding_mm=routing.holding_mm[sub],
                    scheme=routing.scheme, exponent=routing.exponent,
                    snow_density_kg_m3=routing.snow_density_kg_m3,
                    min_slide_slope_deg=routing.min_slide_slope_deg)
+
+
+def _renumber(sub: np.ndarray, pos: np.ndarray) -> np.ndarray:
+    """The index in ``sub`` (ascending positions) of each of ``pos``, or :data:`LEAVE` where a
+    position is not in ``sub``."""
+    if sub.size == 0:
+        return np.full(np.shape(pos), LEAVE, dtype=np.int64)
+    lo, hi = int(sub[0]), int(sub[-1])
+    if hi - lo < 8 * sub.size + 4096:       # a table over the subset's span (a unit's rows)
+        table = np.full(hi - lo + 1, LEAVE, dtype=np.int64)
+        table[sub - lo] = np.arange(sub.size)
+        inside = (pos >= lo) & (pos <= hi)
+        return np.where(inside, table[np.clip(pos - lo, 0, hi - lo)], LEAVE)
+    at = np.minimum(np.searchsorted(sub, pos), sub.size - 1)
+    return np.where(sub[at] == pos, at, LEAVE)
 
 
 # ----------------------------------------------------------------------------

@@ -1332,16 +1332,27 @@ def _slide_boundaries(calendar: Calendar, every: int) -> list[int]:
     return sorted(k for k in ks if 0 < k < n)
 
 
-SlideBuffers = namedtuple("SlideBuffers", "column_cell column_share cell_snow cell_firn before change exported busy")
+SlideBuffers = namedtuple("SlideBuffers", "column_cell cell_ptr cell_share cell_where cell_snow cell_firn "
+                                          "before change exported busy")
+
+#: cells (or columns) of one scenario that a task of the slide's gather and scatter takes
+SLIDE_TASK = 4096
 
 
-def _slide_buffers(slide: Slide, n_scen: int, n_cells: int) -> SlideBuffers:
+def _slide_buffers(slide: Slide, n_scen: int, n_cells: int, where: np.ndarray) -> SlideBuffers:
     """The arrays every call of :func:`_slide` of a run fills (made once per run, not per call;
-    ``change`` and ``exported`` are zero between calls)."""
+    ``change`` and ``exported`` are zero between calls), and the share and work-buffer place
+    (``where``) of each cell's columns in ascending column order (``[cell_ptr[c]:cell_ptr[c +
+    1]]``), so the cells can be gathered in parallel, each cell's sum made in the order of a
+    pass over the columns."""
     def cells():
         return np.zeros((n_scen, n_cells))
-    return SlideBuffers(np.ascontiguousarray(slide.column_cell, dtype=np.int64),
-                        np.ascontiguousarray(slide.column_share, dtype="float64"),
+    col = np.ascontiguousarray(slide.column_cell, dtype=np.int64)
+    ptr = np.zeros(n_cells + 1, dtype=np.int64)
+    np.cumsum(np.bincount(col, minlength=n_cells), out=ptr[1:])
+    by_cell = np.argsort(col, kind="stable")
+    share = np.asarray(slide.column_share, dtype="float64")
+    return SlideBuffers(col, ptr, np.ascontiguousarray(share[by_cell]), np.ascontiguousarray(where[by_cell]),
                         cells(), cells(), cells(), cells(), cells(), np.zeros(n_scen, dtype=np.bool_))
 
 
@@ -1353,58 +1364,68 @@ def _slide(slide: Slide, buf: SlideBuffers, out: Targets, season: int, where: np
     column of the cell, a loss takes the same fraction of each column's snow (and the export
     in proportion), so every column keeps the cell's budget. Firn is immobile and fills the
     holding capacity first. The columns' state and sums are read and written in the chunks'
-    work buffers (``where``: each column's place in them); scenarios in parallel. A scenario
-    with no cell over its holding capacity moves nothing, and is done once its cells' snow
-    is known.
+    work buffers (``where``: each column's place in them); the gather and the scatter run in
+    parallel tasks of :data:`SLIDE_TASK` cells or columns. A scenario with no cell over its
+    holding capacity moves nothing, and is done once its cells' snow is known.
     """
     import time
 
     from . import snowslide
     t0 = time.perf_counter()
-    _gather_cells(buf.column_cell, buf.column_share, out.work, where, slide.routing.holding_mm,
-                  buf.cell_snow, buf.cell_firn, buf.before, buf.busy)
+    n_cells = buf.cell_snow.shape[1]
+    over = np.zeros((buf.busy.size, -(-n_cells // SLIDE_TASK)), dtype=np.bool_)
+    _gather_cells(buf.cell_ptr, buf.cell_share, buf.cell_where, out.work, slide.routing.holding_mm,
+                  buf.cell_snow, buf.cell_firn, buf.before, over)
+    np.any(over, axis=1, out=buf.busy)
     if buf.busy.any():
         snowslide.redistribute(slide.routing, buf.cell_snow, change=buf.change, exported=buf.exported,
                                immobile=buf.cell_firn)
         _scatter_columns(buf.column_cell, out.work, where, season, buf.before, buf.change, buf.exported,
                          buf.busy)
+        _clear_cells(buf.change, buf.exported, buf.busy)
     return time.perf_counter() - t0
 
 
 @njit(parallel=True, cache=True, error_model="numpy")
-def _gather_cells(col, share, work, where, holding, cell_snow, cell_firn, before, busy):
-    """Share-weighted snow and firn of each cell from its columns (scenarios x cells); ``busy``:
-    whether any cell holds more than its capacity (the test of the transport), and then a
-    copy of the snow in ``before``."""
-    for sc in prange(work.shape[0]):
-        cell_snow[sc, :] = 0.0
-        cell_firn[sc, :] = 0.0
-        for j in range(col.size):
-            c = col[j]
-            cell_snow[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _SNOW) * CHUNK_STRIDE]
-            cell_firn[sc, c] += share[j] * work[sc, where[j] + (K_STATE + _FIRN) * CHUNK_STRIDE]
-        over = False
-        for c in range(holding.size):
-            if cell_snow[sc, c] + cell_firn[sc, c] > holding[c]:
-                over = True
-                break
-        busy[sc] = over
-        if over:
-            before[sc, :] = cell_snow[sc, :]
+def _gather_cells(ptr, share, where, work, holding, cell_snow, cell_firn, before, over):
+    """Share-weighted snow and firn of each cell from its columns (scenarios x cells), added in
+    column order, and a copy of the snow in ``before``; ``over[s, task]``: whether a cell of the
+    task holds more than its capacity (the test of the transport)."""
+    n_scen, n_cells = cell_snow.shape
+    n_tasks = over.shape[1]
+    for task in prange(n_scen * n_tasks):
+        sc = task // n_tasks
+        c0 = (task % n_tasks) * SLIDE_TASK
+        flag = False
+        for c in range(c0, min(n_cells, c0 + SLIDE_TASK)):
+            sn = 0.0
+            fi = 0.0
+            for t in range(ptr[c], ptr[c + 1]):
+                sn += share[t] * work[sc, where[t] + (K_STATE + _SNOW) * CHUNK_STRIDE]
+                fi += share[t] * work[sc, where[t] + (K_STATE + _FIRN) * CHUNK_STRIDE]
+            cell_snow[sc, c] = sn
+            cell_firn[sc, c] = fi
+            before[sc, c] = sn
+            if sn + fi > holding[c]:
+                flag = True
+        over[sc, task % n_tasks] = flag
 
 
 @njit(parallel=True, cache=True, error_model="numpy")
 def _scatter_columns(col, work, where, season, before, change, exported, busy):
     """Each cell's change by sliding back to its columns (see :func:`_slide`), with the
-    season's REDISTRIBUTION and EXPORTED sums of each column; scenarios in parallel, the
-    ``busy`` ones only. Leaves ``change`` and ``exported`` zero for the next call."""
+    season's REDISTRIBUTION and EXPORTED sums of each column; the ``busy`` scenarios only,
+    in parallel tasks of columns (each column writes only its own rows)."""
     snow_row = (K_STATE + _SNOW) * CHUNK_STRIDE
     redist_row = (K_RUN + season * N_FLUX + _REDIST) * CHUNK_STRIDE
     export_row = (K_RUN + season * N_FLUX + _EXPORTED) * CHUNK_STRIDE
-    for sc in prange(work.shape[0]):
+    n_tasks = (col.size + SLIDE_TASK - 1) // SLIDE_TASK
+    for task in prange(work.shape[0] * n_tasks):
+        sc = task // n_tasks
         if not busy[sc]:
             continue
-        for j in range(col.size):
+        j0 = (task % n_tasks) * SLIDE_TASK
+        for j in range(j0, min(col.size, j0 + SLIDE_TASK)):
             c = col[j]
             ch = change[sc, c]
             ex = exported[sc, c]
@@ -1419,8 +1440,20 @@ def _scatter_columns(col, work, where, season, before, change, exported, busy):
             work[sc, at + snow_row] = max(work[sc, at + snow_row] + ch, 0.0)
             work[sc, at + redist_row] += ch
             work[sc, at + export_row] += ex
-        change[sc, :] = 0.0
-        exported[sc, :] = 0.0
+
+
+@njit(parallel=True, cache=True, error_model="numpy")
+def _clear_cells(change, exported, busy):
+    """Zero ``change`` and ``exported`` of the busy scenarios for the next call."""
+    n_scen, n_cells = change.shape
+    n_tasks = (n_cells + SLIDE_TASK - 1) // SLIDE_TASK
+    for task in prange(n_scen * n_tasks):
+        sc = task // n_tasks
+        if busy[sc]:
+            c0 = (task % n_tasks) * SLIDE_TASK
+            for c in range(c0, min(n_cells, c0 + SLIDE_TASK)):
+                change[sc, c] = 0.0
+                exported[sc, c] = 0.0
 
 
 def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
@@ -1581,7 +1614,7 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
     pos = np.empty(n, dtype=np.int64)
     pos[cell_arrays.order] = np.arange(n)
     where = (pos // CHUNK_CELLS) * K_LEN + pos % CHUNK_CELLS
-    buf = _slide_buffers(slide, out.state.shape[1], n_cells) if slide is not None else None
+    buf = _slide_buffers(slide, out.state.shape[1], n_cells, where) if slide is not None else None
     for a, b in zip(edges[:-1], edges[1:]):
         if a in slides:
             slide_s += _slide(slide, buf, out, int(days.season[a]), where)

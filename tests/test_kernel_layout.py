@@ -244,12 +244,13 @@ def test_scenarios_are_checked():
 
 _OTHER_BUILD = """
 import pickle, sys
-import numpy as np
+import numba
+features = numba.config.CPU_FEATURES       # numba's own, before firnline is imported
 from firnline.kernel import run_kernel
 args = pickle.load(open(sys.argv[1], "rb"))
 r = run_kernel(*args, daily=True)
-import numba
-pickle.dump((numba.config.CPU_NAME, r.sums, r.state_final, r.snow_end, r.daily), open(sys.argv[2], "wb"))
+pickle.dump((numba.config.CPU_NAME, features == numba.config.CPU_FEATURES, r.sums, r.state_final, r.snow_end,
+             r.daily), open(sys.argv[2], "wb"))
 """
 
 
@@ -274,8 +275,8 @@ def test_vector_width_leaves_the_results_unchanged(builders, tmp_path):
     env = dict(os.environ, NUMBA_CPU_NAME="generic")
     subprocess.run([sys.executable, "-c", _OTHER_BUILD, str(tmp_path / "args.pkl"), str(tmp_path / "out.pkl")],
                    env=env, check=True)
-    cpu, sums, state, snow_end, daily = pickle.loads((tmp_path / "out.pkl").read_bytes())
-    assert cpu == "generic"
+    cpu, kept, sums, state, snow_end, daily = pickle.loads((tmp_path / "out.pkl").read_bytes())
+    assert cpu == "generic" and kept          # firnline.jit left the user's choice alone
     np.testing.assert_array_equal(sums, here.sums)
     np.testing.assert_array_equal(state, here.state_final)
     np.testing.assert_array_equal(snow_end, here.snow_end)

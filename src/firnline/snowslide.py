@@ -258,7 +258,7 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     pos_pad = np.full((ny + 2, nx + 2), EXPORT, dtype=np.int32)
     inner = pos_pad[1:-1, 1:-1]
     inner[valid] = np.arange(n, dtype=np.int32)
-    slope = np.asarray(slope_deg)
+    slope = np.asarray(slope_deg).ravel()
     # the links of each cell, block by block in cell order (every step is per cell, so the
     # blocks give the values of one pass over all cells, bit for bit); then put in
     # processing order
@@ -268,7 +268,7 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     for a in range(0, n, ROUTING_BLOCK_CELLS):
         b = min(n, a + ROUTING_BLOCK_CELLS)
         keep, recv, weight, hold = _block_links(pos_pad, zc, cells[a:b], a, nx, dx, dy,
-                                                slope.ravel()[cells[a:b]], snow_density_kg_m3,
+                                                slope[cells[a:b]], snow_density_kg_m3,
                                                 min_slide_slope_deg, scheme, exponent)
         holding[a:b] = hold
         counts[a:b] = keep.sum(axis=1)

@@ -232,18 +232,49 @@ def test_table_covers_valid_cells_in_c_order_and_reports_progress():
     np.testing.assert_array_equal(part, full[args["valid"].ravel()])
 
 
-def test_table_made_with_the_horizons_turned_into_sines_in_place_is_the_same():
-    """compute_table(in_place=True) overwrites the caller's float32 horizons with their sines
-    instead of copying them, and gives the same table bit for bit."""
+def test_table_band_by_band_from_the_dem_equals_the_table_of_all_horizons(monkeypatch):
+    """table_from_terrain holds one band of rows' horizons at a time and gives compute_table's
+    table of horizon_angles bit for bit, however the bands fall (here 200-cell kernel bands
+    grouped into several horizon bands), on a grid with nodata and a projected latitude field."""
     args = _relief()
-    horizons = np.ascontiguousarray(args["horizon_rad"], dtype=np.float32)
+    n = args["valid"].shape[0]
+    lat = 46.5 + 0.0002 * np.arange(n)[::-1, None] + 0.00001 * np.arange(n)[None, :]
+    lon = 8.0 + 0.0003 * np.arange(n)[None, :] - 0.00002 * np.arange(n)[:, None]
+    args = dict(args, lat_deg=lat, lon_deg=lon)
+    whole = compute_table(**args)
+    monkeypatch.setattr(radiation, "KERNEL_BAND_CELLS", 200)
+    monkeypatch.setattr(radiation, "MIN_SINE_BAND_BYTES", 0)
+    inputs = {k: v for k, v in args.items() if k != "horizon_rad"}
+    tile = radiation._tile(args["elevation_m"], args["valid"], args["slope_deg"], args["aspect_deg"],
+                           lat, lon, 0.75, 20, 36)
+    budget = len(radiation.day_nodes()) * int(args["valid"].sum()) * 2 + 9 * n * n + \
+        len(radiation.day_nodes()) * 200 * 4 + (16 << 20) + 15 * (2 * 36 + 4) * n
+    groups = radiation.horizon_band_groups((n, n), int(args["valid"].sum()), 36, radiation._kernel_bands(tile),
+                                           memory_bytes=budget)
+    assert len(groups) >= 3 and all(g[-1][1] - g[0][0] <= 15 for g in groups)
+    banded = radiation.table_from_terrain(**inputs, cell_size_m=25.0, n_sectors=36, max_distance_m=5000.0,
+                                          memory_bytes=budget)
+    np.testing.assert_array_equal(banded.values, whole.values)
+    # the kernel's own banding changes nothing either
+    np.testing.assert_array_equal(compute_table(**args).values, whole.values)
+
+
+def test_horizon_sines_are_the_rounded_sine_of_the_horizon_angle():
+    """Codes are rint(65535 sin h): within half a code of the float64 sine (closed form), 0 on
+    nodata, and a band of rows of SineBands is that of the whole grid's horizons."""
+    from firnline.horizon import SINE_LEVELS, SineBands, quantised_sines
+
+    args = _relief(n=40)
+    codes = quantised_sines(args["horizon_rad"])
     valid = args["valid"]
-    copy = compute_table(**dict(args, horizon_rad=horizons.copy()))
-    own = horizons.copy()
-    table = compute_table(**dict(args, horizon_rad=own), in_place=True)
-    np.testing.assert_array_equal(table.values, copy.values)
-    np.testing.assert_array_equal(own[:, valid], np.sin(horizons[:, valid]))
-    assert not np.array_equal(own, horizons)
+    exact = np.sin(args["horizon_rad"].astype(np.float64))[:, valid] * SINE_LEVELS
+    assert codes.dtype == np.uint16
+    assert np.abs(codes[:, valid] - exact).max() <= 0.5 + 0.01   # + float32 rounding of sin x 65535
+    assert (codes[:, ~valid] == 0).all()
+    bands = SineBands(args["elevation_m"], valid, (25.0, 30.0), 36, 5000.0)
+    whole = quantised_sines(horizon_angles(args["elevation_m"], valid, (25.0, 30.0), 36, 5000.0))
+    parts = np.concatenate([bands.band(0, 7), bands.band(7, 8), bands.band(8, 40)], axis=1)
+    np.testing.assert_array_equal(parts, whole)
 
 
 def test_bracket_day_and_means_are_consistent():

@@ -10,6 +10,7 @@ import pandas as pd
 import pytest
 import rasterio
 
+from firnline import radiation
 from firnline.cli import main
 from firnline.kernel import Method
 from firnline.radiation import RadiationTable
@@ -224,3 +225,33 @@ def test_uncalibrated_radiation_defaults_warn_exactly_once(radiation_demo, demo_
     cfg = plane_case(melt={"method": "radiation", "radiation_factor_ice": 0.015}, radiation=radiation)
     assert main(["run", str(cfg), "--out", str(tmp_path / "r"), "--no-report"]) == 0
     assert "uncalibrated default factors" not in capsys.readouterr().err
+
+
+def test_a_dem_whose_horizons_do_not_fit_runs_band_by_band_to_the_same_outputs(rad_case, tmp_path, monkeypatch):
+    """When all horizons would not fit beside the table (firnline.model.horizons_fit), the
+    climatology is made band of rows by band from the DEM and no horizons are cached; the
+    run's tables and maps are those of the whole-grid way, byte for byte."""
+    from firnline import model
+
+    cfg = rad_case(radiation={"cache_dir": "cache_whole"})
+    assert main(["run", str(cfg), "--out", str(tmp_path / "whole"), "--quiet"]) == 0
+    assert len(list((tmp_path / "cache_whole").glob("horizon-*.npz"))) == 1
+    text = cfg.read_text().replace("cache_whole", "cache_banded")
+    cfg.write_text(text)
+    monkeypatch.setattr(model, "horizons_fit", lambda grid, n_sectors: False)
+    monkeypatch.setattr(radiation, "KERNEL_BAND_CELLS", 40)
+    monkeypatch.setattr(radiation, "MIN_SINE_BAND_BYTES", 0)
+    monkeypatch.setattr(radiation, "MEMORY_TARGET_BYTES", 1)
+    groups = []
+    real_groups = radiation.horizon_band_groups
+    monkeypatch.setattr(radiation, "horizon_band_groups", lambda *a, **k: groups.append(real_groups(*a, **k))
+                        or groups[-1])
+    assert main(["run", str(cfg), "--out", str(tmp_path / "banded"), "--quiet"]) == 0
+    assert len(groups) == 1 and len(groups[0]) > 3           # one band of horizons per kernel band of rows
+    assert not list((tmp_path / "cache_banded").glob("horizon-*.npz"))
+    assert len(list((tmp_path / "cache_banded").glob("radiation-*.npz"))) == 1
+    for name in ("summary.csv", "profiles.csv"):
+        assert (tmp_path / "banded" / name).read_bytes() == (tmp_path / "whole" / name).read_bytes(), name
+    for tif in sorted((tmp_path / "whole").glob("*.tif")):
+        with rasterio.open(tif) as a, rasterio.open(tmp_path / "banded" / tif.name) as b:
+            np.testing.assert_array_equal(a.read(), b.read())

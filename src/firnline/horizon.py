@@ -40,6 +40,10 @@ Conventions:
   beam anyway.
 * Beyond the DEM edge the horizon is open: terrain outside the grid is taken to
   be no higher than the cell itself (angle 0 unless the DEM blocks).
+* :class:`SineBands` gives the same horizons band of rows by band (only the
+  band is held; each band walks the lines of every sector that reach it), as
+  :func:`quantised_sines` uint16 codes of the sine, the form the radiation
+  climatology reads.
 * Nodata cells (``valid`` False or NaN elevation) neither block the view nor
   are computed: their horizon is NaN, a line point whose nearest cell is
   nodata is left out, and a nodata cell is not used in the interpolation.
@@ -76,6 +80,43 @@ def sector_azimuths_deg(n_sectors: int) -> np.ndarray:
     return np.arange(n_sectors, dtype=np.float64) * (360.0 / n_sectors)
 
 
+def _elevation_grid(elevation_m, valid):
+    """The DEM as float64 with NaN on nodata (a copy), checked."""
+    z = np.array(elevation_m, dtype=np.float64)
+    if z.ndim != 2:
+        raise ValueError("elevation_m must be a 2-D array")
+    if valid is not None:
+        valid = np.asarray(valid, dtype=bool)
+        if valid.shape != z.shape:
+            raise ValueError("valid must have the shape of elevation_m")
+        z[~valid] = np.nan
+    return z
+
+
+def _spacing(cell_size_m):
+    if np.ndim(cell_size_m) == 0:
+        dx = dy = float(cell_size_m)
+    else:
+        dx, dy = (float(v) for v in cell_size_m)
+    if not (dx > 0 and dy > 0):
+        raise ValueError("cell_size_m must be positive")
+    return dx, dy
+
+
+def _sector_count(n_sectors):
+    n_sectors = int(n_sectors)
+    if n_sectors < 1:
+        raise ValueError("n_sectors must be at least 1")
+    return n_sectors
+
+
+def _sector(z, dx, dy, az_rad, max_distance_m, out, row0):
+    """Horizons of one sector into ``out`` (rows row0 .. row0 + len(out) - 1 of the grid)."""
+    # exact zeros along the grid axes, so that those lines run through the cell centres
+    sin_az, cos_az = (0.0 if abs(v) < 1e-12 else v for v in (math.sin(az_rad), math.cos(az_rad)))
+    _direction_horizon(z, dx, dy, sin_az, cos_az, max_distance_m, out, row0)
+
+
 def horizon_angles(elevation_m, valid, cell_size_m, n_sectors, max_distance_m, progress=None) -> np.ndarray:
     """Horizon elevation angle of every cell in ``n_sectors`` azimuth sectors.
 
@@ -103,38 +144,87 @@ def horizon_angles(elevation_m, valid, cell_size_m, n_sectors, max_distance_m, p
     numpy.ndarray of float32, shape (n_sectors, ny, nx)
         Horizon elevation angle, radians, clipped at 0; NaN on nodata cells.
     """
-    z = np.array(elevation_m, dtype=np.float64)
-    if z.ndim != 2:
-        raise ValueError("elevation_m must be a 2-D array")
-    if valid is not None:
-        valid = np.asarray(valid, dtype=bool)
-        if valid.shape != z.shape:
-            raise ValueError("valid must have the shape of elevation_m")
-        z[~valid] = np.nan
-    if np.ndim(cell_size_m) == 0:
-        dx = dy = float(cell_size_m)
-    else:
-        dx, dy = (float(v) for v in cell_size_m)
-    if not (dx > 0 and dy > 0):
-        raise ValueError("cell_size_m must be positive")
-    n_sectors = int(n_sectors)
-    if n_sectors < 1:
-        raise ValueError("n_sectors must be at least 1")
-    max_distance_m = float(max_distance_m)
-    ny, nx = z.shape
-    out = np.empty((n_sectors, ny, nx), dtype=np.float32)
+    z = _elevation_grid(elevation_m, valid)
+    dx, dy = _spacing(cell_size_m)
+    n_sectors = _sector_count(n_sectors)
+    out = np.empty((n_sectors,) + z.shape, dtype=np.float32)
     for k, az in enumerate(np.deg2rad(sector_azimuths_deg(n_sectors))):
-        # exact zeros along the grid axes, so that those lines run through the cell centres
-        sin_az, cos_az = (0.0 if abs(v) < 1e-12 else v for v in (math.sin(az), math.cos(az)))
-        _direction_horizon(z, dx, dy, sin_az, cos_az, max_distance_m, out[k])
+        _sector(z, dx, dy, az, float(max_distance_m), out[k], 0)
         if progress is not None:
             progress("horizon sectors", k + 1, n_sectors)
     return out
 
 
+#: Quantisation of the sine of a horizon angle (0 .. 1) as uint16: sine = value / SINE_LEVELS.
+SINE_LEVELS = 65535
+
+
+def quantised_sines(horizon_rad, out=None) -> np.ndarray:
+    """Sines of horizon angles as uint16 in units of 1 / ``SINE_LEVELS``, 0 where NaN.
+
+    ``rint(sin(angle) * 65535)`` with the sine taken in float32 on the float32
+    angle, so the same angles always give the same codes. The step is 1.5e-5 in
+    sine; rounding moves a horizon by at most 0.0009 degree while it is below 60
+    degrees. Against float32 sines, measured on the relief of benchmarks/radiation.py
+    (300 x 300 cells, 72 sectors): a daily mean at a day node moves by 9 W m-2 at most
+    (a 15-minute step whose sun lies within the rounding of a horizon changes between
+    sun and shade), annual means by 0.1 W m-2 at most and 0.0002 W m-2 on average.
+
+    Parameters
+    ----------
+    horizon_rad : array-like of float
+        Horizon elevation angles, radians, 0 .. pi / 2 (NaN allowed).
+    out : numpy.ndarray of uint16, optional
+        Where to write (the shape of ``horizon_rad``).
+    """
+    sine = np.sin(np.asarray(horizon_rad, dtype=np.float32))
+    np.multiply(sine, np.float32(SINE_LEVELS), out=sine)
+    np.rint(sine, out=sine)
+    np.clip(sine, 0.0, np.float32(SINE_LEVELS), out=sine)
+    sine[np.isnan(sine)] = 0.0
+    if out is None:
+        return sine.astype(np.uint16)
+    out[...] = sine
+    return out
+
+
+class SineBands:
+    """Quantised horizon sines of a DEM made band of rows by band of rows.
+
+    ``band(r0, r1)`` gives ``quantised_sines(horizon_angles(...)[:, r0:r1])`` of the
+    whole DEM bit for bit, computed from the whole DEM but holding only the band:
+    every sector's lines are walked in full (lines that never enter the band are
+    skipped), so a band costs about as much as the whole grid for the sectors
+    nearer north-south and less for those nearer east-west.
+    """
+
+    def __init__(self, elevation_m, valid, cell_size_m, n_sectors, max_distance_m, progress=None):
+        self.z = _elevation_grid(elevation_m, valid)
+        self.dx, self.dy = _spacing(cell_size_m)
+        self.n_sectors = _sector_count(n_sectors)
+        self.max_distance_m = float(max_distance_m)
+        self.progress = progress
+        self.azimuths_rad = np.deg2rad(sector_azimuths_deg(self.n_sectors))
+        self.done = 0
+
+    def band(self, r0: int, r1: int, total_bands: int = 1) -> np.ndarray:
+        """uint16 (n_sectors, r1 - r0, nx) codes of rows r0 .. r1 - 1."""
+        nx = self.z.shape[1]
+        out = np.empty((self.n_sectors, r1 - r0, nx), dtype=np.uint16)
+        scratch = np.empty((r1 - r0, nx), dtype=np.float32)
+        for k, az in enumerate(self.azimuths_rad):
+            _sector(self.z, self.dx, self.dy, az, self.max_distance_m, scratch, r0)
+            quantised_sines(scratch, out=out[k])
+            self.done += 1
+            if self.progress is not None:
+                self.progress("horizon sectors", self.done, self.n_sectors * total_bands)
+        return out
+
+
 @njit(cache=True, parallel=True)
-def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out):
-    """Horizon angles of all cells in one direction (grid azimuth given by sin/cos)."""
+def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out, row0):
+    """Horizon angles in one direction (grid azimuth given by sin/cos) of the grid rows
+    row0 .. row0 + out.shape[0] - 1, into out; lines that never meet those rows are skipped."""
     ny, nx = z.shape
     dcol = sin_az / dx  # columns per metre along the direction
     drow = -cos_az / dy  # rows per metre (up = decreasing row)
@@ -164,17 +254,25 @@ def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out):
     o_lo = -shift.max()
     n_lines = (n_minor - 1 - shift.min()) - o_lo + 1
     window = int(math.floor(max_dist / ds + 1e-9))
+    line0, line1 = 0, n_lines
+    if major_is_col:
+        # line o writes rows o + shift[m]: only the lines that reach rows row0 .. row0 + rows - 1
+        line0 = max(0, row0 - shift.max() - o_lo)
+        line1 = min(n_lines, row0 + out.shape[0] - 1 - shift.min() - o_lo + 1)
+    n_run = line1 - line0
+    if n_run <= 0:
+        return
     # neighbouring lines share cache lines of the grid, so each task takes a run of them
-    n_chunks = min(n_lines, 64)
+    n_chunks = min(n_run, 64)
     for chunk in prange(n_chunks):
-        first = chunk * n_lines // n_chunks
-        stop = (chunk + 1) * n_lines // n_chunks
-        _lines_horizon(z, out, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds)
+        first = line0 + chunk * n_run // n_chunks
+        stop = line0 + (chunk + 1) * n_run // n_chunks
+        _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds)
 
 
 @njit(cache=True)
-def _lines_horizon(z, out, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds):
-    """Horizons along the lines first .. stop - 1 of one direction."""
+def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds):
+    """Horizons along the lines first .. stop - 1 of one direction (rows row0 .. of out)."""
     if major_is_col:
         n_minor, n_major = z.shape
     else:
@@ -220,10 +318,12 @@ def _lines_horizon(z, out, major_is_col, forward, shift, frac, side, o_lo, first
                 val = math.atan(hz[k] / ds)
             else:
                 val = 0.0
-            if major_is_col:
-                out[minor, m] = val
-            else:
-                out[m, minor] = val
+            r = (minor if major_is_col else m) - row0
+            if 0 <= r < out.shape[0]:
+                if major_is_col:
+                    out[r, m] = val
+                else:
+                    out[r, minor] = val
 
 
 @njit(cache=True)

@@ -345,6 +345,16 @@ def input_checksums(config: Config, grid: Grid) -> dict:
     return checksums
 
 
+def horizons_fit(grid: Grid, n_sectors: int) -> bool:
+    """Whether the float32 horizons of all cells fit beside the radiation table within
+    :data:`firnline.radiation.MEMORY_TARGET_BYTES` (then they are computed whole and cached;
+    otherwise the table is made band by band from the DEM and the horizons are not kept)."""
+    from .radiation import MEMORY_TARGET_BYTES, day_nodes
+
+    table = len(day_nodes()) * grid.n_valid * 2
+    return n_sectors * grid.shape[0] * grid.shape[1] * 4 + table <= MEMORY_TARGET_BYTES
+
+
 def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndarray, config: Config,
                           progress: Progress = None, want_horizons: bool = False):
     """The potential direct radiation table of the valid cells, from the disk cache when it can.
@@ -352,7 +362,9 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     Horizons (Dozier & Frew 1990 sector search) and the daily climatology (Hock 1999
     beam with cast shadows) depend only on the DEM and the ``[radiation]`` settings
     and ``[melt] transmissivity``; both are cached under ``[radiation] cache_dir``,
-    keyed by the DEM's SHA-256 and those settings.
+    keyed by the DEM's SHA-256 and those settings. Horizons are computed whole and
+    cached only while they fit beside the table (:func:`horizons_fit`); on larger
+    grids the table is made band by band from the DEM, the same bit for bit.
 
     Returns
     -------
@@ -363,7 +375,7 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     """
     from . import cache
     from .horizon import horizon_angles
-    from .radiation import compute_table
+    from .radiation import compute_table, table_from_terrain
 
     rc = config.radiation
     hkey = cache.cache_key(dem_sha256=grid.checksum, shape=list(grid.shape),
@@ -375,24 +387,32 @@ def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndar
     table = cache.load_table(rc.cache_dir, tkey, n_cells=grid.n_valid)
     if table is not None and not want_horizons:
         return table, None, f"reused the cached radiation climatology ({cache.table_path(rc.cache_dir, tkey)})."
-    horizons = cache.load_horizons(rc.cache_dir, hkey, shape=grid.shape, n_sectors=rc.horizon_sectors)
-    damaged = [f"the cached {what} {path.name} was not used ({cache.MISSES[str(path)]}) and is recomputed"
-               for what, path in (("radiation table", cache.table_path(rc.cache_dir, tkey)),
-                                  ("horizons", cache.horizon_path(rc.cache_dir, hkey)))
-               if str(path) in cache.MISSES]
-    if horizons is None:
-        horizons = horizon_angles(grid.elevation, grid.valid, grid.cell_size_m, rc.horizon_sectors,
-                                  rc.horizon_distance_m, progress=progress)
-        cache.save_horizons(rc.cache_dir, hkey, horizons)
-    if table is not None:
-        return table, horizons, "; ".join(damaged + ["reused the cached radiation climatology and horizons."])
     lon, lat = grid.lonlat()
-    # without want_horizons nobody reads them again: the table turns them into sines in place
-    table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
-                          config.melt.transmissivity, rc.time_step_minutes, progress=progress,
-                          in_place=not want_horizons)
-    if not want_horizons:
+    if not want_horizons and not horizons_fit(grid, rc.horizon_sectors):
+        # the horizons of all cells would not fit beside the table: band by band, not cached
+        path = cache.table_path(rc.cache_dir, tkey)
+        damaged = ([f"the cached radiation table {path.name} was not used ({cache.MISSES[str(path)]}) "
+                    "and is recomputed"] if str(path) in cache.MISSES else [])
+        table = table_from_terrain(grid.elevation, grid.valid, slope_deg, aspect_deg, lat, lon,
+                                   grid.cell_size_m, rc.horizon_sectors, rc.horizon_distance_m,
+                                   config.melt.transmissivity, rc.time_step_minutes, progress=progress)
         horizons = None
+    else:
+        horizons = cache.load_horizons(rc.cache_dir, hkey, shape=grid.shape, n_sectors=rc.horizon_sectors)
+        damaged = [f"the cached {what} {path.name} was not used ({cache.MISSES[str(path)]}) and is recomputed"
+                   for what, path in (("radiation table", cache.table_path(rc.cache_dir, tkey)),
+                                      ("horizons", cache.horizon_path(rc.cache_dir, hkey)))
+                   if str(path) in cache.MISSES]
+        if horizons is None:
+            horizons = horizon_angles(grid.elevation, grid.valid, grid.cell_size_m, rc.horizon_sectors,
+                                      rc.horizon_distance_m, progress=progress)
+            cache.save_horizons(rc.cache_dir, hkey, horizons)
+        if table is not None:
+            return table, horizons, "; ".join(damaged + ["reused the cached radiation climatology and horizons."])
+        table = compute_table(grid.elevation, grid.valid, slope_deg, aspect_deg, horizons, lat, lon,
+                              config.melt.transmissivity, rc.time_step_minutes, progress=progress)
+        if not want_horizons:
+            horizons = None
     cache.save_table(rc.cache_dir, tkey, table)
     return table, horizons, ("; ".join(damaged + [""]) +
                              f"computed the radiation climatology in {time.perf_counter() - t0:.1f} s "

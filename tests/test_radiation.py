@@ -277,6 +277,25 @@ def test_horizon_sines_are_the_rounded_sine_of_the_horizon_angle():
     np.testing.assert_array_equal(parts, whole)
 
 
+@pytest.mark.parametrize("distance_m", [0.0, 60.0, 300.0, 700.0])
+def test_horizon_bands_shorter_than_the_search_equal_the_whole_grid(distance_m):
+    """Bands of rows cut each line to the band plus whole search blocks around it; with
+    windows shorter than the grid (2 .. 28 cells), terraced relief full of exact ties, nodata
+    holes and non-square cells, every band is still the whole grid's, bit for bit."""
+    from firnline.horizon import SineBands, quantised_sines
+
+    rng = np.random.default_rng(7)
+    ny, nx = 57, 43
+    y, x = np.mgrid[0:ny, 0:nx]
+    z = np.round(2000.0 + 3.0 * x + 2.0 * y + 40.0 * np.sin(x / 5.0) * np.cos(y / 7.0), -1)
+    valid = rng.random((ny, nx)) > 0.05
+    whole = quantised_sines(horizon_angles(z, valid, (25.0, 20.0), 24, distance_m))
+    bands = SineBands(z, valid, (25.0, 20.0), 24, distance_m)
+    edges = [0, 1, 9, 10, 30, 44, 57]
+    parts = np.concatenate([bands.band(a, b) for a, b in zip(edges[:-1], edges[1:])], axis=1)
+    np.testing.assert_array_equal(parts, whole)
+
+
 def test_bracket_day_and_means_are_consistent():
     values = np.array([[0, 100], [40, 300], [400, 0]], dtype=np.uint16)
     table = RadiationTable(doy_nodes=np.array([10, 100, 300]), values=values, scale_w_m2=0.5)

@@ -41,7 +41,8 @@ Conventions:
 * Beyond the DEM edge the horizon is open: terrain outside the grid is taken to
   be no higher than the cell itself (angle 0 unless the DEM blocks).
 * :class:`SineBands` gives the same horizons band of rows by band (only the
-  band is held; each band walks the lines of every sector that reach it), as
+  band is held; each line is searched over the band and the search blocks
+  around it that its points see), as
   :func:`quantised_sines` uint16 codes of the sine, the form the radiation
   climatology reads.
 * Nodata cells (``valid`` False or NaN elevation) neither block the view nor
@@ -192,10 +193,11 @@ class SineBands:
     """Quantised horizon sines of a DEM made band of rows by band of rows.
 
     ``band(r0, r1)`` gives ``quantised_sines(horizon_angles(...)[:, r0:r1])`` of the
-    whole DEM bit for bit, computed from the whole DEM but holding only the band:
-    every sector's lines are walked in full (lines that never enter the band are
-    skipped), so a band costs about as much as the whole grid for the sectors
-    nearer north-south and less for those nearer east-west.
+    whole DEM bit for bit, computed from the whole DEM but holding only the band.
+    Only the lines that meet the band are searched, each over the band plus whole
+    search blocks (one horizon distance) around it, so a band of h rows costs about
+    (h + 2 x distance) / grid height of the whole search for the sectors nearer
+    north-south, less for those nearer east-west.
     """
 
     def __init__(self, elevation_m, valid, cell_size_m, n_sectors, max_distance_m, progress=None):
@@ -272,23 +274,57 @@ def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out, row0):
 
 @njit(cache=True)
 def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds):
-    """Horizons along the lines first .. stop - 1 of one direction (rows row0 .. of out)."""
+    """Horizons along the lines first .. stop - 1 of one direction (rows row0 .. of out).
+
+    Each line's profile holds its in-grid points; only the part that the band's points and
+    their windows need is built and searched: from the start of the search block (of the
+    whole profile) holding the band's first point to one block past the band's last, so
+    that every point of the band sees the same blocks as in the whole profile and gets the
+    same value bit for bit.
+    """
     if major_is_col:
         n_minor, n_major = z.shape
     else:
         n_major, n_minor = z.shape
+    rows = out.shape[0]
     zp = np.empty(n_major, np.float64)
     im = np.empty(n_major, np.int64)
     hz = np.empty(n_major, np.float64)
     stack = np.empty(n_major, np.int64)
     for line in range(first, stop):
         o = o_lo + line
+        # the in-grid points (q = qa .. qa + n - 1, profile index k = q - qa) and those of
+        # the band (k = ka .. kb - 1): both runs, since the line's cells move monotonically
+        qa = -1
         n = 0
+        ka = -1
+        kb = -1
         for q in range(n_major):
             m = q if forward else n_major - 1 - q
             near = o + shift[m]
             if not 0 <= near < n_minor:
                 continue
+            if qa < 0:
+                qa = q
+            r = (near if major_is_col else m) - row0
+            if 0 <= r < rows:
+                if ka < 0:
+                    ka = n
+                kb = n + 1
+            n += 1
+        if ka < 0:
+            continue
+        if window < 1:
+            block = 1
+            s0, end = ka, kb
+        else:
+            block = window if window < n else n
+            s0 = (ka // block) * block
+            end = min(n, ((kb - 1) // block + 2) * block)
+        for k in range(s0, end):
+            q = qa + k
+            m = q if forward else n_major - 1 - q
+            near = o + shift[m]
             # the point between `near` and `other`, or, when `other` is off the grid,
             # half a cell at most beyond `near` (extrapolated from the cell behind)
             other = near + side[m]
@@ -300,26 +336,25 @@ def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo,
             z_other = np.nan
             if 0 <= other < n_minor:
                 z_other = z[other, m] if major_is_col else z[m, other]
+            j = k - s0
             if math.isnan(z_other):
-                zp[n] = z_near
+                zp[j] = z_near
             else:
-                zp[n] = z_near + w * (z_other - z_near)
-            im[n] = m
-            n += 1
-        if n == 0:
-            continue
-        _profile_horizon(zp, n, window, hz, stack)
-        for k in range(n):
-            m = im[k]
+                zp[j] = z_near + w * (z_other - z_near)
+            im[j] = m
+        _profile_horizon(zp, end - s0, window, block, hz, stack)
+        for k in range(ka, kb):
+            j = k - s0
+            m = im[j]
             minor = o + shift[m]
-            if math.isnan(zp[k]):
+            if math.isnan(zp[j]):
                 val = np.nan
-            elif hz[k] > 0.0:
-                val = math.atan(hz[k] / ds)
+            elif hz[j] > 0.0:
+                val = math.atan(hz[j] / ds)
             else:
                 val = 0.0
             r = (minor if major_is_col else m) - row0
-            if 0 <= r < out.shape[0]:
+            if 0 <= r < rows:
                 if major_is_col:
                     out[r, m] = val
                 else:
@@ -327,10 +362,12 @@ def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo,
 
 
 @njit(cache=True)
-def _profile_horizon(zp, n, window, hz, stack):
+def _profile_horizon(zp, n, window, block, hz, stack):
     """Largest rise per step ahead of each point of a profile, within ``window`` steps.
 
-    zp[0:n] are elevations at equal steps in the look direction (NaN skipped).
+    zp[0:n] are elevations at equal steps in the look direction (NaN skipped), searched in
+    blocks of ``block`` points from zp[0] (``window``, or the whole profile when it is
+    shorter than the window).
     On return hz[k] = max over valid j in (k, k + window] of (zp[j] - zp[k]) / (j - k),
     or -inf when there is none, and NaN where zp[k] is NaN.
     """
@@ -341,7 +378,6 @@ def _profile_horizon(zp, n, window, hz, stack):
             if math.isnan(zp[k]):
                 hz[k] = np.nan
         return
-    block = window if window < n else n
     for start in range(0, n, block):
         end = min(start + block, n)
         # Part A: the rest of the point's own block, hull walk from the far end.

@@ -61,8 +61,8 @@ of rows by band, as few bands as keep the table, one band's codes and the
 working arrays under ``MEMORY_TARGET_BYTES``, and gives the same table bit for
 bit. Measured with ``python benchmarks/radiation.py --sizes 1000 2000
 --no-error`` (72 sectors, 20 km): 2000 x 2000 cells band by band in 5 bands,
-29 s and 0.94 GB traced peak, against 15.7 s and 1.9 GB with all horizons at
-once; 1000 x 1000 in one band, 3.4 s and 0.37 GB.
+22.8 s and 0.94 GB traced peak, against 16.3 s and 1.9 GB with all horizons at
+once; 1000 x 1000 in one band, 3.6 s and 0.37 GB.
 
 Compact storage
 ---------------
@@ -730,9 +730,10 @@ def table_from_terrain(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_d
 
     The bands are as few as keep the table, one band's horizon sine codes (2 bytes per cell
     and sector) and the working arrays under ``memory_bytes`` (see :func:`horizon_band_groups`);
-    each band walks every sector's lines over the whole DEM, so the horizon work grows with the
-    number of bands (one band on grids up to about 2.7e6 cells with 72 sectors; 2000 x 2000 cells:
-    see benchmarks/radiation.py). Parameters as :func:`compute_table` and
+    each band searches the lines that meet it over the band and one horizon distance either
+    side, so the horizon work grows with the number of bands (one band on grids up to about
+    2.7e6 cells with 72 sectors; 2000 x 2000 cells: see benchmarks/radiation.py). Parameters as
+    :func:`compute_table` and
     :func:`firnline.horizon.horizon_angles`; ``progress`` also gets ``"horizon sectors"``.
     Returns the :class:`RadiationTable` of :func:`compute_table`.
     """

@@ -90,6 +90,30 @@ def test_exact_sums_merge_in_any_order_and_match_a_correctly_rounded_sum():
     assert np.isnan(exact.values(exact.of([0, 0, 1], [1.0, np.nan, 2.0]))[1][0])
 
 
+def test_columns_of_a_selection_are_those_of_the_dense_renumbering():
+    """Columns.select (work over the selection's span only) gives the columns, cells, shares and
+    regions of the plain definition: renumber every cell, keep the selected cells' own columns
+    in order and the appended columns of selected cells in column order."""
+    from firnline.model import Columns
+
+    rng = np.random.default_rng(5)
+    n = 3000
+    pos = [np.sort(rng.choice(n, rng.integers(1, 300), replace=False)) for _ in range(30)]
+    cols = Columns.build(n, pos, [rng.uniform(0.05, 1.0, p.size) for p in pos])
+    assert cols.n > n
+    for size in (0, 1, 17, 900, n):
+        sub = np.sort(rng.choice(n, size, replace=False))
+        new = np.full(n, -1)
+        new[sub] = np.arange(sub.size)
+        extra = np.arange(n, cols.n)
+        keep = np.concatenate([sub, extra[new[cols.cell[extra]] >= 0]])
+        got = cols.select(sub)
+        np.testing.assert_array_equal(got.cell, new[cols.cell[keep]])
+        for name in ("share", "ice", "region"):
+            np.testing.assert_array_equal(getattr(got, name), getattr(cols, name)[keep])
+        assert got.n_cells == sub.size
+
+
 def test_exact_sums_are_the_same_integers_on_the_dense_and_the_sparse_path():
     """The dense (key, exponent) table and the sorted path give the same sums, bit for bit,
     for terms with zeros, subnormals, both signs, an infinity and 600 binary orders of

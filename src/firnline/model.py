@@ -16,6 +16,7 @@ once and :func:`simulate` many times.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -122,16 +123,31 @@ class Columns:
         return cls(cell=np.concatenate(cell), share=np.concatenate(shares), ice=np.concatenate(ices),
                    region=np.concatenate(regions).astype(np.int32), n_cells=int(n_cells))
 
+    @functools.cached_property
+    def _extra_by_cell(self) -> tuple[np.ndarray, np.ndarray]:
+        """The appended columns sorted by cell (stable): (their cells, their column indices)."""
+        extra_cells = self.cell[self.n_cells:]
+        order = np.argsort(extra_cells, kind="stable")
+        return extra_cells[order], (self.n_cells + order).astype(np.int64)
+
     def select(self, positions: np.ndarray) -> "Columns":
-        """The columns of some cells (ascending positions), their cells renumbered."""
+        """The columns of some cells (ascending positions), their cells renumbered.
+
+        Work and memory in proportion to the selection and the appended columns of its span
+        of cells (a unit of a tiled run does not touch every cell of the DEM)."""
         sub = np.asarray(positions, dtype=np.int64)
-        new = np.full(self.n_cells, -1, dtype=np.int64)
-        new[sub] = np.arange(sub.size)
         first = sub                                     # the cells' own columns, in order
-        extra = np.arange(self.n_cells, self.n)
-        extra = extra[new[self.cell[extra]] >= 0]
+        extra = np.zeros(0, dtype=np.int64)
+        if sub.size and self.n > self.n_cells:
+            cells_sorted, cols_sorted = self._extra_by_cell
+            lo = int(np.searchsorted(cells_sorted, sub[0], side="left"))
+            hi = int(np.searchsorted(cells_sorted, sub[-1], side="right"))
+            cand_cells, cand_cols = cells_sorted[lo:hi], cols_sorted[lo:hi]
+            at = np.minimum(np.searchsorted(sub, cand_cells), sub.size - 1)
+            extra = np.sort(cand_cols[sub[at] == cand_cells])     # in column order, as appended
         keep = np.concatenate([first, extra])
-        return Columns(cell=new[self.cell[keep]], share=self.share[keep], ice=self.ice[keep],
+        cell = np.concatenate([np.arange(sub.size, dtype=np.int64), np.searchsorted(sub, self.cell[extra])])
+        return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep],
                        region=self.region[keep], n_cells=int(sub.size))
 
     def blend(self, values: np.ndarray) -> np.ndarray:
@@ -142,6 +158,16 @@ class Columns:
             extra = v[..., self.n_cells:] * self.share[self.n_cells:]
             np.add.at(np.moveaxis(out, -1, 0), self.cell[self.n_cells:], np.moveaxis(extra, -1, 0))
         return out
+
+
+def _all_in(pos: np.ndarray, sub: np.ndarray) -> bool:
+    """Whether every one of ``pos`` is in ``sub`` (ascending)."""
+    if pos.size == 0:
+        return True
+    if sub.size == 0:
+        return False
+    at = np.minimum(np.searchsorted(sub, pos), sub.size - 1)
+    return bool((sub[at] == pos).all())
 
 
 @dataclass(frozen=True)
@@ -199,9 +225,7 @@ class Setup:
         sub = np.asarray(positions, dtype=np.int64)
         if sub.size > 1 and np.any(np.diff(sub) <= 0):
             raise ValueError("Setup.select takes ascending, distinct positions")
-        inside = np.zeros(self.cells.size, bool)
-        inside[sub] = True
-        whole = all(inside[pos].all() for pos in self.glacier_pos)
+        whole = all(_all_in(pos, sub) for pos in self.glacier_pos)
         pos = tuple(np.searchsorted(sub, p) for p in self.glacier_pos) if whole else ()
         rad = self.radiation.subset(sub) if self.radiation is not None else None
         cw = self.catchment_weight[sub] if self.catchment_weight is not None else None

@@ -377,11 +377,14 @@ def _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmiss
             raise ValueError(f"{name} must be finite on every valid cell")
     row_offset = np.concatenate([[0], np.cumsum(valid.sum(axis=1))]).astype(np.int64)
     lat, lon = grids["lat_deg"], grids["lon_deg"]
-    if valid.any():
-        lat_valid = np.full(1, lat) if isinstance(lat, float) else lat[valid]
-        lat_range = (float(lat_valid.min()), float(lat_valid.max()))
-        rows, cols = np.nonzero(valid)
-        centre = (int(rows[len(rows) // 2]), int(cols[len(cols) // 2]))
+    n_valid = int(row_offset[-1])
+    if n_valid:
+        lat_range = ((lat, lat) if isinstance(lat, float) else
+                     (float(np.min(lat, where=valid, initial=np.inf)),
+                      float(np.max(lat, where=valid, initial=-np.inf))))
+        # the middle valid cell in C order, found without listing every valid cell
+        r = int(np.searchsorted(row_offset, n_valid // 2, side="right")) - 1
+        centre = (r, int(np.flatnonzero(valid[r])[n_valid // 2 - row_offset[r]]))
     else:
         lat_range = ((lat, lat) if isinstance(lat, float) else (float(lat.min()), float(lat.max())))
         centre = (shape[0] // 2, shape[1] // 2)

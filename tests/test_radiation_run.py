@@ -241,6 +241,7 @@ def test_a_dem_whose_horizons_do_not_fit_runs_band_by_band_to_the_same_outputs(r
     monkeypatch.setattr(model, "horizons_fit", lambda grid, n_sectors: False)
     monkeypatch.setattr(radiation, "KERNEL_BAND_CELLS", 40)
     monkeypatch.setattr(radiation, "MIN_SINE_BAND_BYTES", 0)
+    monkeypatch.setattr(radiation, "TABLE_PARTS_PER_BAND", 1 << 40)
     monkeypatch.setattr(radiation, "MEMORY_TARGET_BYTES", 1)
     groups = []
     real_groups = radiation.horizon_band_groups

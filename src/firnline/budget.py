@@ -94,7 +94,8 @@ def radiation_bytes(cells: int, sectors: int) -> int:
     work = nodes * radiation.KERNEL_BAND_CELLS * 4 * 2
     if sectors * 4 * cells + table <= radiation.MEMORY_TARGET_BYTES:
         return table + sectors * 4 * cells + work
-    band = max(radiation.MIN_SINE_BAND_BYTES, radiation.MEMORY_TARGET_BYTES - table - 9 * cells)
+    band = max(radiation.MIN_SINE_BAND_BYTES, table // radiation.TABLE_PARTS_PER_BAND,
+               radiation.MEMORY_TARGET_BYTES - table - 9 * cells)
     return table + 9 * cells + band + work
 
 

@@ -78,25 +78,9 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
     b += bands * max(years, 1) * glaciers * scenarios * _BYTES_PER_PROFILE_ROW
     if radiation_sectors:
-        b += radiation_bytes(cells, radiation_sectors)
+        from .radiation import peak_bytes
+        b += peak_bytes(cells, cells, radiation_sectors)    # the climatology as it is made
     return Estimate(int(b), cells, (ny, nx), years, scenarios, band_width_m, glaciers)
-
-
-def radiation_bytes(cells: int, sectors: int) -> int:
-    """Peak of making the radiation climatology of ``cells`` cells (:mod:`firnline.radiation`):
-    the uint16 table, then either all float32 horizons (while they fit beside it,
-    :func:`firnline.model.horizons_fit`) or the DEM copy and one band of horizon sine codes
-    (:func:`firnline.radiation.table_from_terrain`), and one band of rows' working arrays."""
-    from . import radiation
-
-    nodes = len(radiation.day_nodes())
-    table = cells * nodes * 2
-    work = nodes * radiation.KERNEL_BAND_CELLS * 4 * 2
-    if sectors * 4 * cells + table <= radiation.MEMORY_TARGET_BYTES:
-        return table + sectors * 4 * cells + work
-    band = max(radiation.MIN_SINE_BAND_BYTES, table // radiation.TABLE_PARTS_PER_BAND,
-               radiation.MEMORY_TARGET_BYTES - table - 9 * cells)
-    return table + 9 * cells + band + work
 
 
 def available_bytes() -> int | None:

@@ -370,13 +370,12 @@ def input_checksums(config: Config, grid: Grid) -> dict:
 
 
 def horizons_fit(grid: Grid, n_sectors: int) -> bool:
-    """Whether the float32 horizons of all cells fit beside the radiation table within
-    :data:`firnline.radiation.MEMORY_TARGET_BYTES` (then they are computed whole and cached;
-    otherwise the table is made band by band from the DEM and the horizons are not kept)."""
-    from .radiation import MEMORY_TARGET_BYTES, day_nodes
+    """Whether the float32 horizons of all cells fit beside the radiation table
+    (:func:`firnline.radiation.whole_horizons_fit`): then they are computed whole and cached;
+    otherwise the table is made band by band from the DEM and the horizons are not kept."""
+    from .radiation import whole_horizons_fit
 
-    table = len(day_nodes()) * grid.n_valid * 2
-    return n_sectors * grid.shape[0] * grid.shape[1] * 4 + table <= MEMORY_TARGET_BYTES
+    return whole_horizons_fit(grid.shape[0] * grid.shape[1], grid.n_valid, n_sectors)
 
 
 def radiation_climatology(grid: Grid, slope_deg: np.ndarray, aspect_deg: np.ndarray, config: Config,

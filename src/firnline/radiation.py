@@ -558,12 +558,16 @@ def _band_means(tile: _Tile, paths: tuple, r0: int, r1: int, sine_codes: np.ndar
                        east, cdch, k0, k1, weight, start, sin_dec, scale, out)
 
 
-def _given_horizons(horizon_rad, tile: _Tile):
-    """Check caller-supplied horizons; return a function giving the sine codes of a band of rows."""
+def _given_horizons(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
+                    transmissivity, time_step_minutes):
+    """The tile of caller-supplied horizons (checked) and a function giving the sine codes of a
+    band of rows."""
     horizon = np.asarray(horizon_rad)
-    shape = tile.valid.shape
+    shape = np.shape(valid)
     if horizon.ndim != 3 or horizon.shape[1:] != shape or horizon.shape[0] < 1:
         raise ValueError(f"horizon_rad must have shape (n_sectors, {shape[0]}, {shape[1]}), got {horizon.shape}")
+    tile = _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
+                 time_step_minutes, horizon.shape[0])
 
     def codes(r0, r1):
         band = horizon[:, r0:r1]
@@ -574,7 +578,7 @@ def _given_horizons(horizon_rad, tile: _Tile):
         out[:, ~valid] = 0
         return out
 
-    return codes
+    return tile, codes
 
 
 def compute_days(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
@@ -595,10 +599,8 @@ def compute_days(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg
     numpy.ndarray of float32, shape (len(doys), n_cells)
         Daily mean (24 h) direct radiation, W m-2.
     """
-    n_sectors = np.shape(horizon_rad)[0] if np.ndim(horizon_rad) == 3 else 1
-    tile = _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
-                 time_step_minutes, n_sectors)
-    codes = _given_horizons(horizon_rad, tile)
+    tile, codes = _given_horizons(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
+                                  transmissivity, time_step_minutes)
     doys = [int(d) for d in doys]
     for d in doys:
         if not 1 <= d <= 366:
@@ -695,11 +697,44 @@ def compute_table(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_de
         ``STORAGE_SCALE_W_M2``. Memory: the table, n_nodes x n_cells x 2 bytes (186 MB for 10^6
         cells), plus working arrays of one band of rows.
     """
-    n_sectors = np.shape(horizon_rad)[0] if np.ndim(horizon_rad) == 3 else 1
-    tile = _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
-                 time_step_minutes, n_sectors)
-    codes = _given_horizons(horizon_rad, tile)
+    tile, codes = _given_horizons(elevation_m, valid, slope_deg, aspect_deg, horizon_rad, lat_deg, lon_deg,
+                                  transmissivity, time_step_minutes)
     return _table(tile, [[band] for band in _kernel_bands(tile)], codes, progress)
+
+
+def _working_bytes(n_grid_cells: int) -> int:
+    """What making the table holds besides the table and the horizons: the DEM's float64 copy
+    with its mask, one kernel band's output buffer, and some slack."""
+    return 9 * n_grid_cells + len(day_nodes()) * KERNEL_BAND_CELLS * 4 + (16 << 20)
+
+
+def _table_bytes(n_cells: int) -> int:
+    return len(day_nodes()) * n_cells * 2
+
+
+def whole_horizons_fit(n_grid_cells: int, n_cells: int, n_sectors: int) -> bool:
+    """Whether the float32 horizons of all ``n_grid_cells`` fit beside the table of ``n_cells``
+    valid cells within ``MEMORY_TARGET_BYTES`` (else :func:`table_from_terrain` holds them band
+    of rows by band)."""
+    return n_sectors * 4 * n_grid_cells + _table_bytes(n_cells) <= MEMORY_TARGET_BYTES
+
+
+def _band_code_bytes(n_grid_cells: int, n_cells: int, memory_bytes: int) -> int:
+    """Bytes of horizon sine codes a band of :func:`table_from_terrain` may hold (see
+    :func:`horizon_band_groups`)."""
+    table = _table_bytes(n_cells)
+    return max(MIN_SINE_BAND_BYTES, table // TABLE_PARTS_PER_BAND,
+               memory_bytes - table - _working_bytes(n_grid_cells))
+
+
+def peak_bytes(n_grid_cells: int, n_cells: int, n_sectors: int) -> int:
+    """Peak memory of making the table of ``n_cells`` valid cells on a grid of ``n_grid_cells``:
+    the table, then all float32 horizons while they fit (:func:`whole_horizons_fit`) or one
+    band's codes, and the working arrays."""
+    table = _table_bytes(n_cells)
+    if whole_horizons_fit(n_grid_cells, n_cells, n_sectors):
+        return table + n_sectors * 4 * n_grid_cells + _working_bytes(n_grid_cells)
+    return table + _band_code_bytes(n_grid_cells, n_cells, MEMORY_TARGET_BYTES) + _working_bytes(n_grid_cells)
 
 
 def horizon_band_groups(tile_shape, n_cells: int, n_sectors: int, kernel_bands,
@@ -715,10 +750,8 @@ def horizon_band_groups(tile_shape, n_cells: int, n_sectors: int, kernel_bands,
     if memory_bytes is None:
         memory_bytes = MEMORY_TARGET_BYTES
     ny, nx = tile_shape
-    table = len(day_nodes()) * n_cells * 2
-    fixed = 9 * ny * nx + len(day_nodes()) * KERNEL_BAND_CELLS * 4 + (16 << 20)
+    room = _band_code_bytes(ny * nx, n_cells, memory_bytes)
     per_row = (2 * n_sectors + 4) * nx
-    room = max(MIN_SINE_BAND_BYTES, table // TABLE_PARTS_PER_BAND, memory_bytes - table - fixed)
     groups, rows = [], 0
     for band in kernel_bands:
         h = band[1] - band[0]

@@ -136,3 +136,38 @@ def test_linear_station_forcing_equals_the_blocks_and_asks_blocks_only_for_days_
     np.testing.assert_allclose(linear.summary.annual_balance_mwe, blocks.summary.annual_balance_mwe, atol=1e-5)
     np.testing.assert_allclose(linear.fields["annual_balance"].values, blocks.fields["annual_balance"].values,
                                atol=1e-5, equal_nan=True)
+
+
+def test_a_station_network_run_a_year_at_a_time_equals_the_whole_record(tmp_path, monkeypatch):
+    """Cell-mode forcing (the network's LINEAR days and its block days around a gap) with sliding
+    snow, refreezing, firn layers and a spin-up year: the kernel run one balance year at a time,
+    its state and work buffers carried over (firnline.tiles.BLOCK_BYTES tiny), gives the maps and
+    tables of one pass over the record bit for bit."""
+    from firnline import tiles
+    from firnline.model import prepare
+    d, t, p = record()
+    write_dem(tmp_path / "dem.tif", ramp(30, 4, 3300.0, 2000.0))
+    write_station(tmp_path / "station.csv", t=t, p=p)
+    z2 = 2800.0
+    t2 = t + LAPSE * (z2 - Z_ST) + 0.7
+    t2[[40, 41, 500]] = np.nan
+    pd.DataFrame({"date": d.strftime("%Y-%m-%d"), "temperature_c": t2,
+                  "precipitation_mm": p * (1 + GRAD * (z2 - Z_ST))}).to_csv(tmp_path / "high.csv", index=False)
+    (tmp_path / "stations.csv").write_text(f"station,x,y,elevation_m,file\nlow,600010,5149000,{Z_ST},station.csv\n"
+                                           f"high,600190,5148600,{z2},high.csv\n")
+    sec = sections({"stations": "stations.csv"})
+    sec["snow"] = {"spinup_years": 1, "redistribution": "gravitational", "refreezing": "cold-content",
+                   "firn_years": 3, "min_slide_slope_deg": 10.0}
+    cfg = firnline.load_config(write_config(tmp_path / "net.toml", sec))
+    setup = prepare(cfg)
+    whole = firnline.run(cfg, setup=setup)
+    assert whole.kernel is not None and whole.kernel.sums.shape[3] == 2
+    monkeypatch.setattr(tiles, "BLOCK_BYTES", 1)
+    yearly = firnline.run(cfg, setup=setup)
+    assert yearly.kernel is None                      # the record ran in two blocks
+    for name in whole.fields.data_vars:
+        assert np.array_equal(whole.fields[name].values, yearly.fields[name].values, equal_nan=True), name
+    assert np.nanmax(np.abs(whole.fields["redistribution"].values)) > 0
+    for table in ("summary", "profiles", "gradients", "water_budget"):
+        pd.testing.assert_frame_equal(getattr(whole, table), getattr(yearly, table), check_exact=True)
+    np.testing.assert_array_equal(whole.runoff.discharge_m3s, yearly.runoff.discharge_m3s)

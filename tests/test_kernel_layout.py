@@ -198,6 +198,43 @@ def test_cell_mode_equals_station_mode(builders, method, monkeypatch):
     np.testing.assert_array_equal(cell7.snow_end, cell.snow_end)
 
 
+@pytest.mark.parametrize("mode", ["station", "cells"])
+@pytest.mark.parametrize("edges", [[0, 1, 2, 3], [0, 2, 3]])
+def test_blocks_of_years_equal_one_pass_over_the_record(builders, mode, edges):
+    """run_kernel_years cut at balance-year edges (state, firn layers, cumulative balance and the
+    chunks' work buffers carried from block to block) gives every per-year value, the daily sums,
+    the storage at each block's start, the final state and the snapshots of one run_kernel call
+    bit for bit, with refreezing and firn layers on."""
+    z, ice, T, P, month, doy, year, winter, table = relief_case(n_cells=K.CHUNK_CELLS + 41, n_years=3)
+    p = builders.kernel_params(**PARAMS, refreezing="cold-content", firn_years=2)
+    cal = Calendar(month, doy, year, winter)
+    cells = Cells(z, ice, table, region=(np.arange(z.size) % 3 == 0).astype(np.int32),
+                  area_m2=np.full(z.size, 900.0), n_glaciers=1)
+
+    def forcing():
+        return StationForcing(T, P, 1200.0) if mode == "station" else StationAtCells(z, 1200.0, T, P, month, p)
+    snaps = [0, 30, 400, T.size]
+    one = run_kernel(cells, cal, forcing(), p, SCENARIOS, snapshot_days=snaps)
+    blocks = list(K.run_kernel_years(cells, cal, forcing(), p, SCENARIOS, snapshot_days=snaps, year_edges=edges))
+    assert [b.first_year for b in blocks] == edges[:-1]
+    for name in ("sums", "snow_end", "firn_end", "storage_end"):
+        axis = 3 if name == "sums" else 1
+        np.testing.assert_array_equal(np.concatenate([getattr(b, name) for b in blocks], axis=axis),
+                                      getattr(one, name), err_msg=name)
+    assert one.sums[:, Flux.REFREEZING].max() > 0 and one.firn_end.max() > 0
+    np.testing.assert_allclose(np.concatenate([b.daily for b in blocks], axis=1), one.daily, rtol=1e-12, atol=1e-9)
+    for b in blocks:
+        start = one.storage_start if b.first_year == 0 else one.storage_end[:, b.first_year - 1]
+        np.testing.assert_array_equal(b.storage_start, start)
+        np.testing.assert_array_equal(b.year_days, one.year_days[b.first_year:b.first_year + b.sums.shape[3]])
+    np.testing.assert_array_equal(blocks[-1].state_final, one.state_final)
+    np.testing.assert_array_equal(blocks[1].state_initial, blocks[0].state_final)
+    np.testing.assert_array_equal(blocks[-1].snapshots, one.snapshots)
+    assert all(b.snapshots is None for b in blocks[:-1])
+    with pytest.raises(ValueError, match="year_edges"):
+        next(K.run_kernel_years(cells, cal, forcing(), p, year_edges=[0, 2, 2, 3]))
+
+
 def test_cell_mode_rejects_a_block_of_the_wrong_shape(builders):
     z, ice, _, _, month, doy, year, winter, _ = relief_case(n_cells=10, n_years=1)
 

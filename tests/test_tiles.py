@@ -114,6 +114,28 @@ def test_columns_of_a_selection_are_those_of_the_dense_renumbering():
         assert got.n_cells == sub.size
 
 
+def test_columns_of_a_range_of_cells_are_those_of_the_selection_and_blend_alike():
+    """Columns.cell_range(c0, c1) (the slices a block's fields are made in) gives the columns of
+    Columns.select(arange(c0, c1)) and their indices, and blending a slice gives those cells'
+    values of the whole blend bit for bit."""
+    from firnline.model import Columns
+
+    rng = np.random.default_rng(8)
+    n = 2000
+    pos = [np.sort(rng.choice(n, rng.integers(1, 200), replace=False)) for _ in range(25)]
+    cols = Columns.build(n, pos, [rng.uniform(0.05, 1.0, p.size) for p in pos])
+    values = rng.normal(size=(3, cols.n))
+    whole = cols.blend(values)
+    for c0, c1 in ((0, 0), (0, 1), (5, 6), (17, 900), (900, n), (0, n)):
+        part, keep = cols.cell_range(c0, c1)
+        ref = cols.select(np.arange(c0, c1))
+        for name in ("cell", "share", "ice", "region"):
+            np.testing.assert_array_equal(getattr(part, name), getattr(ref, name))
+        np.testing.assert_array_equal(cols.share[keep], part.share)
+        assert np.all(cols.cell[keep] - c0 == part.cell) and part.n_cells == c1 - c0
+        np.testing.assert_array_equal(part.blend(values[:, keep]), whole[:, c0:c1])
+
+
 def test_exact_sums_are_the_same_integers_on_the_dense_and_the_sparse_path():
     """The dense (key, exponent) table and the sorted path give the same sums, bit for bit,
     for terms with zeros, subnormals, both signs, an infinity and 600 binary orders of

@@ -54,13 +54,15 @@ class Estimate:
 
 
 def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_m: float = 50.0,
-             glaciers: int = 1, radiation_sectors: int | None = None, unit_cells: int | None = None) -> Estimate:
+             glaciers: int = 1, radiation_sectors: int | None = None, unit_cells: int | None = None,
+             returned: bool = False) -> Estimate:
     """Peak memory of a run, bytes (see the module docstring for what is counted).
 
     ``unit_cells``: the cells of one unit of work when the run's per-year maps are streamed
     (``firnline run``: :mod:`firnline.yearmaps` holds at most :data:`~firnline.yearmaps.SPILL_BYTES`
-    of them, the rest goes to a file), so the kernel's per-year results are one unit's; None
-    counts every year of every cell (a sweep keeps every scenario's maps).
+    of them, the rest goes to a file), so the kernel's per-year results are one unit's block of
+    years; ``returned``: units run in other processes and send back every year of their fields;
+    None counts every year of every cell (a sweep keeps every scenario's maps).
     """
     from .yearmaps import SPILL_BYTES, STRIP_BYTES
 
@@ -72,7 +74,8 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
         b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
     else:
         unit = min(unit_cells, cells)
-        b += unit * scenarios * (_STATE_BYTES_PER_CELL_SCENARIO + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
+        b += unit * (scenarios * _STATE_BYTES_PER_CELL_SCENARIO + _UNIT_INPUT_BYTES_PER_CELL)
+        b += _unit_year_bytes(unit, years, scenarios, returned)
         b += min(cells * max(years, 1) * 4 * _MAPS, SPILL_BYTES) + 2 * STRIP_BYTES
         b += scenarios * 366 * max(years, 1) * (glaciers + 2) * N_DAILY * 8     # the run's daily region sums
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
@@ -130,24 +133,47 @@ def check(est: Estimate, available: int | None = None) -> None:
 
 
 # one unit of a tiled run (firnline.tiles) in one worker process: its setup cut, kernel state and
-# running sums per surface column, and per year the kernel's results, the unit's per-year
-# fields (8 maps float32) and their copies in the merge (generous, as above)
-_UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO
-_UNIT_BYTES_PER_CELL_YEAR = _KERNEL_BYTES_PER_CELL_YEAR + 4 * 8 * 2
+# running sums per surface column, and one block of years (firnline.tiles.block_years) of the
+# kernel's results, fields and temporaries (generous, as above). _UNIT_INPUT_BYTES_PER_CELL: the
+# unit's two cuts of the setup (its cells, and its cells with those upslope of them for sliding
+# snow: elevation, indices, columns, routing links), the kernel's per-column inputs and the
+# slide's buffers; a 2048 x 2048 unit of benchmarks/region.py measured about 3 GB over one year
+_UNIT_INPUT_BYTES_PER_CELL = 300
+_UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO + _UNIT_INPUT_BYTES_PER_CELL
+_RETURNED_BYTES_PER_CELL_YEAR = 4 * 8 * 2      # a unit's fields sent back: 8 maps float32, and their copy
+
+
+def _unit_year_bytes(cells: int, years: int, scenarios: int, returned: bool) -> int:
+    """The per-year memory of a unit: one block of years, and every year of its fields when they
+    are sent back from another process (``returned``) rather than placed block by block."""
+    from .tiles import _BLOCK_BYTES_PER_COLUMN_YEAR, block_years
+    b = cells * scenarios * block_years(cells, years) * _BLOCK_BYTES_PER_COLUMN_YEAR
+    if returned:
+        b += cells * scenarios * max(years, 1) * _RETURNED_BYTES_PER_CELL_YEAR
+    return b
 
 
 def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1,
-               glaciers: int = 1) -> tuple[int, int]:
+               glaciers: int = 1, returned: bool = False) -> tuple[int, int]:
     """Peak memory of one unit's task (bytes) and its cells: a DEM smaller than a unit is one unit.
 
-    Besides the per-cell terms, a unit holds the daily region sums of its own glaciers (days x
-    regions x :data:`~firnline.kernel.N_DAILY` terms, float64, per thread and summed: counted
-    three times), taken as its share of the DEM's glaciers plus 16."""
+    Besides the per-cell terms and one block of years (``returned``: and every year of the fields
+    a unit in another process sends back), a unit holds the daily region sums of its own glaciers
+    (days x regions x :data:`~firnline.kernel.N_DAILY` terms, float64, per thread and summed:
+    counted once for the whole record and three times for a block of years), taken as its share of the
+    DEM's glaciers plus 16."""
+    from .tiles import block_years
     cells = min(int(tile_size), shape[0]) * min(int(tile_size), shape[1])
-    b = _FIXED_BYTES + cells * scenarios * (_UNIT_BYTES_PER_CELL + max(years, 1) * _UNIT_BYTES_PER_CELL_YEAR)
+    b = _FIXED_BYTES + cells * scenarios * _UNIT_BYTES_PER_CELL + _unit_year_bytes(cells, years, scenarios, returned)
     mine = min(glaciers, math.ceil(glaciers * cells / max(shape[0] * shape[1], 1)) + 16)
-    b += 3 * scenarios * 366 * max(years, 1) * (mine + 2) * N_DAILY * 8
+    b += scenarios * 366 * (max(years, 1) + 3 * block_years(cells, years)) * (mine + 2) * N_DAILY * 8
     return int(b), cells
+
+
+def _returned(compute, shape: tuple[int, int]) -> bool:
+    """Whether the units of ``[compute]`` run in other processes (their fields come back whole)."""
+    n_units = -(-shape[0] // compute.tile_size) * -(-shape[1] // compute.tile_size)
+    return n_units > 1 and (compute.scheduler != "local" or compute.workers > 1)
 
 
 def check_unit(compute, shape: tuple[int, int], years: int, scenarios: int = 1,
@@ -157,13 +183,14 @@ def check_unit(compute, shape: tuple[int, int], years: int, scenarios: int = 1,
     avail = available_bytes() if available is None else available
     if avail is None:
         return
-    need, cells = unit_bytes(compute.tile_size, shape, years, scenarios, glaciers)
+    returned = _returned(compute, shape)
+    need, cells = unit_bytes(compute.tile_size, shape, years, scenarios, glaciers, returned)
     n_units = -(-shape[0] // compute.tile_size) * -(-shape[1] // compute.tile_size)
     at_once = min(compute.workers, n_units) if compute.scheduler == "local" else 1
     if need * at_once <= avail:
         return
-    fits = [t for t in (4096, 2048, 1024, 512, 256, 128, 64, 32, 16)
-            if t < compute.tile_size and unit_bytes(t, shape, years, scenarios, glaciers)[0] * at_once <= avail]
+    fits = [t for t in (4096, 2048, 1024, 512, 256, 128, 64, 32, 16) if t < compute.tile_size
+            and unit_bytes(t, shape, years, scenarios, glaciers, returned)[0] * at_once <= avail]
     fix = (f"set [compute] tile_size to {fits[0]} or less" if fits else
            "free memory or use a machine with more (even a unit of 16 x 16 cells does not fit)")
     workers = f" ({at_once} workers at once: {_gb(need * at_once)})" if at_once > 1 else ""
@@ -193,7 +220,8 @@ def estimate_for(config, scenarios: int = 1, streamed: bool = False, sizes: tupl
     shape, years, glaciers = _header_sizes(config) if sizes is None else sizes
     sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
     unit = unit_bytes(config.compute.tile_size, shape, years, scenarios)[1] if streamed else None
-    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit)
+    return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit,
+                    returned=_returned(config.compute, shape))
 
 
 def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:

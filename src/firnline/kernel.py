@@ -128,6 +128,9 @@ scenarios x cells, float64), results (seasons x fluxes x scenarios x years x cel
 and the daily region sums (threads x
 scenarios x days x regions x terms, float64, only when asked for); no (days x cells) array is
 ever made in station mode, and at most one block of :data:`CELL_BLOCK_BYTES` in cell mode.
+:func:`run_kernel_years` makes the results and daily sums a block of balance years at a time
+(the state carried from block to block), so a caller that drops each block holds one block's
+years, not the record's.
 """
 
 from __future__ import annotations
@@ -136,7 +139,7 @@ import dataclasses
 from collections import namedtuple
 from dataclasses import dataclass
 from enum import IntEnum
-from typing import Callable, Protocol, Sequence
+from typing import Callable, Iterator, Protocol, Sequence
 
 import numba
 import numpy as np
@@ -549,6 +552,9 @@ class KernelResult:
     #: the glaciers (setup order) of the daily sums' glacier regions, when only some are kept
     #: (``simulate(local_regions=True)``); None: every glacier, in order
     region_ids: np.ndarray | None = None
+    #: the index of the first balance year of ``sums`` (and the other per-year arrays) in the record:
+    #: 0, or a block's first year (:func:`run_kernel_years`, :meth:`year_block`)
+    first_year: int = 0
 
     def released(self) -> np.ndarray:
         """Water released per balance year (snow, firn and ice origins), (scenarios, years, cells)."""
@@ -581,7 +587,8 @@ class KernelResult:
         return dataclasses.replace(self, sums=self.sums[:, :, :, a:b], snow_end=cut(self.snow_end),
                                    firn_end=cut(self.firn_end), storage_end=cut(self.storage_end),
                                    storage_start=start, daily=None, snapshots=None,
-                                   year_days=None if self.year_days is None else self.year_days[a:b])
+                                   year_days=None if self.year_days is None else self.year_days[a:b],
+                                   first_year=self.first_year + a)
 
     def spinup_days_of(self, n_years: int) -> int:
         return int(np.sum(self.year_days[:n_years]))
@@ -1460,7 +1467,8 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                scenarios: Scenarios | None = None, snapshot_days: Sequence[int] | None = None,
                progress: Callable[[int], None] | None = None, slide: Slide | None = None,
                daily: bool = True) -> KernelResult:
-    """Run the daily balance over a record.
+    """Run the daily balance over a record (every year in one :class:`KernelResult`; see
+    :func:`run_kernel_years` for blocks of years).
 
     Parameters
     ----------
@@ -1489,6 +1497,27 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     Returns
     -------
     KernelResult
+    """
+    return next(run_kernel_years(cells, calendar, forcing, params, scenarios, snapshot_days, progress, slide,
+                                 daily))
+
+
+def run_kernel_years(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
+                     scenarios: Scenarios | None = None, snapshot_days: Sequence[int] | None = None,
+                     progress: Callable[[int], None] | None = None, slide: Slide | None = None,
+                     daily: bool = True, year_edges: Sequence[int] | None = None) -> Iterator[KernelResult]:
+    """Run the daily balance over a record, one block of balance years at a time.
+
+    Takes the arguments of :func:`run_kernel`, and ``year_edges``: ascending balance-year
+    indices 0 = e0 < e1 < ... < en = ``calendar.n_years`` (default ``[0, n_years]``, one
+    block). Yields one :class:`KernelResult` per block ``e(k) .. e(k+1) - 1``, made as the
+    record reaches its end: the per-year arrays, ``daily`` and ``year_days`` hold the block's
+    years and days only (``first_year`` is ``e(k)``), ``state_initial`` / ``storage_start``
+    are the state / storage at the block's start and ``state_final`` the state at its end; the
+    snapshots come with the last block. The state, the firn layers and the chunks' work
+    buffers carry over from block to block, so every value equals that of one call over the
+    whole record bit for bit, and a caller that drops each block after use holds one block of
+    years, not all of them.
     """
     scenarios = scenarios if scenarios is not None else Scenarios.uniform()
     n = cells.n
@@ -1532,58 +1561,80 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
     par = _param_values(params, cells.n_glaciers, daily, weighted)
     scen = ScenarioArrays(warming=scenarios.warming_k, precip_scale=scenarios.precip_scale)
 
+    edges_y = [0, n_years] if year_edges is None else [int(e) for e in year_edges]
+    if edges_y[0] != 0 or edges_y[-1] != n_years or len(edges_y) < 2 \
+            or (n_years and any(b <= a for a, b in zip(edges_y[:-1], edges_y[1:]))):
+        raise ValueError(f"year_edges must rise from 0 to the calendar's {n_years} balance years")
+    year = np.asarray(calendar.year_index, dtype=np.int64)
+    if np.any(np.diff(year) < 0):
+        raise ValueError("the calendar's balance-year index must not decrease")
+    day_edges = np.searchsorted(year, edges_y, side="left")
+    day_edges[-1] = n_days
+    region_area = np.concatenate([np.bincount(region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
+                                  [float(np.sum(area * weight))]])
+    year_days_all = np.bincount(year, minlength=n_years)
+
     state = np.zeros((N_STATE, ns, n), dtype="float64")
-    state_initial = state.copy()
     carry = station is None or slide is not None
     n_threads = numba.get_num_threads()
     out = Targets(state=state,
                   work=np.zeros((ns, -(-n // CHUNK_CELLS) * K_LEN) if carry else (1, 1)),
                   cum=np.zeros((ns, n)),
-                  sums=np.zeros((N_SEASON, N_FLUX, ns, n_years, n), dtype="float32"),
-                  snow_end=np.zeros((ns, n_years, n), dtype="float32"),
+                  sums=None, snow_end=None,
                   snapshots=np.zeros((max(len(snaps), 1), ns, n)),
                   layers=np.zeros((max(int(params.firn_years), 1), ns, n) if params.firn_years else (1, 1, 1)),
-                  firn_end=np.zeros((ns, n_years, n), dtype="float32"),
-                  storage_end=np.zeros((ns, n_years, n)),
-                  daily=np.zeros((n_threads, ns, n_days, n_regions, N_DAILY) if daily else (1, 1, 1, 1, 1)))
+                  firn_end=None, storage_end=None, daily=None)
     # a snapshot at boundary 0 is the zero balance before the first day (already zero)
-    slide_s = 0.0
-    if n and n_days:
-        with numba.parallel_chunksize(TASK_CHUNKSIZE):
-            slide_s = _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days,
-                             progress, slide, calendar)
-    daily_sums = None
-    if daily:
-        daily_sums = out.daily.sum(axis=0)
-        if not weighted:    # every catchment weight is 1: the catchment is the sum of the regions
-            daily_sums[:, :, n_regions - 1] = daily_sums[:, :, :n_regions - 1].sum(axis=2)
-    region_area = np.concatenate([np.bincount(region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
-                                  [float(np.sum(area * weight))]])
-    year_days = np.bincount(np.asarray(calendar.year_index, dtype=np.int64), minlength=n_years)
-    return KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
-                        state_final=out.state, snapshots=out.snapshots if snaps else None,
-                        year_days=year_days, firn_end=out.firn_end, storage_end=out.storage_end,
-                        storage_start=np.zeros((ns, n)), daily=daily_sums,
-                        region_area_m2=region_area, slide_seconds=slide_s)
+    storage_start = np.zeros((ns, n))
+    # the record's day boundaries of the whole call (cell blocks, slides), cut into the blocks
+    plan = _plan(station, forcing, cell_arrays, n, ns, n_days, slide, calendar) if n and n_days else None
+    for k in range(len(edges_y) - 1):
+        y0, y1 = edges_y[k], edges_y[k + 1]
+        d0, d1 = int(day_edges[k]), int(day_edges[k + 1])
+        ny_b, nd_b = y1 - y0, d1 - d0
+        out = out._replace(sums=np.zeros((N_SEASON, N_FLUX, ns, ny_b, n), dtype="float32"),
+                           snow_end=np.zeros((ns, ny_b, n), dtype="float32"),
+                           firn_end=np.zeros((ns, ny_b, n), dtype="float32"),
+                           storage_end=np.zeros((ns, ny_b, n)),
+                           daily=np.zeros((n_threads, ns, nd_b, n_regions, N_DAILY) if daily else (1, 1, 1, 1, 1)))
+        state_initial = out.state.copy()
+        slide_s = 0.0
+        if n and nd_b:
+            block_days = _slice_days(days, d0, d1)
+            block_days = block_days._replace(year=np.ascontiguousarray(block_days.year - y0),
+                                             index=np.ascontiguousarray(block_days.index - d0))
+            with numba.parallel_chunksize(TASK_CHUNKSIZE):
+                slide_s = _drive(method, station, forcing, cell_arrays, block_days, scen, par, out, n, n_days,
+                                 progress, slide, plan, d0, d1)
+        daily_sums = None
+        if daily:
+            daily_sums = out.daily.sum(axis=0)
+            if not weighted:    # every catchment weight is 1: the catchment is the sum of the regions
+                daily_sums[:, :, n_regions - 1] = daily_sums[:, :, :n_regions - 1].sum(axis=2)
+        last = k == len(edges_y) - 2
+        res = KernelResult(sums=out.sums, snow_end=out.snow_end, state_initial=state_initial,
+                           state_final=out.state if last else out.state.copy(),
+                           snapshots=out.snapshots if (snaps and last) else None,
+                           year_days=year_days_all[y0:y1], firn_end=out.firn_end, storage_end=out.storage_end,
+                           storage_start=storage_start, daily=daily_sums,
+                           region_area_m2=region_area, slide_seconds=slide_s, first_year=y0)
+        if ny_b:
+            storage_start = out.storage_end[:, -1].copy()
+        out = out._replace(sums=None, snow_end=None, firn_end=None, storage_end=None, daily=None)
+        if last:        # the record is done: its working arrays go before the caller uses the block
+            out = plan = cell_arrays = days = None
+            z = dz = orog = ice = area = weight = region = None
+        yield res
 
 
-def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress,
-           slide, calendar) -> float:
-    """The Python-level loop: groups of cells over the whole record (station mode), or segments
-    of days over all cells with the state carried between them (cell mode, and any mode with
-    snow redistribution, which moves snow between cells at the segments' boundaries).
+Plan = namedtuple("Plan", "edges slides cell_mode lin where buf")
 
-    Returns the time spent redistributing snow, s.
-    """
-    unused = np.zeros((1, 1), dtype="float32")
-    if station is not None and slide is None:
-        for c_lo in range(0, n, GROUP_CELLS):
-            c_hi = min(n, c_lo + GROUP_CELLS)
-            _advance(int(method), STATION, False, True, True, cell_arrays, days, unused, unused, scen, par,
-                     c_lo, c_hi, out)
-            if progress is not None:
-                progress(int(n_days * c_hi // n))
-        return 0.0
+
+def _plan(station, forcing, cell_arrays, n, n_scen, n_days, slide, calendar) -> Plan:
+    """The day boundaries of a whole call (the record): where the driver cuts the days (cell
+    blocks, changes of the linear forcing's days, slides), the days before which snow slides,
+    the forcing mode and the slide's buffers; the same for every block of years, so blocks
+    cut the record where one call over it would, plus at their own edges."""
     edges = {0, n_days}
     cell_mode = CELL
     lin = None
@@ -1606,20 +1657,49 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
             raise ValueError("forcing.linear() must give coef (n_days, K), basis (K, n_cells), 0 < kt < K "
                              "and full (n_days,)")
         edges |= {k for k in range(1, n_days) if full[k] != full[k - 1]}
+        lin = (coef, basis, kt, full)
     slides = set(_slide_boundaries(calendar, int(slide.every_days))) if slide is not None else set()
-    edges = sorted(edges | slides)
+    where = buf = None
+    if slide is not None or station is None:
+        # each column's place in the chunks' work buffers (see _advance)
+        pos = np.empty(n, dtype=np.int64)
+        pos[cell_arrays.order] = np.arange(n)
+        where = (pos // CHUNK_CELLS) * K_LEN + pos % CHUNK_CELLS
+    if slide is not None:
+        buf = _slide_buffers(slide, n_scen, int(slide.routing.n_cells), where)
+    return Plan(sorted(edges | slides), slides, cell_mode, lin, where, buf)
+
+
+def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_days, progress,
+           slide, plan: Plan, d0: int, d1: int) -> float:
+    """The Python-level loop over the record's days ``d0 .. d1-1`` (``days`` holds those days):
+    groups of cells over the days (station mode), or segments of days over all cells with the
+    state carried between them (cell mode, and any mode with snow redistribution, which moves
+    snow between cells at the segments' boundaries). The state is in ``out.state`` after the
+    last day.
+
+    Returns the time spent redistributing snow, s.
+    """
+    unused = np.zeros((1, 1), dtype="float32")
+    if station is not None and slide is None:
+        for c_lo in range(0, n, GROUP_CELLS):
+            c_hi = min(n, c_lo + GROUP_CELLS)
+            _advance(int(method), STATION, False, True, True, cell_arrays, days, unused, unused, scen, par,
+                     c_lo, c_hi, out)
+            if progress is not None:
+                progress(int(d0 + (d1 - d0) * c_hi // n))
+        return 0.0
+    edges = sorted({d0, d1} | {e for e in plan.edges if d0 < e < d1})
     slide_s = 0.0
-    n_cells = int(slide.routing.n_cells) if slide is not None else 0
-    # each column's place in the chunks' work buffers (see _advance)
-    pos = np.empty(n, dtype=np.int64)
-    pos[cell_arrays.order] = np.arange(n)
-    where = (pos // CHUNK_CELLS) * K_LEN + pos % CHUNK_CELLS
-    buf = _slide_buffers(slide, out.state.shape[1], n_cells, where) if slide is not None else None
+    lin = plan.lin
     for a, b in zip(edges[:-1], edges[1:]):
-        if a in slides:
-            slide_s += _slide(slide, buf, out, int(days.season[a]), where)
-        if lin is not None and full[a]:
-            _advance(int(method), LINEAR, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+        if a in plan.slides:
+            slide_s += _slide(slide, plan.buf, out, int(days.season[a - d0]), plan.where)
+        local = _slice_days(days, a - d0, b - d0)
+        first, last = a == 0, b == d1
+        if lin is not None and lin[3][a]:
+            coef, basis, kt, _ = lin
+            _advance(int(method), LINEAR, True, first, last, cell_arrays, local,
                      np.ascontiguousarray(coef[a:b]), basis, scen, par, 0, n, out, int(kt))
         elif station is None:
             t, p = forcing.block(a, b)
@@ -1627,10 +1707,10 @@ def _drive(method, station, forcing, cell_arrays, days, scen, par, out, n, n_day
             p = np.ascontiguousarray(p, dtype="float32")
             if t.shape != (b - a, n) or p.shape != (b - a, n):
                 raise ValueError(f"forcing.block({a}, {b}) must return two ({b - a}, {n}) arrays")
-            _advance(int(method), cell_mode, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+            _advance(int(method), plan.cell_mode, True, first, last, cell_arrays, local,
                      t, p, scen, par, 0, n, out)
         else:
-            _advance(int(method), STATION, True, a == 0, b == n_days, cell_arrays, _slice_days(days, a, b),
+            _advance(int(method), STATION, True, first, last, cell_arrays, local,
                      unused, unused, scen, par, 0, n, out)
         if progress is not None:
             progress(b)

@@ -269,24 +269,28 @@ def _key(slot: int, quantity: int, band) -> np.ndarray:
     return ((slot * _NQ + quantity) << _BAND_BITS) + np.asarray(band, dtype=np.int64) + _BAND_OFFSET
 
 
-def glacier_sums(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m) -> exact.Sums:
+def glacier_sums(z_m, area_m2, annual_mwe, winter_mwe, summer_mwe, band_width_m,
+                 first_year: int = 0) -> exact.Sums:
     """The exact sums of a glacier's cells (or of some of them) behind :func:`glacier_years_from_sums`.
 
     ``z_m`` and ``area_m2`` (n_cells,); the balances (n_years, n_cells) m w.e. Sums of parts of
     a glacier (the units of a tiled run) merged with :func:`firnline.exact.merge` equal the sums
-    of the whole glacier exactly.
+    of the whole glacier exactly; so do those of blocks of years, the balances then being years
+    ``first_year ..`` of the record (the areas are counted with the block of year 0 only).
     """
     z = np.asarray(z_m, dtype="float64")
     a = np.asarray(area_m2, dtype="float64")
     cb = _band_index(z, band_width_m)
     fb = _band_index(z, min(FINE_BAND_M, band_width_m))
-    parts = [exact.of(np.concatenate([_key(0, _AREA, np.zeros(z.size, np.int64)), _key(0, _CB_AREA, cb),
-                                      _key(0, _CB_Z, cb), _key(0, _FB_AREA, fb), _key(0, _FB_Z, fb)]),
-                      np.concatenate([a, a, a * z, a, a * z]))]
+    parts = []
+    if first_year == 0:
+        parts.append(exact.of(np.concatenate([_key(0, _AREA, np.zeros(z.size, np.int64)), _key(0, _CB_AREA, cb),
+                                              _key(0, _CB_Z, cb), _key(0, _FB_AREA, fb), _key(0, _FB_Z, fb)]),
+                              np.concatenate([a, a, a * z, a, a * z])))
     zero = np.zeros(z.size, np.int64)
     for y, (b, w, s) in enumerate(zip(annual_mwe, winter_mwe, summer_mwe)):
         b = np.asarray(b, dtype="float64")
-        slot = y + 1
+        slot = first_year + y + 1
         keys = [_key(slot, _TOTALS, zero + q) for q in (_ANNUAL, _WINTER, _SUMMER, _POSITIVE)]
         vals = [a * b, a * np.asarray(w, dtype="float64"), a * np.asarray(s, dtype="float64"), np.where(b > 0, a, 0.0)]
         parts.append(exact.of(np.concatenate(keys + [_key(slot, _CB_BAL, cb), _key(slot, _FB_BAL, fb)]),

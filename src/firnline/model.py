@@ -20,7 +20,7 @@ import functools
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -42,7 +42,7 @@ from .kernel import (
     Season,
     Slide,
     StationForcing,
-    run_kernel,
+    run_kernel_years,
 )
 from .metrics import YearMetrics, glacier_sums, glacier_years_from_sums
 from .progress import Progress, stage
@@ -149,6 +149,20 @@ class Columns:
         cell = np.concatenate([np.arange(sub.size, dtype=np.int64), np.searchsorted(sub, self.cell[extra])])
         return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep],
                        region=self.region[keep], n_cells=int(sub.size))
+
+    def cell_range(self, c0: int, c1: int) -> tuple["Columns", np.ndarray]:
+        """The columns of cells ``c0 .. c1-1`` (renumbered from 0) and their indices here, in
+        column order: a slice of the cells for work in bounded pieces (:meth:`blend` of the
+        slice gives those cells' values bit for bit)."""
+        extra = np.zeros(0, dtype=np.int64)
+        if self.n > self.n_cells and c1 > c0:
+            cells_sorted, cols_sorted = self._extra_by_cell
+            lo, hi = np.searchsorted(cells_sorted, [c0, c1], side="left")
+            extra = np.sort(cols_sorted[lo:hi])
+        keep = np.concatenate([np.arange(c0, c1, dtype=np.int64), extra])
+        cell = np.concatenate([np.arange(c1 - c0, dtype=np.int64), self.cell[extra] - c0])
+        return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep], region=self.region[keep],
+                       n_cells=int(c1 - c0)), keep
 
     def blend(self, values: np.ndarray) -> np.ndarray:
         """Per-cell area means (..., n_cells) of per-column values (..., n_cols), by share."""
@@ -611,6 +625,26 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         catchment; ``KernelResult.region_ids`` names their glaciers (a unit of a tiled run: days x
         its few glaciers, not days x every glacier of the setup, in each thread).
     """
+    return next(simulate_years(setup, config, warming_k, precip_change_pct, progress, snapshot_days, cells,
+                               scenarios, catchment_weight, daily, local_regions))
+
+
+def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequence[float] = (0.0,),
+                   precip_change_pct: Sequence[float] = (0.0,), progress: Progress = None,
+                   snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
+                   scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None,
+                   daily: bool = True, local_regions: bool = False,
+                   block_years: int | None = None) -> Iterator[KernelResult]:
+    """:func:`simulate` (same arguments) in blocks of ``block_years`` balance years of the record.
+
+    Yields one :class:`~firnline.kernel.KernelResult` per block, in order, as the kernel reaches
+    the block's end (:func:`firnline.kernel.run_kernel_years`): its per-year arrays, daily sums
+    and ``year_days`` are the block's (``first_year`` its first year in the record; the spin-up
+    years are run first and not yielded), the snapshots come with the last block, and every
+    value equals that of :func:`simulate` bit for bit. A caller that drops each block holds the
+    kernel's results of ``block_years`` years at a time. None: one block of the whole record
+    (what :func:`simulate` returns).
+    """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
     keep = None
@@ -678,24 +712,36 @@ def simulate(setup: Setup, config: Config | None = None, warming_k: Sequence[flo
         slide = Slide(setup.routing, cols.cell, cols.share)
     asked = None if snapshot_days is None else sorted(set(int(k) for k in snapshot_days))
     snaps = None if asked is None else sorted({k + spin.size for k in asked} | {int(spin.size)})
-    kres = run_kernel(kcells, calendar, forcing, params, scenarios, snapshot_days=snaps,
-                      progress=stage(progress, "days", calendar.n_days), slide=slide,
-                      daily=daily)
-    if halo is not None and daily:
-        kres = dataclasses.replace(kres, daily=np.delete(kres.daily, n_gl, axis=2),
-                                   region_area_m2=np.delete(kres.region_area_m2, n_gl))
-    if spin.size:
-        kres = kres.after_spinup(n_spin_years)
-    if asked is not None:
-        # balances since the start of the record (the end of the spin-up)
-        ref = kres.snapshots[snaps.index(int(spin.size))]
-        kres = dataclasses.replace(kres, snapshots=np.stack([kres.snapshots[snaps.index(k + spin.size)] - ref
-                                                             for k in asked]))
-    if keep is not None:
-        kres = kres.columns(keep)
-    if region_ids is not None:
-        kres = dataclasses.replace(kres, region_ids=region_ids)
-    return kres
+    n_total = calendar.n_years
+    edges = None
+    if block_years is not None:
+        step = max(1, int(block_years))
+        edges = sorted({0, n_spin_years, n_total} | set(range(n_spin_years, n_total, step)))
+    for kres in run_kernel_years(kcells, calendar, forcing, params, scenarios, snapshot_days=snaps,
+                                 progress=stage(progress, "days", calendar.n_days), slide=slide,
+                                 daily=daily, year_edges=edges):
+        if edges is not None and kres.first_year < n_spin_years:
+            continue                # a block of the spin-up
+        if edges is None or kres.first_year + kres.sums.shape[3] == n_total:
+            # the last block: the run's inputs go before the caller uses it
+            setup = cols = kcells = forcing = slide = rad = weight = region = None
+        if halo is not None and daily:
+            kres = dataclasses.replace(kres, daily=np.delete(kres.daily, n_gl, axis=2),
+                                       region_area_m2=np.delete(kres.region_area_m2, n_gl))
+        if edges is None and spin.size:
+            kres = kres.after_spinup(n_spin_years)
+        elif edges is not None:
+            kres = dataclasses.replace(kres, first_year=kres.first_year - n_spin_years)
+        if asked is not None and kres.snapshots is not None:
+            # balances since the start of the record (the end of the spin-up)
+            ref = kres.snapshots[snaps.index(int(spin.size))]
+            kres = dataclasses.replace(kres, snapshots=np.stack([kres.snapshots[snaps.index(k + spin.size)] - ref
+                                                                 for k in asked]))
+        if keep is not None:
+            kres = kres.columns(keep)
+        if region_ids is not None:
+            kres = dataclasses.replace(kres, region_ids=region_ids)
+        yield kres
 
 
 # ----------------------------------------------------------------------------
@@ -781,15 +827,17 @@ def column_fields(kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray
     return out
 
 
-def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0) -> dict[str, np.ndarray]:
+def cell_fields(setup: Setup, kres: KernelResult, scenario: int = 0,
+                columns: Columns | None = None) -> dict[str, np.ndarray]:
     """Per-year per-cell fields of one scenario, m w.e., each (n_years, n_cells) float32.
 
     The balances are those of each cell's glacier surface (its first column); accumulation,
     ablation, snow at the year end (snow + firn), refreezing and the net gain by sliding snow
     are area means over the whole cell, its columns blended by share (:meth:`Columns.blend`).
+    ``columns``: the columns of ``kres`` when not the setup's (a :meth:`Columns.cell_range`).
     """
     s = scenario
-    cols = setup.surface_columns
+    cols = setup.surface_columns if columns is None else columns
     n = cols.n_cells
     c = column_fields(kres, s)
     k = 1e-3  # mm w.e. -> m w.e. (1 kg m-2 = 1 mm w.e.; common practice)
@@ -819,12 +867,14 @@ def water_budget(setup: Setup, kres: KernelResult, scenario: int = 0,
 
 
 def water_budget_sums(setup: Setup, kres: KernelResult, scenario: int = 0,
-                      catchment_weight: np.ndarray | None = None, first_year: int = 0):
+                      catchment_weight: np.ndarray | None = None, first_year: int = 0,
+                      columns: Columns | None = None):
     """The exact region sums of :func:`water_budget` (:func:`firnline.water_budget.budget_sums`); the
     sums of the units of a tiled run (each a :meth:`Setup.select`) merge into those of the whole run,
-    and so do those of blocks of years (``kres`` a :meth:`KernelResult.year_block` from ``first_year``)."""
+    and so do those of blocks of years (``kres`` a :meth:`KernelResult.year_block` from ``first_year``)
+    and of slices of the cells (``columns`` a :meth:`Columns.cell_range`, ``catchment_weight`` its cells')."""
     from . import water_budget as wb
-    cols = setup.surface_columns
+    cols = setup.surface_columns if columns is None else columns
     s = scenario
     if catchment_weight is None:
         catchment_weight = setup.catchment_weight
@@ -841,13 +891,14 @@ def glacier_metrics(setup: Setup, fields: dict[str, np.ndarray], years: Sequence
             for name, sums in zip(setup.glaciers.names, glacier_part_sums(setup, fields))}
 
 
-def glacier_part_sums(setup: Setup, fields: dict[str, np.ndarray], parts=None) -> list:
+def glacier_part_sums(setup: Setup, fields: dict[str, np.ndarray], parts=None, first_year: int = 0) -> list:
     """The exact sums behind the metrics of glaciers (:func:`firnline.metrics.glacier_sums`).
 
     ``fields`` are per-cell fields (:func:`cell_fields`) over some cells; each of ``parts`` is
     ``(g, local, pos, share)``: glacier ``g``'s cells among them as positions in ``fields``, in
     ``setup.cells`` and in ``glaciers.fractions[g]``; default: every glacier with all its cells
-    (``setup.glacier_pos``). Sums of parts merge exactly (:func:`firnline.exact.merge`).
+    (``setup.glacier_pos``). Sums of parts merge exactly (:func:`firnline.exact.merge`), and so do
+    those of blocks of years (``fields`` of years ``first_year ..``).
     """
     gl = setup.glaciers
     area = setup.grid.cell_area_m2
@@ -857,7 +908,7 @@ def glacier_part_sums(setup: Setup, fields: dict[str, np.ndarray], parts=None) -
     out = []
     for g, local, pos, share in parts:
         b = [fields[k][:, local] for k in ("annual_balance", "winter_balance", "summer_balance")]
-        out.append(glacier_sums(setup.z_m[pos], gl.fractions[g][share] * area, *b, bw))
+        out.append(glacier_sums(setup.z_m[pos], gl.fractions[g][share] * area, *b, bw, first_year))
     return out
 
 

@@ -14,9 +14,14 @@ every cell upslope of them, so the unit's cells are exact) and returns
 * its daily region volumes (runoff), added in unit order: equal to the untiled run to float
   rounding only (the kernel itself adds them per thread, in the order threads finish).
 
-The fields go into the run's :class:`firnline.yearmaps.YearMaps` as each unit arrives
-(:class:`Collector`), in memory or, for a large run, into a chunked file read lazily, so the run
-holds one unit's results at a time. Terrain, horizons and the radiation table are computed once
+A unit runs a block of balance years at a time (:func:`block_years`,
+:func:`firnline.model.simulate_years`; the kernel's state carried from block to block, every
+value that of one pass), and makes each block's fields and sums before the next block runs,
+so its memory does not grow with the years. The fields go into the run's
+:class:`firnline.yearmaps.YearMaps` block by block on the synchronous path
+(:meth:`Collector.put`), or as each unit arrives from a dask worker (:meth:`Collector.add`), in
+memory or, for a large run, into a chunked file read lazily, so the run holds one unit's
+results at a time. Terrain, horizons and the radiation table are computed once
 for the whole DEM by :func:`firnline.model.prepare` (no per-unit halo yet).
 
 Scheduling (:func:`run_units`): a run of one unit, or with ``workers = 1``, runs in this
@@ -38,6 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import exact
+from .kernel import N_FLUX, N_SEASON
 from .outdir import pause_point
 from .progress import Progress
 from .yearmaps import YearMaps, on_glaciers_only
@@ -112,10 +118,48 @@ def make_units(setup, tile_size: int, positions: np.ndarray | None = None) -> li
     return units
 
 
-#: A unit's fields and budget terms are made in blocks of years whose float64 temporaries take
-#: about this much (:func:`run_unit`).
+#: A unit runs in blocks of balance years whose kernel results and fields take about this much
+#: (:func:`block_years`), and makes a block's fields and budget terms in slices of its cells whose
+#: float64 temporaries take about as much: the unit's memory does not grow with the years.
 BLOCK_BYTES = 256 * 2**20
-_TEMP_BYTES_PER_COLUMN_YEAR = 8 * 40       # the float64 arrays of cell_fields and column_budget
+# per column and year of a block: the kernel's results (season x flux sums and year-end snow and
+# firn float32, year-end storage float64) and the fields (8 float32)
+_BLOCK_BYTES_PER_COLUMN_YEAR = (4 * N_SEASON * N_FLUX + 4 + 4 + 8) + 4 * 8
+# per column and year of a slice: its cut of the kernel's results and the float64 arrays of
+# cell_fields and column_budget
+_TEMP_BYTES_PER_COLUMN_YEAR = (4 * N_SEASON * N_FLUX + 4 + 4 + 8) + 8 * 40
+
+
+def block_years(n_columns: int, n_years: int) -> int:
+    """Balance years per block of a unit of ``n_columns`` surface columns (at least one)."""
+    return max(1, min(max(n_years, 1), BLOCK_BYTES // max(1, n_columns * _BLOCK_BYTES_PER_COLUMN_YEAR)))
+
+
+def block_products(sub, kb) -> tuple[dict, object]:
+    """A block's per-cell fields (:func:`firnline.model.cell_fields`) and exact water-budget sums,
+    made in slices of the cells whose temporaries take about :data:`BLOCK_BYTES`: the same values,
+    bit for bit, as over all cells at once."""
+    from .model import cell_fields, water_budget_sums
+
+    cols = sub.surface_columns
+    n_years = kb.sums.shape[3]
+    per = max(1, BLOCK_BYTES // max(1, n_years * _TEMP_BYTES_PER_COLUMN_YEAR))
+    if per >= cols.n:
+        return cell_fields(sub, kb, 0), water_budget_sums(sub, kb, 0, first_year=kb.first_year)
+    cw = sub.catchment_weight
+    fields, budgets = {}, []
+    for c0 in range(0, cols.n_cells, per):
+        c1 = min(cols.n_cells, c0 + per)
+        part, keep = cols.cell_range(c0, c1)
+        kp = kb.columns(keep)
+        for name, v in cell_fields(sub, kp, 0, columns=part).items():
+            if name not in fields:
+                fields[name] = np.empty((n_years, cols.n_cells), dtype=v.dtype)
+            fields[name][:, c0:c1] = v
+        budgets.append(water_budget_sums(sub, kp, 0, None if cw is None else cw[c0:c1], kb.first_year,
+                                         columns=part))
+        del kp
+    return fields, exact.merge(budgets)
 
 
 @dataclass
@@ -137,13 +181,19 @@ class UnitResult:
 
 def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: float,
              threads: int | dict | None = None, progress: Progress = None, whole: bool = False,
-             keep_kernel: bool = False) -> UnitResult:
+             keep_kernel: bool = False, put=None) -> UnitResult:
     """Run one unit: the kernel over its cells, its fields and partial sums (a dask task).
 
-    ``threads``: numba threads for the task (a dict host -> threads for a remote cluster);
-    ``whole``: the unit is every cell of the setup (the run needs no cut).
+    The unit runs a block of balance years at a time (:func:`block_years`;
+    :func:`firnline.model.simulate_years`), the state carried from block to block: each block's
+    fields and sums are made, and the block dropped, before the next one runs. ``put``:
+    ``put(unit, first_year, fields)`` takes each block's fields (the synchronous path places
+    them into the run's maps at once); without it the fields of every year come back in the
+    result. ``threads``: numba threads for the task (a dict host -> threads for a remote
+    cluster); ``whole``: the unit is every cell of the setup (the run needs no cut);
+    ``keep_kernel``: keep the kernel's result when the record is one block.
     """
-    from .model import cell_fields, glacier_part_sums, simulate, water_budget_sums
+    from .model import glacier_part_sums, simulate_years
 
     if isinstance(threads, dict):
         import socket
@@ -153,34 +203,54 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
     t0 = time.perf_counter()
     cells = None if whole else unit.positions
-    kres = simulate(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells,
-                    local_regions=not whole)
-    sub = setup if whole else setup.select(unit.positions)
-    # the fields and budget terms in blocks of years (float64 temporaries of one block, not of
-    # every year); each year's values are those of the whole record, bit for bit
-    n_years, n_cols = kres.sums.shape[3], kres.sums.shape[4]
-    step = max(1, BLOCK_BYTES // max(1, n_cols * _TEMP_BYTES_PER_COLUMN_YEAR))
-    f, budgets = {}, []
-    for a in range(0, max(n_years, 1), step):
-        kb = kres.year_block(a, min(n_years, a + step))
-        for name, v in cell_fields(sub, kb, 0).items():
-            if name not in f:
-                f[name] = np.empty((n_years, v.shape[1]), dtype=v.dtype)
-            f[name][a:a + v.shape[0]] = v
-        budgets.append(water_budget_sums(sub, kb, 0, first_year=a))
-    parts = glacier_part_sums(setup, f, unit.glaciers)
-    gsums = {g: s for (g, *_), s in zip(unit.glaciers, parts)}
+    n_years = len(setup.forcing.years)
+    n_cols = setup.surface_columns.n if whole else setup.surface_columns.select(unit.positions).n
+    step = block_years(n_cols, n_years)
+    sub = None          # the unit's setup, cut once the kernel's first block is done
+    f, budgets, gparts = {}, [], {}
+    kept = region_ids = daily_all = None
+    day = 0
+    slide_s = 0.0
+    for kb in simulate_years(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells,
+                             local_regions=not whole, block_years=step):
+        a = kb.first_year
+        if sub is None:
+            sub = setup if whole else setup.select(unit.positions)
+        fb, budget = block_products(sub, kb)
+        budgets.append(budget)
+        if put is not None:
+            put(unit, a, fb)
+        else:
+            for name, v in fb.items():
+                if name not in f:
+                    f[name] = np.empty((n_years, v.shape[1]), dtype=v.dtype)
+                f[name][a:a + v.shape[0]] = v
+        for (g, *_), sums in zip(unit.glaciers, glacier_part_sums(setup, fb, unit.glaciers, first_year=a)):
+            gparts.setdefault(g, []).append(sums)
+        del fb
+        if kb.daily is not None:          # the unit's days, filled block by block
+            d = kb.daily[0]
+            if daily_all is None:
+                daily_all = d if step >= n_years else np.empty((setup.forcing.n_days,) + d.shape[1:], d.dtype)
+            if daily_all is not d:
+                daily_all[day:day + d.shape[0]] = d
+            day += d.shape[0]
+        region_ids = kb.region_ids
+        slide_s += float(kb.slide_seconds)
+        kept = kb if keep_kernel and step >= n_years else None
+        del kb
+    gsums = {g: exact.merge(parts) for g, parts in gparts.items()}
     daily = None
-    if kres.daily is not None:          # (its glaciers, ice_free, catchment) or every region (None)
+    if daily_all is not None:           # (its glaciers, ice_free, catchment) or every region (None)
         ids = None
-        if kres.region_ids is not None:
+        if region_ids is not None:
             n_gl = len(setup.glaciers.names)
-            ids = np.concatenate([kres.region_ids, [n_gl, n_gl + 1]])
-        daily = (ids, kres.daily[0])
+            ids = np.concatenate([region_ids, [n_gl, n_gl + 1]])
+        daily = (ids, daily_all)
     return UnitResult(index=unit.index, positions=unit.positions, fields=f, rows=unit.rows, cols=unit.cols,
                       glacier_sums=gsums, budget=exact.merge(budgets),
-                      daily=daily, seconds=time.perf_counter() - t0, slide_seconds=float(kres.slide_seconds),
-                      kernel=kres if keep_kernel else None)
+                      daily=daily, seconds=time.perf_counter() - t0, slide_seconds=slide_s,
+                      kernel=kept)
 
 
 @dataclass
@@ -222,6 +292,7 @@ class Collector:
     def __init__(self, setup, units: list, tile_size: int, work_dir=None, prefix: str = ".firnline-",
                  spill_bytes: int | None = None):
         self.setup, self.tile = setup, int(tile_size)
+        self.n_years = len(setup.forcing.years)
         self.work_dir, self.prefix, self.spill_bytes = work_dir, prefix, spill_bytes
         self.maps: YearMaps | None = None
         self.order = sorted(u.index for u in units)
@@ -231,18 +302,25 @@ class Collector:
         self.glacier_parts: dict = {}  # glacier -> its parts' sums
         self.budgets: list = []        # the units' water-budget sums (each of its own regions)
 
-    def add(self, r: UnitResult) -> None:
+    def put(self, unit, first_year: int, fields: dict) -> None:
+        """Place a unit's fields of balance years ``first_year ..`` (``unit``: a :class:`Unit` or
+        :class:`UnitResult`) into the run's maps."""
         setup = self.setup
         if self.maps is None:
-            first = next(iter(r.fields.values()), np.zeros((0, 0)))
-            self.maps = YearMaps(list(r.fields), first.shape[0], setup.grid.shape, (self.tile, self.tile),
+            self.maps = YearMaps(list(fields), self.n_years, setup.grid.shape, (self.tile, self.tile),
                                  self.work_dir, self.spill_bytes, self.prefix)
-        rr, cc = np.divmod(setup.cells[r.positions], setup.grid.shape[1])
-        on_glacier = setup.glacier_mask[r.positions]
-        for name, values in r.fields.items():
+        rr, cc = np.divmod(setup.cells[unit.positions], setup.grid.shape[1])
+        on_glacier = setup.glacier_mask[unit.positions]
+        for name, values in fields.items():
             if on_glaciers_only(name):
                 values = np.where(on_glacier, values, np.nan)
-            self.maps.put(name, r.rows, r.cols, rr, cc, values)
+            self.maps.put(name, unit.rows, unit.cols, rr, cc, values, first_year)
+
+    def add(self, r: UnitResult) -> None:
+        """Take a unit's result: its fields (unless :meth:`put` took them block by block), sums and
+        daily volumes."""
+        if r.fields:
+            self.put(r, 0, r.fields)
         r.fields = {}
         for g, sums in r.glacier_sums.items():
             self.glacier_parts.setdefault(g, []).append(sums)
@@ -287,7 +365,7 @@ def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 
             for k, u in enumerate(units):
                 r = run_unit(setup, config, u, warming_k, precip_change_pct,
                              progress=progress if len(units) == 1 else None, whole=whole,
-                             keep_kernel=len(units) == 1)
+                             keep_kernel=len(units) == 1, put=collect.put)
                 kernel = r.kernel
                 seconds.append((r.seconds, r.slide_seconds))
                 collect.add(r)

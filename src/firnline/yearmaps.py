@@ -92,16 +92,17 @@ class YearMaps:
         return self._spilled
 
     def put(self, name: str, rows: tuple[int, int], cols: tuple[int, int], r: np.ndarray, c: np.ndarray,
-            values: np.ndarray) -> None:
-        """Place ``values`` (n_years, n) at the cells (``r``, ``c``) of the DEM, all inside the window
-        ``rows`` x ``cols``; the window's other cells stay NaN."""
+            values: np.ndarray, first_year: int = 0) -> None:
+        """Place ``values`` (years, n) of balance years ``first_year ..`` at the cells (``r``, ``c``) of
+        the DEM, all inside the window ``rows`` x ``cols``; the window's other cells stay NaN."""
+        y0, y1 = int(first_year), int(first_year) + values.shape[0]
         if self._memory is not None:
-            self._memory[name][:, r, c] = values
+            self._memory[name][y0:y1, r, c] = values
             return
         (r0, r1), (c0, c1) = rows, cols
-        win = np.full((self.n_years, r1 - r0, c1 - c0), np.nan, dtype="float32")
+        win = np.full((y1 - y0, r1 - r0, c1 - c0), np.nan, dtype="float32")
         win[:, r - r0, c - c0] = values
-        self._file.variables[name][:, r0:r1, c0:c1] = win
+        self._file.variables[name][y0:y1, r0:r1, c0:c1] = win
 
     def arrays(self) -> dict:
         """The maps: numpy arrays in memory, or dask arrays over the spill file's chunks."""

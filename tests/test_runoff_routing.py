@@ -89,6 +89,9 @@ def test_many_reservoirs_in_one_pass_follow_the_exact_daily_solution_of_each():
             prev = now
         # volume: released + storage at the start = routed + storage at the end
         assert out[i].sum() == pytest.approx(rel[i].sum() + s0[i] - s[i, -1], rel=1e-12)
+    # the end storage alone (no storage series kept) is the last day's, and the outflow the same
+    out_end, s_end = linear_reservoirs(rel, k, s0, every_day=False)
+    assert np.array_equal(out_end, out) and np.array_equal(s_end, s[:, -1])
 
 
 def test_nse_and_kge_on_hand_made_series():

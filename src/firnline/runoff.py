@@ -98,7 +98,7 @@ def linear_reservoir(release, k_days: float, storage0: float = 0.0):
     return out[0], s[0]
 
 
-def linear_reservoirs(release, k_days, storage0=None):
+def linear_reservoirs(release, k_days, storage0=None, every_day: bool = True):
     """Route many daily series at once, each through its own linear reservoir, exactly.
 
     The same solution as :func:`linear_reservoir` (Baker et al., 1982; Hock and Noetzli,
@@ -120,7 +120,8 @@ def linear_reservoirs(release, k_days, storage0=None):
     outflow : ndarray (n_series, n_days)
         Water leaving each reservoir each day, mm d-1.
     storage : ndarray (n_series, n_days)
-        Storage at the end of each day, mm.
+        Storage at the end of each day, mm; with ``every_day=False`` at the end of the last day
+        only, (n_series,) (the storage at the start when there are no days).
     """
     r = np.asarray(release, dtype="float64")
     if r.ndim != 2:
@@ -134,16 +135,17 @@ def linear_reservoirs(release, k_days, storage0=None):
     s = np.zeros(r.shape[0]) if storage0 is None else np.array(storage0, dtype="float64").reshape(r.shape[0])
     s[pass_through] = 0.0
     rt = np.ascontiguousarray(r.T)                     # (n_days, n_series): one row a day
-    storage = np.empty_like(rt)
+    storage = np.empty_like(rt) if every_day else None
     out = np.empty_like(rt)
     for t in range(rt.shape[0]):
         prev = s
         s = a * s + gain * rt[t]
-        storage[t] = s
+        if every_day:
+            storage[t] = s
         out[t] = rt[t] + prev - s                      # k = 0: storage 0, out = r
     del rt                                             # one day-major copy less at a time
     out = np.ascontiguousarray(out.T)
-    return out, np.ascontiguousarray(storage.T)
+    return out, (np.ascontiguousarray(storage.T) if every_day else s)
 
 
 @dataclass(frozen=True)
@@ -284,8 +286,8 @@ def _spun_up_storage(release_mm: np.ndarray, k, spinup_days: int) -> np.ndarray:
     n = release_mm.shape[0]
     if spinup_days <= 0 or release_mm.shape[1] == 0:
         return np.zeros(n)
-    _, s = linear_reservoirs(release_mm[:, :spinup_days], k)
-    return s[:, -1].copy()
+    _, s = linear_reservoirs(release_mm[:, :spinup_days], k, every_day=False)
+    return s.copy()
 
 
 def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_days: Sequence[float],
@@ -330,10 +332,10 @@ def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_
         raise ValueError("one date per day of daily")
     with np.errstate(invalid="ignore", divide="ignore"):
         per_mm = np.where(area > 0, 1e3 / np.where(area > 0, area, 1.0), 0.0)   # m3 -> mm over the area
-    depth = v * per_mm[None, :, None]                                         # (n_days, n_regions, n_terms)
+    # depths over the areas, mm (one term at a time: no (days, regions, terms) copy)
     idx = [int(terms[n]) for n in RELEASED_TERMS]
-    mm = {col: depth[:, :, int(terms[t])].T.copy() for col, t in MM_COLUMNS.items()}
-    released = np.moveaxis(depth[:, :, idx], 0, -1)                           # (n_regions, 4, n_days)
+    mm = {col: (v[:, :, int(terms[t])] * per_mm[None, :]).T.copy() for col, t in MM_COLUMNS.items()}
+    released = np.moveaxis(v[:, :, idx] * per_mm[None, :, None], 0, -1)     # (n_regions, 4, n_days)
     mm["released_mm"] = released.sum(axis=1)
     k = tuple(float(x) for x in storage_days)
     n_r, n_d = len(regions), v.shape[0]
@@ -342,14 +344,15 @@ def runoff_series(daily, terms, regions: Sequence[str], area_m2, dates, storage_
     # every region's four reservoirs, then (the ice reservoir is linear) ice melt alone through
     # the ice reservoir from its own share of the start storage: one pass over the days for all
     series_in = np.concatenate((released.reshape(n_r * 4, n_d), ice_melt), axis=0)
-    del depth, released, ice_melt      # (days x regions) arrays no longer needed while routing
+    del released, ice_melt             # (days x regions) arrays no longer needed while routing
     k_rows = np.concatenate((np.tile(k, n_r), np.full(n_r, k[ice_i])))
     start = _spun_up_storage(series_in, k_rows, spinup_days)
-    out, storage = linear_reservoirs(series_in, k_rows, start)
+    out, last = linear_reservoirs(series_in, k_rows, start, every_day=False)
+    del series_in
     routed = out[:n_r * 4].reshape(n_r, 4, n_d)
     ice_routed = out[n_r * 4:]
     s0 = start[:n_r * 4].reshape(n_r, 4)
-    s1 = (storage[:n_r * 4, -1] if n_d else start[:n_r * 4]).reshape(n_r, 4)
+    s1 = (last[:n_r * 4] if n_d else start[:n_r * 4]).reshape(n_r, 4)
     discharge = routed.sum(axis=1) * 1e-3 * area[:, None] / SECONDS_PER_DAY
     return RunoffSeries(dates=dates, regions=tuple(regions), area_m2=area, mm=mm, routed_mm=routed,
                         ice_melt_routed_mm=ice_routed, discharge_m3s=discharge, storage_start_mm=s0,

@@ -88,8 +88,3 @@ def catchment_weight(path, layer, dem_crs, transform, shape, valid, cell_area_m2
     weight = np.zeros(int(np.prod(shape)))
     weight[gl.cells[0]] = gl.fractions[0]
     return weight[np.asarray(cells)], list(gl.warnings)
-
-
-def whole_grid_weight(cells) -> np.ndarray:
-    """The default catchment: every modelled cell with weight 1."""
-    return np.ones(np.asarray(cells).size)

@@ -197,12 +197,13 @@ class Setup:
     ``config`` is the config the setup was prepared from: a run or sweep on the setup
     may change only the model parameters of :mod:`firnline.parameters` that the kernel
     takes (see :func:`check_config`).
+
+    Slope and aspect serve :func:`prepare` only (the snow routing and the radiation table) and
+    are not kept (16 B per DEM cell); :func:`terrain` gives them.
     """
 
     config: Config
     grid: Grid
-    slope_deg: np.ndarray
-    aspect_deg: np.ndarray
     glaciers: Glaciers
     forcing: Forcing
     cells: np.ndarray
@@ -213,7 +214,7 @@ class Setup:
     checksums: dict
     notes: tuple = ()
     timings: dict = field(default_factory=dict)
-    #: Share of each cell (``cells`` order) inside ``[runoff] catchment`` (all 1 by default).
+    #: Share of each cell (``cells`` order) inside ``[runoff] catchment``; None: every cell weighs 1.
     catchment_weight: np.ndarray | None = None
     #: The gauge record of ``[observations] discharge`` (firnline.runoff.ObservedDischarge), or None.
     discharge: object = None
@@ -344,7 +345,8 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
         notes.append(note)
         timings["routing_s"] = time.perf_counter() - t2
     glacier_pos = tuple(np.searchsorted(cells, c) for c in gl.cells)
-    return Setup(config=config, grid=grid, slope_deg=slope, aspect_deg=aspect, glaciers=gl,
+    del slope, aspect
+    return Setup(config=config, grid=grid, glaciers=gl,
                  forcing=forcing, cells=cells, z_m=grid.elevation.ravel()[cells],
                  glacier_mask=gl.total_fraction.ravel()[cells] > 0,
                  glacier_pos=glacier_pos,
@@ -354,9 +356,10 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
 
 
 def runoff_inputs(config: Config, grid: Grid, cells: np.ndarray, checksums: dict, notes: list):
-    """The catchment's cell weights (``[runoff] catchment``, default all 1) and the gauge record
-    (``[observations] discharge``, checked here so a bad file stops the run before computing)."""
-    from .catchment import catchment_weight, whole_grid_weight
+    """The catchment's cell weights (``[runoff] catchment``; None without one: every cell weighs 1,
+    and no array of ones over every cell is kept) and the gauge record (``[observations]
+    discharge``, checked here so a bad file stops the run before computing)."""
+    from .catchment import catchment_weight
     from .runoff import read_discharge
 
     ro = config.runoff
@@ -366,7 +369,7 @@ def runoff_inputs(config: Config, grid: Grid, cells: np.ndarray, checksums: dict
         notes += warn
         checksums["catchment"] = file_checksum(ro.catchment)
     else:
-        weight = whole_grid_weight(cells)
+        weight = None
     observed = None
     obs = config.observations
     if obs is not None and obs.discharge is not None:

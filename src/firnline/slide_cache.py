@@ -47,7 +47,7 @@ def _content_sha256(arrays: dict) -> str:
     for name, dtype in _ARRAYS:
         a = np.ascontiguousarray(arrays[name])
         h.update(f"{name}:{a.dtype.str}:{a.shape}".encode())
-        h.update(a.tobytes())
+        h.update(memoryview(a.reshape(-1)).cast("B"))        # the bytes without a copy
     return h.hexdigest()
 
 

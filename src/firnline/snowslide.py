@@ -274,11 +274,12 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
         counts[a:b] = keep.sum(axis=1)
         links_pos.append(recv[keep])
         links_weight.append(weight[keep].astype(np.float32))
-    del pos_pad, inner
+    del pos_pad, inner, cells, slope
     recv_cell = np.concatenate(links_pos) if links_pos else np.empty(0, np.int32)
     weight_cell = np.concatenate(links_weight) if links_weight else np.empty(0, np.float32)
     del links_pos, links_weight
-    order = np.argsort(-zc, kind="stable")
+    np.negative(zc, out=zc)                                 # highest first (no negated copy)
+    order = np.argsort(zc, kind="stable").astype(np.int32)
     del zc
     first = np.zeros(n + 1, dtype=np.int64)                 # each cell's first link (cell order)
     np.cumsum(counts, out=first[1:])
@@ -288,7 +289,7 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     # link j of processing step k is link (j - ptr[k]) of cell order[k]
     src = np.repeat(first[:-1][order] - ptr[:-1], counts_o)
     src += np.arange(src.size, dtype=np.int64)
-    return Routing(order=order.astype(np.int32), recv_ptr=ptr, recv_pos=recv_cell[src],
+    return Routing(order=order, recv_ptr=ptr, recv_pos=recv_cell[src],
                    recv_weight=weight_cell[src],
                    holding_mm=holding, scheme=scheme,
                    exponent=float(exponent) if scheme == "multiple" else 0.0,

@@ -432,5 +432,10 @@ def test_fields_and_budget_made_in_blocks_of_years_equal_those_of_the_whole_reco
     blocked = run(cfg, setup=setup)
     assert len(setup.forcing.years) == 3
     assert_same_run(whole, blocked)
+    # the record in one kernel block, its fields and budget made a year at a time (views)
+    n_cols = setup.surface_columns.n
+    monkeypatch.setattr(tiles, "BLOCK_BYTES", 3 * n_cols * tiles._BLOCK_BYTES_PER_COLUMN_YEAR)
+    assert tiles.block_years(n_cols, 3) == 3 and n_cols * tiles._TEMP_BYTES_PER_COLUMN_YEAR > tiles.BLOCK_BYTES / 2
+    assert_same_run(whole, run(cfg, setup=setup))
     tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
     assert_same_run(whole, tiled, exact_budget=False)

@@ -137,28 +137,40 @@ def block_years(n_columns: int, n_years: int) -> int:
 
 def block_products(sub, kb) -> tuple[dict, object]:
     """A block's per-cell fields (:func:`firnline.model.cell_fields`) and exact water-budget sums,
-    made in slices of the cells whose temporaries take about :data:`BLOCK_BYTES`: the same values,
-    bit for bit, as over all cells at once."""
+    made a few years at a time (views of the block) and, where one year of every cell would take
+    more, in slices of the cells, so their float64 temporaries take about :data:`BLOCK_BYTES`: the
+    same values, bit for bit, as over the whole block at once."""
     from .model import cell_fields, water_budget_sums
 
     cols = sub.surface_columns
     n_years = kb.sums.shape[3]
-    per = max(1, BLOCK_BYTES // max(1, n_years * _TEMP_BYTES_PER_COLUMN_YEAR))
-    if per >= cols.n:
-        return cell_fields(sub, kb, 0), water_budget_sums(sub, kb, 0, first_year=kb.first_year)
+    year_bytes = cols.n * _TEMP_BYTES_PER_COLUMN_YEAR
+    step = max(1, BLOCK_BYTES // max(1, year_bytes))                  # years at a time
+    per = max(1, BLOCK_BYTES // _TEMP_BYTES_PER_COLUMN_YEAR)          # cells at a time when a year is more
     cw = sub.catchment_weight
     fields, budgets = {}, []
-    for c0 in range(0, cols.n_cells, per):
-        c1 = min(cols.n_cells, c0 + per)
-        part, keep = cols.cell_range(c0, c1)
-        kp = kb.columns(keep)
-        for name, v in cell_fields(sub, kp, 0, columns=part).items():
-            if name not in fields:
-                fields[name] = np.empty((n_years, cols.n_cells), dtype=v.dtype)
-            fields[name][:, c0:c1] = v
-        budgets.append(water_budget_sums(sub, kp, 0, None if cw is None else cw[c0:c1], kb.first_year,
-                                         columns=part))
-        del kp
+
+    def place(name, v, y0, c0, c1):
+        if name not in fields:
+            fields[name] = np.empty((n_years, cols.n_cells), dtype=v.dtype)
+        fields[name][y0:y0 + v.shape[0], c0:c1] = v
+
+    for y0 in range(0, n_years, step):
+        part_years = kb if (y0, step) == (0, n_years) else kb.year_block(y0, min(n_years, y0 + step))
+        if year_bytes <= BLOCK_BYTES:
+            for name, v in cell_fields(sub, part_years, 0).items():
+                place(name, v, y0, 0, cols.n_cells)
+            budgets.append(water_budget_sums(sub, part_years, 0, first_year=part_years.first_year))
+            continue
+        for c0 in range(0, cols.n_cells, per):
+            c1 = min(cols.n_cells, c0 + per)
+            part, keep = cols.cell_range(c0, c1)
+            kp = part_years.columns(keep)
+            for name, v in cell_fields(sub, kp, 0, columns=part).items():
+                place(name, v, y0, c0, c1)
+            budgets.append(water_budget_sums(sub, kp, 0, None if cw is None else cw[c0:c1], kp.first_year,
+                                             columns=part))
+            del kp
     return fields, exact.merge(budgets)
 
 

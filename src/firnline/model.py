@@ -130,13 +130,10 @@ class Columns:
         order = np.argsort(extra_cells, kind="stable")
         return extra_cells[order], (self.n_cells + order).astype(np.int64)
 
-    def select(self, positions: np.ndarray) -> "Columns":
-        """The columns of some cells (ascending positions), their cells renumbered.
-
-        Work and memory in proportion to the selection and the appended columns of its span
-        of cells (a unit of a tiled run does not touch every cell of the DEM)."""
-        sub = np.asarray(positions, dtype=np.int64)
-        first = sub                                     # the cells' own columns, in order
+    def _cut(self, sub: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The columns of some cells (ascending positions): their indices here (the cells' own
+        columns in order, then their appended columns in column order) and their cells renumbered.
+        Work and memory in proportion to the cells and the appended columns of their span."""
         extra = np.zeros(0, dtype=np.int64)
         if sub.size and self.n > self.n_cells:
             cells_sorted, cols_sorted = self._extra_by_cell
@@ -145,24 +142,28 @@ class Columns:
             cand_cells, cand_cols = cells_sorted[lo:hi], cols_sorted[lo:hi]
             at = np.minimum(np.searchsorted(sub, cand_cells), sub.size - 1)
             extra = np.sort(cand_cols[sub[at] == cand_cells])     # in column order, as appended
-        keep = np.concatenate([first, extra])
+        keep = np.concatenate([sub, extra])
         cell = np.concatenate([np.arange(sub.size, dtype=np.int64), np.searchsorted(sub, self.cell[extra])])
-        return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep],
-                       region=self.region[keep], n_cells=int(sub.size))
+        return keep, cell
+
+    def _columns(self, keep: np.ndarray, cell: np.ndarray, n_cells: int) -> "Columns":
+        return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep], region=self.region[keep],
+                       n_cells=int(n_cells))
+
+    def select(self, positions: np.ndarray) -> "Columns":
+        """The columns of some cells (ascending positions), their cells renumbered.
+
+        Work and memory in proportion to the selection and the appended columns of its span
+        of cells (a unit of a tiled run does not touch every cell of the DEM)."""
+        sub = np.asarray(positions, dtype=np.int64)
+        return self._columns(*self._cut(sub), sub.size)
 
     def cell_range(self, c0: int, c1: int) -> tuple["Columns", np.ndarray]:
         """The columns of cells ``c0 .. c1-1`` (renumbered from 0) and their indices here, in
         column order: a slice of the cells for work in bounded pieces (:meth:`blend` of the
         slice gives those cells' values bit for bit)."""
-        extra = np.zeros(0, dtype=np.int64)
-        if self.n > self.n_cells and c1 > c0:
-            cells_sorted, cols_sorted = self._extra_by_cell
-            lo, hi = np.searchsorted(cells_sorted, [c0, c1], side="left")
-            extra = np.sort(cols_sorted[lo:hi])
-        keep = np.concatenate([np.arange(c0, c1, dtype=np.int64), extra])
-        cell = np.concatenate([np.arange(c1 - c0, dtype=np.int64), self.cell[extra] - c0])
-        return Columns(cell=cell, share=self.share[keep], ice=self.ice[keep], region=self.region[keep],
-                       n_cells=int(c1 - c0)), keep
+        keep, cell = self._cut(np.arange(c0, c1, dtype=np.int64))
+        return self._columns(keep, cell, c1 - c0), keep
 
     def blend(self, values: np.ndarray) -> np.ndarray:
         """Per-cell area means (..., n_cells) of per-column values (..., n_cols), by share."""

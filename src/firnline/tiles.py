@@ -156,7 +156,7 @@ def block_products(sub, kb) -> tuple[dict, object]:
         fields[name][y0:y0 + v.shape[0], c0:c1] = v
 
     for y0 in range(0, n_years, step):
-        part_years = kb if (y0, step) == (0, n_years) else kb.year_block(y0, min(n_years, y0 + step))
+        part_years = kb if step >= n_years else kb.year_block(y0, min(n_years, y0 + step))
         if year_bytes <= BLOCK_BYTES:
             for name, v in cell_fields(sub, part_years, 0).items():
                 place(name, v, y0, 0, cols.n_cells)

@@ -279,14 +279,22 @@ def test_compute_defaults_and_the_run_record(builders, tmp_path):
 
 
 def test_a_unit_that_cannot_fit_is_refused_before_computing(builders, tmp_path, capsys):
-    """A sparse 20 000 x 20 000 DEM (a tiny file): units of 16384 x 16384 cells cannot fit."""
+    """A sparse 20 000 x 20 000 DEM (a tiny file): units of 16384 x 16384 cells on two workers,
+    which send back every year of their fields, cannot fit."""
     builders.folder_case(tmp_path)
     builders.write_sparse_dem(tmp_path / "big.tif", 20_000, cell=25.0)
-    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 1})
+    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 2})
     assert main(["run", str(cfg), "--quiet"]) == 2
     line = builders.one_sentence_no_traceback(capsys.readouterr().err)
     assert "[compute] tile_size = 16384" in line and "268435456 cells" in line and "GB" in line
-    assert "3 balance years" in line and "set [compute] tile_size to" in line
+    assert "3 balance years" in line and "2 workers at once" in line and "set [compute] tile_size to" in line
+    assert not (tmp_path / "out").exists()
+    # in this process the unit runs in parts of 1024 x 1024 cells (firnline.tiles.unit_parts), which
+    # fit; the whole DEM's setup does not, and the run is refused as a whole
+    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 1})
+    assert main(["run", str(cfg), "--quiet"]) == 2
+    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+    assert "This run needs about" in line and "20000 x 20000 cells" in line and "coarser DEM" in line
     assert not (tmp_path / "out").exists()
 
 
@@ -439,3 +447,56 @@ def test_fields_and_budget_made_in_blocks_of_years_equal_those_of_the_whole_reco
     assert_same_run(whole, run(cfg, setup=setup))
     tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
     assert_same_run(whole, tiled, exact_budget=False)
+
+
+def test_a_unit_run_in_parts_gives_the_numbers_of_one_pass_over_it(tmp_path, builders, monkeypatch):
+    """A unit's kernel runs over its parts (firnline.tiles.unit_parts) one after the other: with
+    parts of at most 8 cells a side (a 20-cell unit in 3 x 3 parts of 7, the last ones narrow; the
+    whole 40 x 40 DEM as one unit in 5 x 5 parts) the maps and tables are those of the untiled run
+    in one part, bit for bit, with every [snow] process on; the fields a unit sends back whole (a
+    dask task's result) and its sums are those of the unit in one part; spilled maps, written part
+    by part into chunks of a part, give the same again."""
+    from firnline import tiles, yearmaps
+
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "refreezing": "cold-content",
+                                                "firn_years": 5, "spinup_years": 1, "min_slide_slope_deg": 15.0})
+    setup = prepare(cfg)
+    whole = run(cfg, setup=setup)
+    cfg20 = compute(cfg, tile_size=20, workers=1)
+    units = make_units(setup, 20)
+    one_part = [run_unit(setup, cfg20, u, 0.0, 0.0) for u in units]
+    assert tiles.part_size(2048) == 1024 and tiles.part_size(1024) == 1024 and tiles.part_size(3000) == 1000
+    assert tiles.part_size(1025) == 513 and tiles.part_size(20) == 20
+
+    monkeypatch.setattr(tiles, "PART_SIZE", 8)
+    assert tiles.part_size(20) == 7 and tiles.part_size(40) == 8
+    for u in units:                  # the parts share the unit's cells and glacier cells out exactly
+        parts = tiles.unit_parts(setup, u, 7)
+        assert len(parts) == 9 and {p.index for p in parts} == {u.index}
+        assert np.array_equal(np.sort(np.concatenate([p.positions for p in parts])), u.positions)
+        for g, local, gp, share in u.glaciers:
+            mine = [q for p in parts for q in p.glaciers if q[0] == g]
+            assert np.array_equal(np.sort(np.concatenate([q[2] for q in mine])), np.sort(gp))
+            for p in parts:
+                for q in p.glaciers:
+                    assert np.array_equal(p.positions[q[1]], q[2])
+    assert_same_run(whole, run(cfg, setup=setup), exact_budget=False)          # one unit, 25 parts
+    assert_same_run(whole, run(cfg20, setup=setup), exact_budget=False)        # 4 units, 9 parts each
+    for u, a in zip(units, one_part):
+        b = run_unit(setup, cfg20, u, 0.0, 0.0)
+        assert set(a.fields) == set(b.fields)
+        for name in a.fields:
+            assert np.array_equal(a.fields[name], b.fields[name], equal_nan=True), name
+        assert set(a.glacier_sums) == set(b.glacier_sums)
+        for g in a.glacier_sums:
+            for x, y in zip(exact.values(a.glacier_sums[g]), exact.values(b.glacier_sums[g])):
+                np.testing.assert_array_equal(x, y)
+        for x, y in zip(exact.values(a.budget), exact.values(b.budget)):
+            np.testing.assert_allclose(x, y, rtol=1e-12, atol=1e-9)
+        assert np.array_equal(a.daily[0], b.daily[0])
+        np.testing.assert_allclose(a.daily[1], b.daily[1], rtol=1e-12, atol=1e-9)
+    monkeypatch.setattr(yearmaps, "SPILL_BYTES", 0)
+    streamed = run(cfg20, setup=setup)
+    assert streamed.maps.spilled and streamed.maps.tile == (7, 7)
+    assert_same_run(whole, streamed, exact_budget=False)
+    streamed.close()

@@ -22,9 +22,11 @@ from pathlib import Path
 from .errors import InputError
 from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_DAILY, N_FLUX, N_SEASON, N_STATE
 
-# bytes per valid cell that do not grow with years: DEM float64, valid mask, slope and
-# aspect float64, per-cell copies (elevation, mask, indices), kernel state per scenario
-_BYTES_PER_CELL = 8 + 1 + 8 + 8 + 8 + 1 + 8
+# bytes per DEM cell that do not grow with years: the whole DEM's setup (firnline.model.prepare)
+# at its peak, while the glacier cover and the snow routing are built beside the DEM, its valid
+# mask, cell indices, elevations, columns and slope: 11.0 GB for the 1e8 cells of
+# benchmarks/region.py (about 75 B per cell stay held for the run)
+_BYTES_PER_CELL = 110
 # the kernel per surface column and scenario (firnline.kernel): the state and its copy at the
 # start, the cumulative balance, the firn age layers (5, the default firn_years), and the
 # chunks' kept rows (state and running sums, rows CHUNK_STRIDE apart) that persist between
@@ -55,14 +57,16 @@ class Estimate:
 
 def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_m: float = 50.0,
              glaciers: int = 1, radiation_sectors: int | None = None, unit_cells: int | None = None,
-             returned: bool = False) -> Estimate:
+             returned: bool = False, part_cells: int | None = None) -> Estimate:
     """Peak memory of a run, bytes (see the module docstring for what is counted).
 
     ``unit_cells``: the cells of one unit of work when the run's per-year maps are streamed
     (``firnline run``: :mod:`firnline.yearmaps` holds at most :data:`~firnline.yearmaps.SPILL_BYTES`
     of them, the rest goes to a file), so the kernel's per-year results are one unit's block of
-    years; ``returned``: units run in other processes and send back every year of their fields;
-    None counts every year of every cell (a sweep keeps every scenario's maps).
+    years; ``part_cells``: the cells of the unit's parts (:func:`firnline.tiles.unit_parts`, default
+    ``unit_cells``), whose kernel runs one at a time; ``returned``: units run in other processes and
+    send back every year of their fields; None counts every year of every cell (a sweep keeps every
+    scenario's maps).
     """
     from .yearmaps import SPILL_BYTES, STRIP_BYTES
 
@@ -74,8 +78,9 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
         b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
     else:
         unit = min(unit_cells, cells)
-        b += unit * (scenarios * _STATE_BYTES_PER_CELL_SCENARIO + _UNIT_INPUT_BYTES_PER_CELL)
-        b += _unit_year_bytes(unit, years, scenarios, returned)
+        part = min(unit if part_cells is None else part_cells, unit)
+        b += part * (scenarios * _STATE_BYTES_PER_CELL_SCENARIO + _UNIT_INPUT_BYTES_PER_CELL)
+        b += _unit_year_bytes(part, unit, years, scenarios, returned)
         b += min(cells * max(years, 1) * 4 * _MAPS, SPILL_BYTES) + 2 * STRIP_BYTES
         b += scenarios * 366 * max(years, 1) * (glaciers + 2) * N_DAILY * 8     # the run's daily region sums
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
@@ -132,41 +137,55 @@ def check(est: Estimate, available: int | None = None) -> None:
         "([climate] start and end) or fewer scenarios.")
 
 
-# one unit of a tiled run (firnline.tiles) in one worker process: its setup cut, kernel state and
-# running sums per surface column, and one block of years (firnline.tiles.block_years) of the
-# kernel's results, fields and temporaries (generous, as above). _UNIT_INPUT_BYTES_PER_CELL: the
-# unit's two cuts of the setup (its cells, and its cells with those upslope of them for sliding
-# snow: elevation, indices, columns, routing links), the kernel's per-column inputs and the
-# slide's buffers; a 2048 x 2048 unit of benchmarks/region.py measured about 3 GB over one year
+# one unit of a tiled run (firnline.tiles) in one worker process, which runs the kernel over its
+# parts (firnline.tiles.unit_parts) one at a time: a part's setup cut, kernel state and running
+# sums per surface column, and one block of years (firnline.tiles.block_years) of the kernel's
+# results, fields and temporaries (generous, as above). _UNIT_INPUT_BYTES_PER_CELL: the part's two
+# cuts of the setup (its cells, and its cells with those upslope of them for sliding snow:
+# elevation, indices, columns, routing links), the kernel's per-column inputs and the slide's
+# buffers; a part of 2048 x 2048 cells of benchmarks/region.py measured about 3 GB over one year
 _UNIT_INPUT_BYTES_PER_CELL = 300
 _UNIT_BYTES_PER_CELL = _BYTES_PER_CELL + _STATE_BYTES_PER_CELL_SCENARIO + _UNIT_INPUT_BYTES_PER_CELL
 _RETURNED_BYTES_PER_CELL_YEAR = 4 * 8 * 2      # a unit's fields sent back: 8 maps float32, and their copy
 
 
-def _unit_year_bytes(cells: int, years: int, scenarios: int, returned: bool) -> int:
-    """The per-year memory of a unit: one block of years, and every year of its fields when they
-    are sent back from another process (``returned``) rather than placed block by block."""
+def _unit_year_bytes(part: int, cells: int, years: int, scenarios: int, returned: bool) -> int:
+    """The per-year memory of a unit of ``cells`` in parts of ``part`` cells: one block of years of a
+    part, and every year of the unit's fields when they are sent back from another process
+    (``returned``) rather than placed block by block."""
     from .tiles import _BLOCK_BYTES_PER_COLUMN_YEAR, block_years
-    b = cells * scenarios * block_years(cells, years) * _BLOCK_BYTES_PER_COLUMN_YEAR
+    b = part * scenarios * block_years(part, years) * _BLOCK_BYTES_PER_COLUMN_YEAR
     if returned:
         b += cells * scenarios * max(years, 1) * _RETURNED_BYTES_PER_CELL_YEAR
     return b
+
+
+def unit_cells(tile_size: int, shape: tuple[int, int]) -> tuple[int, int]:
+    """The cells of a unit of ``tile_size`` on a DEM of ``shape`` (a DEM smaller than a unit is one
+    unit) and of its largest part (:func:`firnline.tiles.part_size`)."""
+    from .tiles import part_size
+    side = part_size(tile_size)
+    return (min(int(tile_size), shape[0]) * min(int(tile_size), shape[1]),
+            min(side, shape[0]) * min(side, shape[1]))
 
 
 def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: int = 1,
                glaciers: int = 1, returned: bool = False) -> tuple[int, int]:
     """Peak memory of one unit's task (bytes) and its cells: a DEM smaller than a unit is one unit.
 
-    Besides the per-cell terms and one block of years (``returned``: and every year of the fields
-    a unit in another process sends back), a unit holds the daily region sums of its own glaciers
-    (days x regions x :data:`~firnline.kernel.N_DAILY` terms, float64, per thread and summed:
-    counted once for the whole record and three times for a block of years), taken as its share of the
-    DEM's glaciers plus 16."""
+    Besides the per-cell terms of one part and one block of years of it (``returned``: and every
+    year of the fields a unit in another process sends back), a unit holds the daily region sums
+    of its own glaciers (days x regions x :data:`~firnline.kernel.N_DAILY` terms, float64: the
+    unit's for the whole record, and a part's per thread and summed, counted once for the whole
+    record and three times for a block of years), taken as its share of the DEM's glaciers plus 16."""
     from .tiles import block_years
-    cells = min(int(tile_size), shape[0]) * min(int(tile_size), shape[1])
-    b = _FIXED_BYTES + cells * scenarios * _UNIT_BYTES_PER_CELL + _unit_year_bytes(cells, years, scenarios, returned)
-    mine = min(glaciers, math.ceil(glaciers * cells / max(shape[0] * shape[1], 1)) + 16)
-    b += scenarios * 366 * (max(years, 1) + 3 * block_years(cells, years)) * (mine + 2) * N_DAILY * 8
+    cells, part = unit_cells(tile_size, shape)
+    b = _FIXED_BYTES + part * scenarios * _UNIT_BYTES_PER_CELL + _unit_year_bytes(part, cells, years, scenarios,
+                                                                                  returned)
+    n = max(shape[0] * shape[1], 1)
+    mine, mine_part = (min(glaciers, math.ceil(glaciers * c / n) + 16) for c in (cells, part))
+    b += scenarios * 366 * max(years, 1) * (mine + 2) * N_DAILY * 8
+    b += scenarios * 366 * (max(years, 1) + 3 * block_years(part, years)) * (mine_part + 2) * N_DAILY * 8
     return int(b), cells
 
 
@@ -219,9 +238,9 @@ def estimate_for(config, scenarios: int = 1, streamed: bool = False, sizes: tupl
     DEM shape, balance years and glaciers when already read (default: read from the headers)."""
     shape, years, glaciers = _header_sizes(config) if sizes is None else sizes
     sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
-    unit = unit_bytes(config.compute.tile_size, shape, years, scenarios)[1] if streamed else None
+    unit, part = unit_cells(config.compute.tile_size, shape) if streamed else (None, None)
     return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit,
-                    returned=_returned(config.compute, shape))
+                    returned=_returned(config.compute, shape), part_cells=part)
 
 
 def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:

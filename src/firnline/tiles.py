@@ -14,7 +14,10 @@ every cell upslope of them, so the unit's cells are exact) and returns
 * its daily region volumes (runoff), added in unit order: equal to the untiled run to float
   rounding only (the kernel itself adds them per thread, in the order threads finish).
 
-A unit runs a block of balance years at a time (:func:`block_years`,
+A unit runs the kernel over its parts, windows of at most :data:`PART_SIZE` cells a side
+(:func:`unit_parts`), one after the other, so its memory is that of one part whatever
+``tile_size`` is (the parts' sums merge exactly, like the units'); each part runs a block of
+balance years at a time (:func:`block_years`,
 :func:`firnline.model.simulate_years`; the kernel's state carried from block to block, every
 value that of one pass), and makes each block's fields and sums before the next block runs,
 so its memory does not grow with the years. The fields go into the run's
@@ -191,28 +194,109 @@ class UnitResult:
     kernel: object = None       # the kernel result, kept only by a run of one unit in this process
 
 
+#: A unit runs the kernel over windows of at most this many cells along a side (its parts,
+#: :func:`unit_parts`), one after the other: a part's kernel state, work rows, setup cut and one
+#: year of results take about 1.2 GB at 1024 x 1024 cells (a 2048 x 2048 part took 3.1 GB),
+#: so a unit's memory does not grow with ``[compute] tile_size`` beyond the fields it sends back.
+PART_SIZE = 1024
+
+
+def part_size(tile_size: int) -> int:
+    """The side of a unit's parts: ``tile_size`` cut into the fewest equal parts of at most
+    :data:`PART_SIZE` (a unit of 2048 into 2 x 2 parts of 1024)."""
+    tile = max(1, int(tile_size))
+    return -(-tile // -(-tile // PART_SIZE))
+
+
+def unit_parts(setup, unit: Unit, size: int) -> list[Unit]:
+    """The parts of a unit: windows of ``size`` cells from the unit's corner, each with the unit's
+    modelled cells and glacier parts in it (the unit's ``index``); ``[unit]`` when it is one part."""
+    (r0, r1), (c0, c1) = unit.rows, unit.cols
+    if r1 - r0 <= size and c1 - c0 <= size:
+        return [unit]
+    n_pc = -(-(c1 - c0) // size)
+    rr, cc = np.divmod(setup.cells[unit.positions], setup.grid.shape[1])
+    key = ((rr - r0) // size) * n_pc + (cc - c0) // size
+    ids = np.unique(key)
+    parts = []
+    for k in ids:
+        k = int(k)
+        mine = np.flatnonzero(key == k)
+        pos = unit.positions[mine]
+        gl = []
+        for g, local, gp, share in unit.glaciers:
+            inside = key[local] == k
+            if inside.any():
+                gl.append((g, np.searchsorted(mine, local[inside]), gp[inside], share[inside]))
+        pr, pc = r0 + (k // n_pc) * size, c0 + (k % n_pc) * size
+        parts.append(Unit(index=unit.index, rows=(pr, min(pr + size, r1)), cols=(pc, min(pc + size, c1)),
+                          positions=pos, glaciers=tuple(gl)))
+    return parts
+
+
 def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: float,
              threads: int | dict | None = None, progress: Progress = None, whole: bool = False,
              keep_kernel: bool = False, put=None) -> UnitResult:
     """Run one unit: the kernel over its cells, its fields and partial sums (a dask task).
 
-    The unit runs a block of balance years at a time (:func:`block_years`;
+    The unit runs its parts (:func:`unit_parts`, windows of :func:`part_size`) one after the
+    other, and each part a block of balance years at a time (:func:`block_years`;
     :func:`firnline.model.simulate_years`), the state carried from block to block: each block's
-    fields and sums are made, and the block dropped, before the next one runs. ``put``:
-    ``put(unit, first_year, fields)`` takes each block's fields (the synchronous path places
+    fields and sums are made, and the block dropped, before the next one runs. The parts' sums
+    merge exactly, so a unit gives the values of one pass over its cells. ``put``:
+    ``put(part, first_year, fields)`` takes each block's fields (the synchronous path places
     them into the run's maps at once); without it the fields of every year come back in the
     result. ``threads``: numba threads for the task (a dict host -> threads for a remote
     cluster); ``whole``: the unit is every cell of the setup (the run needs no cut);
-    ``keep_kernel``: keep the kernel's result when the record is one block.
+    ``keep_kernel``: keep the kernel's result when the unit is one part and its record one block.
     """
-    from .model import glacier_part_sums, simulate_years
-
     if isinstance(threads, dict):
         import socket
         threads = threads.get(socket.gethostname(), threads.get("*"))
     if threads:
         import numba
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    parts = unit_parts(setup, unit, part_size(config.compute.tile_size))
+    if len(parts) == 1:
+        return _run_part(setup, config, unit, warming_k, precip_change_pct, progress, whole, keep_kernel, put)
+    t0 = time.perf_counter()
+    n_years = len(setup.forcing.years)
+    f: dict = {}
+    gparts: dict = {}
+    budgets, dailies = [], []
+    slide_s = 0.0
+    for part in parts:
+        r = _run_part(setup, config, part, warming_k, precip_change_pct, None, False, False, put)
+        if r.fields:
+            at = np.searchsorted(unit.positions, part.positions)
+            for name, v in r.fields.items():
+                if name not in f:
+                    f[name] = np.empty((n_years, unit.positions.size), dtype=v.dtype)
+                f[name][:, at] = v
+        for g, sums in r.glacier_sums.items():
+            gparts.setdefault(g, []).append(sums)
+        budgets.append(r.budget)
+        if r.daily is not None:
+            dailies.append(r.daily)
+        slide_s += r.slide_seconds
+        del r
+    daily = None
+    if dailies:                 # the parts' region volumes, added in part order
+        ids = np.unique(np.concatenate([i for i, _ in dailies]))
+        d = np.zeros((dailies[0][1].shape[0], ids.size) + dailies[0][1].shape[2:], dtype=dailies[0][1].dtype)
+        for i, v in dailies:
+            d[:, np.searchsorted(ids, i)] += v
+        daily = (ids, d)
+    return UnitResult(index=unit.index, positions=unit.positions, fields=f, rows=unit.rows, cols=unit.cols,
+                      glacier_sums={g: exact.merge(p) for g, p in gparts.items()}, budget=exact.merge(budgets),
+                      daily=daily, seconds=time.perf_counter() - t0, slide_seconds=slide_s)
+
+
+def _run_part(setup, config, unit: Unit, warming_k: float, precip_change_pct: float, progress: Progress,
+              whole: bool, keep_kernel: bool, put) -> UnitResult:
+    """One part of a unit (or a unit of one part): :func:`run_unit` without the parts."""
+    from .model import glacier_part_sums, simulate_years
+
     t0 = time.perf_counter()
     cells = None if whole else unit.positions
     n_years = len(setup.forcing.years)
@@ -319,7 +403,8 @@ class Collector:
         :class:`UnitResult`) into the run's maps."""
         setup = self.setup
         if self.maps is None:
-            self.maps = YearMaps(list(fields), self.n_years, setup.grid.shape, (self.tile, self.tile),
+            chunk = part_size(self.tile)            # a unit's parts write whole chunks of the file
+            self.maps = YearMaps(list(fields), self.n_years, setup.grid.shape, (chunk, chunk),
                                  self.work_dir, self.spill_bytes, self.prefix)
         rr, cc = np.divmod(setup.cells[unit.positions], setup.grid.shape[1])
         on_glacier = setup.glacier_mask[unit.positions]

@@ -390,8 +390,8 @@ def _build(names, geoms, transform, shape, valid, cell_area_m2, where, warnings=
     to_pixel = ~transform
     unit_area_m2 = float(cell_area_m2)  # m2 per pixel-space unit area
 
-    total = np.zeros(ny * nx, dtype=np.float64)
-    best = np.zeros(ny * nx, dtype=np.float64)
+    # the id map first marks the glacier cells, then numbers them (slots of the sums below): the
+    # cover is summed over glacier cells only, not over a float64 grid of every cell
     id_map = np.zeros(ny * nx, dtype=np.int32)
     valid_flat = valid.ravel()
     cells_out, fractions_out = [], []
@@ -432,23 +432,45 @@ def _build(names, geoms, transform, shape, valid, cell_area_m2, where, warnings=
                 "is left out."
             )
         modelled_area[k] = frac.sum() * unit_area_m2
-        total[flat] += frac
-        larger = frac > best[flat]
-        best[flat[larger]] = frac[larger]
-        id_map[flat[larger]] = k + 1
+        id_map[flat] = 1
         cells_out.append(flat)
         fractions_out.append(frac)
 
+    total_fraction = _cover(cells_out, fractions_out, id_map)
     return Glaciers(
         names=names,
         cells=cells_out,
         fractions=fractions_out,
         polygon_area_m2=polygon_area,
         modelled_area_m2=modelled_area,
-        total_fraction=np.minimum(total, 1.0).astype(np.float32).reshape(ny, nx),
+        total_fraction=total_fraction.reshape(ny, nx),
         id_map=id_map.reshape(ny, nx),
         warnings=warnings,
     )
+
+
+def _cover(cells, fractions, id_map):
+    """The glacier cover (float32, ``min(1, sum of the glaciers' shares)``) of every cell, and, in
+    ``id_map`` (int32, marked 1 on the glacier cells; rewritten in place), the 1-based number of the
+    glacier with the largest share of each cell (the first in file order of equal shares; 0 off the
+    glaciers). The sums and comparisons go glacier by glacier in file order over the glacier cells
+    only, so the values are those of a pass over grids of every cell."""
+    marked = np.flatnonzero(id_map)
+    id_map[marked] = np.arange(1, marked.size + 1, dtype=np.int32)       # slots, 1-based
+    total = np.zeros(marked.size)
+    best = np.zeros(marked.size)
+    which = np.zeros(marked.size, dtype=np.int32)
+    for k, (flat, frac) in enumerate(zip(cells, fractions)):
+        slot = id_map[flat] - 1
+        total[slot] += frac
+        larger = frac > best[slot]
+        best[slot[larger]] = frac[larger]
+        which[slot[larger]] = k + 1
+    del best
+    id_map[marked] = which
+    cover = np.zeros(id_map.size, dtype=np.float32)
+    cover[marked] = np.minimum(total, 1.0).astype(np.float32)
+    return cover
 
 
 def _checked_names(names, where):

@@ -281,16 +281,11 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
     np.negative(zc, out=zc)                                 # highest first (no negated copy)
     order = np.argsort(zc, kind="stable").astype(np.int32)
     del zc
-    first = np.zeros(n + 1, dtype=np.int64)                 # each cell's first link (cell order)
+    first = np.zeros(n + 1, dtype=np.int32)                 # each cell's first link (cell order)
     np.cumsum(counts, out=first[1:])
-    counts_o = counts[order]
-    ptr = np.zeros(n + 1, dtype=np.int32)
-    np.cumsum(counts_o, out=ptr[1:])
-    # link j of processing step k is link (j - ptr[k]) of cell order[k]
-    src = np.repeat(first[:-1][order] - ptr[:-1], counts_o)
-    src += np.arange(src.size, dtype=np.int64)
-    return Routing(order=order, recv_ptr=ptr, recv_pos=recv_cell[src],
-                   recv_weight=weight_cell[src],
+    del counts
+    ptr, recv_pos, recv_weight = _links_in_order(order, first, recv_cell, weight_cell)
+    return Routing(order=order, recv_ptr=ptr, recv_pos=recv_pos, recv_weight=recv_weight,
                    holding_mm=holding, scheme=scheme,
                    exponent=float(exponent) if scheme == "multiple" else 0.0,
                    snow_density_kg_m3=float(snow_density_kg_m3),
@@ -299,6 +294,26 @@ def build_routing(elevation: np.ndarray, valid: np.ndarray, cell_size_m, slope_d
 
 #: cells whose links :func:`build_routing` makes at once (about 400 bytes of temporaries each)
 ROUTING_BLOCK_CELLS = 1 << 18
+
+
+@njit(cache=True)
+def _links_in_order(order, first, recv_cell, weight_cell):
+    """The links of the cells (``first[c] .. first[c + 1] - 1`` of ``recv_cell`` / ``weight_cell``
+    for cell ``c``) put in processing order ``order``: each step's first link ``ptr`` and the
+    links' receivers and weights, copied with no temporary of the links' size."""
+    n = order.size
+    ptr = np.zeros(n + 1, dtype=np.int32)
+    recv = np.empty(recv_cell.size, dtype=np.int32)
+    weight = np.empty(weight_cell.size, dtype=np.float32)
+    j = 0
+    for k in range(n):
+        c = order[k]
+        for i in range(first[c], first[c + 1]):
+            recv[j] = recv_cell[i]
+            weight[j] = weight_cell[i]
+            j += 1
+        ptr[k + 1] = j
+    return ptr, recv, weight
 
 
 def _block_links(pos_pad, zc, cells, a, nx, dx, dy, slope_c, snow_density_kg_m3, min_slide_slope_deg,

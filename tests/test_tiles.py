@@ -279,32 +279,42 @@ def test_compute_defaults_and_the_run_record(builders, tmp_path):
 
 
 def test_a_unit_that_cannot_fit_is_refused_before_computing(builders, tmp_path, capsys):
-    """A sparse 20 000 x 20 000 DEM (a tiny file): units of 16384 x 16384 cells on two workers,
-    which send back every year of their fields, cannot fit."""
+    """A sparse 20 000 x 20 000 DEM (a tiny file): units of 16384 x 16384 cells on the cluster at a
+    scheduler address, which send back every year of their fields, cannot fit (refused before
+    connecting)."""
     builders.folder_case(tmp_path)
     builders.write_sparse_dem(tmp_path / "big.tif", 20_000, cell=25.0)
-    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 2})
+    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"},
+                               compute={"tile_size": 16384, "scheduler": "tcp://127.0.0.1:1"})
     assert main(["run", str(cfg), "--quiet"]) == 2
     line = builders.one_sentence_no_traceback(capsys.readouterr().err)
     assert "[compute] tile_size = 16384" in line and "268435456 cells" in line and "GB" in line
-    assert "3 balance years" in line and "2 workers at once" in line and "set [compute] tile_size to" in line
+    assert "3 balance years" in line and "set [compute] tile_size to" in line
     assert not (tmp_path / "out").exists()
-    # in this process the unit runs in parts of 1024 x 1024 cells (firnline.tiles.unit_parts), which
-    # fit; the whole DEM's setup does not, and the run is refused as a whole
-    cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"}, compute={"tile_size": 16384, "workers": 1})
-    assert main(["run", str(cfg), "--quiet"]) == 2
-    line = builders.one_sentence_no_traceback(capsys.readouterr().err)
-    assert "This run needs about" in line and "20000 x 20000 cells" in line and "coarser DEM" in line
-    assert not (tmp_path / "out").exists()
+    # in this process, or on a local cluster (whose units write their fields block by block into
+    # files), a unit runs in parts of 1024 x 1024 cells (firnline.tiles.unit_parts), which fit;
+    # the whole DEM's setup does not, and the run is refused as a whole
+    for workers in (1, 2):
+        cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"},
+                                   compute={"tile_size": 16384, "workers": workers})
+        assert main(["run", str(cfg), "--quiet"]) == 2
+        line = builders.one_sentence_no_traceback(capsys.readouterr().err)
+        assert "This run needs about" in line and "20000 x 20000 cells" in line and "coarser DEM" in line
+        assert not (tmp_path / "out").exists()
 
 
 # ----------------------------------------------------------------------------
 # dask.distributed
 # ----------------------------------------------------------------------------
 
-def test_a_two_worker_local_cluster_gives_the_serial_result(tmp_path, builders):
+def test_a_two_worker_local_cluster_gives_the_serial_result(tmp_path, builders, monkeypatch):
+    """Workers on this machine write each block's fields into a work folder beside the output
+    folder (firnline.tiles.Spool), removed when the run is done; workers elsewhere send them back
+    whole; both give the serial result."""
     pytest.importorskip("dask.distributed")
     from dask.distributed import Client, LocalCluster
+
+    from firnline import tiles
 
     cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "min_slide_slope_deg": 15.0})
     setup = prepare(cfg)
@@ -312,14 +322,19 @@ def test_a_two_worker_local_cluster_gives_the_serial_result(tmp_path, builders):
     calls = []
     local = run(compute(cfg, tile_size=20, workers=2), setup=setup,
                 progress=lambda label, done, total: calls.append((label, done, total)))
-    assert local.compute.startswith("dask LocalCluster: 2 worker processes")
+    assert local.compute.startswith("dask LocalCluster: 2 worker processes") and "fields through files" in local.compute
     assert [c for c in calls if c[0] == "units"][-1] == ("units", 4, 4)
     assert_same_run(serial, local, exact_budget=False)
+    assert not list(tmp_path.glob(".out.firnline-maps-*"))
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
             Client(cluster) as client:
         given = run(compute(cfg, tile_size=20), setup=setup, client=client)
-    assert given.compute.startswith("dask.distributed at ")
-    assert_same_run(serial, given, exact_budget=False)
+        assert given.compute.startswith("dask.distributed at ") and "fields through files" in given.compute
+        assert_same_run(serial, given, exact_budget=False)
+        monkeypatch.setattr(tiles, "_all_on_this_machine", lambda client: False)
+        sent = run(compute(cfg, tile_size=20), setup=setup, client=client)
+    assert "fields through files" not in sent.compute
+    assert_same_run(serial, sent, exact_budget=False)
 
 
 # ----------------------------------------------------------------------------

@@ -27,6 +27,8 @@ from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_DAILY, N_FLUX, N_SEASON, N_STAT
 # mask, cell indices, elevations, columns and slope: 11.0 GB for the 1e8 cells of
 # benchmarks/region.py (about 75 B per cell stay held for the run)
 _BYTES_PER_CELL = 110
+# ... of which the run holds this much (and each worker process of a local cluster its copy)
+_HELD_BYTES_PER_CELL = 75
 # the kernel per surface column and scenario (firnline.kernel): the state and its copy at the
 # start, the cumulative balance, the firn age layers (5, the default firn_years), and the
 # chunks' kept rows (state and running sums, rows CHUNK_STRIDE apart) that persist between
@@ -57,7 +59,7 @@ class Estimate:
 
 def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_m: float = 50.0,
              glaciers: int = 1, radiation_sectors: int | None = None, unit_cells: int | None = None,
-             returned: bool = False, part_cells: int | None = None) -> Estimate:
+             returned: bool = False, part_cells: int | None = None, setup_copies: int = 0) -> Estimate:
     """Peak memory of a run, bytes (see the module docstring for what is counted).
 
     ``unit_cells``: the cells of one unit of work when the run's per-year maps are streamed
@@ -66,13 +68,13 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
     years; ``part_cells``: the cells of the unit's parts (:func:`firnline.tiles.unit_parts`, default
     ``unit_cells``), whose kernel runs one at a time; ``returned``: units run in other processes and
     send back every year of their fields; None counts every year of every cell (a sweep keeps every
-    scenario's maps).
+    scenario's maps). ``setup_copies``: worker processes that each hold a copy of the setup.
     """
     from .yearmaps import SPILL_BYTES, STRIP_BYTES
 
     ny, nx = shape
     cells = ny * nx
-    b = _FIXED_BYTES + cells * _BYTES_PER_CELL
+    b = _FIXED_BYTES + cells * _BYTES_PER_CELL + setup_copies * (_FIXED_BYTES + cells * _HELD_BYTES_PER_CELL)
     if unit_cells is None:
         b += cells * scenarios * _STATE_BYTES_PER_CELL_SCENARIO
         b += cells * scenarios * max(years, 1) * _BYTES_PER_CELL_SCENARIO_YEAR
@@ -190,9 +192,11 @@ def unit_bytes(tile_size: int, shape: tuple[int, int], years: int, scenarios: in
 
 
 def _returned(compute, shape: tuple[int, int]) -> bool:
-    """Whether the units of ``[compute]`` run in other processes (their fields come back whole)."""
+    """Whether the units of ``[compute]`` send every year of their fields back whole: units on the
+    cluster at a scheduler address (on a local cluster they write them block by block into files
+    beside the output folder, :class:`firnline.tiles.Spool`)."""
     n_units = -(-shape[0] // compute.tile_size) * -(-shape[1] // compute.tile_size)
-    return n_units > 1 and (compute.scheduler != "local" or compute.workers > 1)
+    return n_units > 1 and compute.scheduler != "local"
 
 
 def check_unit(compute, shape: tuple[int, int], years: int, scenarios: int = 1,
@@ -239,8 +243,11 @@ def estimate_for(config, scenarios: int = 1, streamed: bool = False, sizes: tupl
     shape, years, glaciers = _header_sizes(config) if sizes is None else sizes
     sectors = config.radiation.horizon_sectors if config.melt.method == "radiation" else None
     unit, part = unit_cells(config.compute.tile_size, shape) if streamed else (None, None)
+    comp = config.compute
+    n_units = -(-shape[0] // comp.tile_size) * -(-shape[1] // comp.tile_size)
+    copies = comp.workers if comp.scheduler == "local" and comp.workers > 1 and n_units > 1 else 0
     return estimate(shape, years, scenarios, config.balance.band_width_m, glaciers, sectors, unit,
-                    returned=_returned(config.compute, shape), part_cells=part)
+                    returned=_returned(comp, shape), part_cells=part, setup_copies=copies)
 
 
 def check_run(config, scenarios: int = 1, available: int | None = None, streamed: bool = False) -> None:

@@ -22,7 +22,8 @@ balance years at a time (:func:`block_years`,
 value that of one pass), and makes each block's fields and sums before the next block runs,
 so its memory does not grow with the years. The fields go into the run's
 :class:`firnline.yearmaps.YearMaps` block by block on the synchronous path
-(:meth:`Collector.put`), or as each unit arrives from a dask worker (:meth:`Collector.add`), in
+(:meth:`Collector.put`; from dask workers on this machine through files, :class:`Spool`), or
+as each unit arrives from a worker elsewhere (:meth:`Collector.add`), in
 memory or, for a large run, into a chunked file read lazily, so the run holds one unit's
 results at a time. Terrain, horizons and the radiation table are computed once
 for the whole DEM by :func:`firnline.model.prepare` (no per-unit halo yet).
@@ -95,29 +96,46 @@ def modelled_positions(setup, compute) -> np.ndarray | None:
 
 
 def make_units(setup, tile_size: int, positions: np.ndarray | None = None) -> list[Unit]:
-    """The units of a run: windows of ``tile_size`` cells with at least one modelled cell."""
+    """The units of a run: windows of ``tile_size`` cells with at least one modelled cell.
+
+    Made a band of ``tile_size`` rows at a time (the cells are in row-major order, so a band's
+    cells are a range of them): no array of every cell besides the units' positions."""
     ny, nx = setup.grid.shape
     n_tc = -(-nx // tile_size)
-    pos = np.arange(setup.cells.size) if positions is None else np.asarray(positions, dtype=np.int64)
-    uid = window_of(setup, tile_size, pos)
-    order = np.argsort(uid, kind="stable")
-    ids, start = np.unique(uid[order], return_index=True)
-    bounds = np.append(start, order.size)
+    cells = setup.cells
+    if positions is not None:
+        positions = np.asarray(positions, dtype=np.int64)
+        at = cells[positions]
     g_parts: dict[int, list] = {}
     for g, gpos in enumerate(setup.glacier_pos):
         gu = window_of(setup, tile_size, gpos)
         for u in np.unique(gu):
             g_parts.setdefault(int(u), []).append((g, np.flatnonzero(gu == u)))
     units = []
-    for k, u in enumerate(ids):
-        mine = pos[order[bounds[k]:bounds[k + 1]]]
-        parts = []
-        for g, share in g_parts.get(int(u), []):
-            gp = setup.glacier_pos[g][share]
-            parts.append((g, np.searchsorted(mine, gp), gp, share))
-        r0, c0 = (int(u) // n_tc) * tile_size, (int(u) % n_tc) * tile_size
-        units.append(Unit(index=int(u), rows=(r0, min(r0 + tile_size, ny)), cols=(c0, min(c0 + tile_size, nx)),
-                          positions=mine, glaciers=tuple(parts)))
+    for r0 in range(0, ny, tile_size):
+        r1 = min(r0 + tile_size, ny)
+        if positions is None:
+            lo, hi = np.searchsorted(cells, [r0 * nx, r1 * nx])
+            band = np.arange(lo, hi, dtype=np.int64)
+            col = cells[lo:hi] % nx // tile_size
+        else:
+            lo, hi = np.searchsorted(at, [r0 * nx, r1 * nx])
+            band = positions[lo:hi]
+            col = at[lo:hi] % nx // tile_size
+        order = np.argsort(col, kind="stable")
+        ids, start = np.unique(col[order], return_index=True)
+        bounds = np.append(start, order.size)
+        for k, w in enumerate(ids):
+            mine = band[order[bounds[k]:bounds[k + 1]]]
+            u = (r0 // tile_size) * n_tc + int(w)
+            parts = []
+            for g, share in g_parts.get(u, []):
+                gp = setup.glacier_pos[g][share]
+                parts.append((g, np.searchsorted(mine, gp), gp, share))
+            c0 = int(w) * tile_size
+            units.append(Unit(index=u, rows=(r0, r1), cols=(c0, min(c0 + tile_size, nx)),
+                              positions=mine, glaciers=tuple(parts)))
+        del band, col, order
     return units
 
 
@@ -374,9 +392,10 @@ def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
     cw = setup.catchment_weight
     if positions is not None and cw is not None:
         cw = cw[positions]
-    weight = np.ones(cols.n) if cw is None else np.asarray(cw, dtype="float64")[cols.cell]
+    # every weight 1: the sum of the areas themselves (x 1.0 is exact), with no array of ones
+    catchment = float(np.sum(area)) if cw is None else float(np.sum(area * np.asarray(cw, dtype="float64")[cols.cell]))
     return np.concatenate([np.bincount(cols.region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
-                           [float(np.sum(area * weight))]])
+                           [catchment]])
 
 
 class Collector:
@@ -442,6 +461,61 @@ class Collector:
         n_gl = len(self.setup.glaciers.names)
         gsums = [exact.merge(self.glacier_parts.get(g, [])) for g in range(n_gl)]
         return self.maps, gsums, exact.merge(self.budgets), self.daily
+
+
+class Spool:
+    """A work folder beside the output folder into which units on worker processes of this machine
+    write each block's fields (:class:`SpoolPut`: one ``.npy`` archive per part and block of
+    years), so a worker holds one block of one part, not every year of its unit; the run places
+    and removes them as the unit arrives (:meth:`take`). Named like the spilled maps' folders
+    (``.OUT.firnline-maps-PID-*``), so the next command on the output folder clears it if the run
+    was killed; removed by :meth:`close` and at exit."""
+
+    def __init__(self, work_dir, prefix: str):
+        import secrets
+        import shutil
+        import weakref
+        from pathlib import Path
+
+        from .yearmaps import WORK_PART
+        self.dir = Path(work_dir) / f"{prefix}{WORK_PART}{os.getpid()}-{secrets.token_hex(6)}"
+        os.mkdir(self.dir)
+        self._closer = weakref.finalize(self, shutil.rmtree, self.dir, ignore_errors=True)
+
+    def put(self) -> "SpoolPut":
+        return SpoolPut(str(self.dir))
+
+    def take(self, collect: "Collector", index: int) -> None:
+        """Place the blocks unit ``index`` wrote into the run's maps, and remove them."""
+        for path in sorted(self.dir.glob(f"u{index}-*.npz")):
+            with np.load(path) as z:
+                part = Unit(index=index, rows=tuple(int(v) for v in z["_rows"]),
+                            cols=tuple(int(v) for v in z["_cols"]), positions=z["_positions"])
+                fields = {k: z[k] for k in z.files if not k.startswith("_")}
+                collect.put(part, int(z["_first_year"]), fields)
+            path.unlink()
+
+    def close(self) -> None:
+        self._closer()
+
+
+@dataclass(frozen=True)
+class SpoolPut:
+    """``put(part, first_year, fields)`` of :func:`run_unit` on a worker: the block into the spool
+    folder (written whole under a temporary name, then renamed; a task run again writes the same
+    names)."""
+
+    folder: str
+
+    def __call__(self, part, first_year: int, fields: dict) -> None:
+        import secrets
+        from pathlib import Path
+        name = f"u{part.index}-r{part.rows[0]}-c{part.cols[0]}-y{int(first_year)}.npz"
+        final = Path(self.folder) / name
+        tmp = final.with_name(f".{name}.{secrets.token_hex(4)}.npz")
+        np.savez(tmp, _rows=np.asarray(part.rows), _cols=np.asarray(part.cols), _positions=part.positions,
+                 _first_year=np.asarray(first_year), **fields)
+        os.replace(tmp, final)
 
 
 def run_units(setup, config, warming_k: float = 0.0, precip_change_pct: float = 0.0,
@@ -539,8 +613,16 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
                 own.append(client)
             threads = _host_threads(client)
             how = f"dask.distributed at {client.scheduler.address}"
+        spool = None
+        if _all_on_this_machine(client) and collect.work_dir is not None:
+            # the workers write each block's fields beside the output folder: none holds every
+            # year of its unit, and the fields do not travel through the scheduler
+            spool = Spool(collect.work_dir, collect.prefix)
+            own.append(spool)           # removed after the cluster has stopped
+            how += "; fields through files"
+        put = spool.put() if spool is not None else None
         remote = client.scatter(setup, broadcast=True)
-        futures = [client.submit(run_unit, remote, config, u, warming_k, precip_change_pct, threads,
+        futures = [client.submit(run_unit, remote, config, u, warming_k, precip_change_pct, threads, put=put,
                                  pure=False, key=f"firnline-unit-{u.index}-{time.monotonic_ns()}")
                    for u in units]
         for k, fut in enumerate(as_completed(futures), start=1):
@@ -548,6 +630,8 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
             futures.remove(fut)        # the worker may drop the unit's results once they are here
             del fut
             seconds.append((r.seconds, r.slide_seconds))
+            if spool is not None:
+                spool.take(collect, r.index)
             collect.add(r)
             if progress is not None:
                 progress("units", k, len(units))
@@ -556,6 +640,20 @@ def _distributed(setup, config, units, warming_k, precip_change_pct, progress, c
     finally:
         for thing in own:
             thing.close()
+
+
+def _hostname() -> str:
+    import socket
+    return socket.gethostname()
+
+
+def _all_on_this_machine(client) -> bool:
+    """Whether every worker of ``client`` runs on this machine (they can write into its folders)."""
+    try:
+        names = set(client.run(_hostname).values())
+    except Exception:       # noqa: BLE001 - a cluster that cannot answer: its workers send fields back
+        return False
+    return bool(names) and names == {_hostname()}
 
 
 def _host_threads(client) -> dict:

@@ -375,8 +375,10 @@ def _block_links(pos_pad, zc, cells, a, nx, dx, dy, slope_c, snow_density_kg_m3,
 
 
 @njit(cache=True)
-def _reach_up(order, ptr, recv, reach):
-    for k in range(order.size - 1, -1, -1):      # lowest first: receivers are settled
+def _reach_up(order, ptr, recv, reach, last):
+    # lowest first: receivers are settled; a cell below every target (a step after ``last``, the
+    # lowest target's) sends only to cells below it, so none of them is reached
+    for k in range(last, -1, -1):
         i = order[k]
         if reach[i]:
             continue
@@ -406,7 +408,9 @@ def upslope(routing: Routing, targets: np.ndarray) -> np.ndarray:
         reach[:] = t
     else:
         reach[t] = True
-    _reach_up(routing.order, routing.recv_ptr, routing.recv_pos, reach)
+    steps = routing.step_of[np.flatnonzero(reach) if t.dtype == bool else t]
+    if steps.size:
+        _reach_up(routing.order, routing.recv_ptr, routing.recv_pos, reach, int(steps.max()))
     return reach
 
 
@@ -425,9 +429,9 @@ def subset(routing: Routing, positions) -> Routing:
     # the subset's processing steps, in processing order (work over the subset only: a unit of
     # a tiled run does not pass over every cell of the DEM; Routing.step_of is made once)
     steps = np.sort(routing.step_of[sub].astype(np.int64))
-    ptr0 = routing.recv_ptr.astype(np.int64)
-    counts = ptr0[steps + 1] - ptr0[steps]
-    links = np.repeat(ptr0[steps], counts) + (np.arange(counts.sum()) - np.repeat(
+    first = routing.recv_ptr[steps].astype(np.int64)         # the steps' links only, not a copy of all
+    counts = routing.recv_ptr[steps + 1].astype(np.int64) - first
+    links = np.repeat(first, counts) + (np.arange(counts.sum()) - np.repeat(
         np.cumsum(counts) - counts, counts))
     ptr = np.zeros(steps.size + 1, dtype=np.int32)
     np.cumsum(counts, out=ptr[1:])
@@ -446,8 +450,10 @@ def _renumber(sub: np.ndarray, pos: np.ndarray) -> np.ndarray:
     if sub.size == 0:
         return np.full(np.shape(pos), LEAVE, dtype=np.int64)
     lo, hi = int(sub[0]), int(sub[-1])
-    if hi - lo < 8 * sub.size + 4096:       # a table over the subset's span (a unit's rows)
-        table = np.full(hi - lo + 1, LEAVE, dtype=np.int64)
+    # a table over the subset's span (a unit's rows, and those upslope of it: 40 MB for the 1e7
+    # cells of 1024 rows of a 10000-column DEM) rather than a binary search of every position
+    if hi - lo < 16 * sub.size + (1 << 24):
+        table = np.full(hi - lo + 1, LEAVE, dtype=np.int32 if sub.size < 2**31 else np.int64)
         table[sub - lo] = np.arange(sub.size)
         inside = (pos >= lo) & (pos <= hi)
         return np.where(inside, table[np.clip(pos - lo, 0, hi - lo)], LEAVE)

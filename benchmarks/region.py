@@ -203,7 +203,11 @@ def main() -> None:
           f"write {t_write:.1f} s")
     print(f"{n * len(setup.forcing.years) / (t_prepare + t_run):.3g} cell-years per second (prepare + run); "
           f"{(t_prepare + t_run) / cell_days * 1e9:.1f} ns per cell-day")
-    print(f"peak memory: this process {own:.2f} GB, largest worker process {kids:.2f} GB (RUSAGE_CHILDREN)")
+    # without workers a child is only a short helper forked by a library, whose peak is the
+    # parent's size at the fork: not a worker's memory
+    workers = "" if result.compute.startswith("synchronous") else \
+        f", largest worker process {kids:.2f} GB (RUSAGE_CHILDREN)"
+    print(f"peak memory: this process {own:.2f} GB{workers}")
     if phase.peaks:
         print("peak memory of this process by phase: " + ", ".join(
             f"{k} {v:.2f} GB" for k, v in phase.peaks.items() if k != "start"))

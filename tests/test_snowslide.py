@@ -239,6 +239,13 @@ def test_a_run_on_the_upslope_area_of_some_cells_gives_them_the_same_snow(scheme
     targets[rng.choice(r.n_cells, 40, replace=False)] = True
     area = snowslide.upslope(r, targets)
     assert targets[area].sum() == 40 and area.sum() < r.n_cells
+    # searched only within the upslope steps of more cells (a unit's, for its parts): the same area
+    more = targets.copy()
+    more[rng.choice(r.n_cells, 40, replace=False)] = True
+    within = snowslide.upslope_steps(r, more)
+    assert within.size < r.n_cells and np.all(np.diff(within) > 0)
+    assert np.array_equal(snowslide.upslope(r, targets, within), area)
+    assert np.array_equal(snowslide.upslope(r, np.flatnonzero(targets), within), area)
     pos = np.flatnonzero(area)
     part = snow[pos].copy()
     sub = snowslide.subset(r, pos)

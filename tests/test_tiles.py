@@ -292,7 +292,7 @@ def test_a_unit_that_cannot_fit_is_refused_before_computing(builders, tmp_path, 
     assert "3 balance years" in line and "set [compute] tile_size to" in line
     assert not (tmp_path / "out").exists()
     # in this process, or on a local cluster (whose units write their fields block by block into
-    # files), a unit runs in parts of 1024 x 1024 cells (firnline.tiles.unit_parts), which fit;
+    # files), a unit runs in parts of 512 x 512 cells (firnline.tiles.unit_parts), which fit;
     # the whole DEM's setup does not, and the run is refused as a whole
     for workers in (1, 2):
         cfg = builders.folder_case(tmp_path, dem={"path": "big.tif"},
@@ -480,8 +480,8 @@ def test_a_unit_run_in_parts_gives_the_numbers_of_one_pass_over_it(tmp_path, bui
     cfg20 = compute(cfg, tile_size=20, workers=1)
     units = make_units(setup, 20)
     one_part = [run_unit(setup, cfg20, u, 0.0, 0.0) for u in units]
-    assert tiles.part_size(2048) == 1024 and tiles.part_size(1024) == 1024 and tiles.part_size(3000) == 1000
-    assert tiles.part_size(1025) == 513 and tiles.part_size(20) == 20
+    assert tiles.PART_SIZE == 512 and tiles.part_size(2048) == 512 and tiles.part_size(512) == 512
+    assert tiles.part_size(3000) == 500 and tiles.part_size(513) == 257 and tiles.part_size(20) == 20
 
     monkeypatch.setattr(tiles, "PART_SIZE", 8)
     assert tiles.part_size(20) == 7 and tiles.part_size(40) == 8

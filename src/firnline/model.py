@@ -654,7 +654,8 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
                    snapshot_days: Sequence[int] | None = None, cells: np.ndarray | None = None,
                    scenarios: Scenarios | None = None, catchment_weight: np.ndarray | None = None,
                    daily: bool = True, local_regions: bool = False,
-                   block_years: int | None = None) -> Iterator[KernelResult]:
+                   block_years: int | None = None, upslope_within: np.ndarray | None = None
+                   ) -> Iterator[KernelResult]:
     """:func:`simulate` (same arguments) in blocks of ``block_years`` balance years of the record.
 
     Yields one :class:`~firnline.kernel.KernelResult` per block, in order, as the kernel reaches
@@ -663,7 +664,9 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
     years are run first and not yielded), the snapshots come with the last block, and every
     value equals that of :func:`simulate` bit for bit. A caller that drops each block holds the
     kernel's results of ``block_years`` years at a time. None: one block of the whole record
-    (what :func:`simulate` returns).
+    (what :func:`simulate` returns). ``upslope_within``: processing steps of the routing that hold
+    every cell upslope of ``cells`` (:func:`firnline.snowslide.upslope_steps` of a unit, for its
+    parts), which bounds the search for them.
     """
     cfg = check_config(setup, config)
     params = KernelParams.from_config(cfg)
@@ -673,7 +676,7 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
         cells = np.asarray(cells, dtype=np.int64)
         if setup.routing is not None:
             from .snowslide import upslope
-            wide = np.flatnonzero(upslope(setup.routing, cells))
+            wide = np.flatnonzero(upslope(setup.routing, cells, upslope_within))
             if wide.size != cells.size:
                 inner = setup.surface_columns.select(wide)
                 keep_cells = np.searchsorted(wide, cells)

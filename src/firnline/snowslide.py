@@ -388,13 +388,36 @@ def _reach_up(order, ptr, recv, reach, last):
                 break
 
 
-def upslope(routing: Routing, targets: np.ndarray) -> np.ndarray:
+@njit(cache=True)
+def _reach_up_within(order, ptr, recv, reach, steps):
+    # as _reach_up over the given processing steps only (ascending), lowest first
+    for s in range(steps.size - 1, -1, -1):
+        i = order[steps[s]]
+        if reach[i]:
+            continue
+        for j in range(ptr[steps[s]], ptr[steps[s] + 1]):
+            if recv[j] >= 0 and reach[recv[j]]:
+                reach[i] = True
+                break
+
+
+def upslope_steps(routing: Routing, targets: np.ndarray) -> np.ndarray:
+    """The processing steps (ascending, int32) of the cells upslope of ``targets``
+    (:func:`upslope`): the ``within`` of :func:`upslope` for any part of the targets."""
+    return np.sort(routing.step_of[np.flatnonzero(upslope(routing, targets))])
+
+
+def upslope(routing: Routing, targets: np.ndarray, within: np.ndarray | None = None) -> np.ndarray:
     """Cells whose snow can slide onto any of ``targets`` (the targets included).
 
     Parameters
     ----------
     routing : Routing
     targets : ndarray (n_cells,) bool, or positions (int)
+    within : ndarray of int, optional
+        Processing steps (ascending) that hold every cell upslope of the targets, such as
+        :func:`upslope_steps` of cells that include them (a unit, for its parts): only those
+        steps are searched, not every step of the DEM. The result is the same.
 
     Returns
     -------
@@ -409,8 +432,15 @@ def upslope(routing: Routing, targets: np.ndarray) -> np.ndarray:
     else:
         reach[t] = True
     steps = routing.step_of[np.flatnonzero(reach) if t.dtype == bool else t]
-    if steps.size:
-        _reach_up(routing.order, routing.recv_ptr, routing.recv_pos, reach, int(steps.max()))
+    if not steps.size:
+        return reach
+    last = int(steps.max())
+    if within is None:
+        _reach_up(routing.order, routing.recv_ptr, routing.recv_pos, reach, last)
+    else:
+        within = np.asarray(within)
+        within = within[:np.searchsorted(within, last, side="right")]
+        _reach_up_within(routing.order, routing.recv_ptr, routing.recv_pos, reach, within)
     return reach
 
 

@@ -213,15 +213,16 @@ class UnitResult:
 
 
 #: A unit runs the kernel over windows of at most this many cells along a side (its parts,
-#: :func:`unit_parts`), one after the other: a part's kernel state, work rows, setup cut and one
-#: year of results take about 1.2 GB at 1024 x 1024 cells (a 2048 x 2048 part took 3.1 GB),
-#: so a unit's memory does not grow with ``[compute] tile_size`` beyond the fields it sends back.
-PART_SIZE = 1024
+#: :func:`unit_parts`), one after the other, so a unit's memory does not grow with ``[compute]
+#: tile_size`` beyond the fields it sends back. A part's kernel state, work rows, setup cut and
+#: one year of results took 3.1 GB at 2048 x 2048 cells and 1.2 GB at 1024; parts of 512 were
+#: also faster (a 2048 unit of benchmarks/region.py: 11.9 s against 14.6 s at 1024 on 1e8 cells).
+PART_SIZE = 512
 
 
 def part_size(tile_size: int) -> int:
     """The side of a unit's parts: ``tile_size`` cut into the fewest equal parts of at most
-    :data:`PART_SIZE` (a unit of 2048 into 2 x 2 parts of 1024)."""
+    :data:`PART_SIZE` (a unit of 2048 into 4 x 4 parts of 512)."""
     tile = max(1, int(tile_size))
     return -(-tile // -(-tile // PART_SIZE))
 
@@ -277,6 +278,10 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     parts = unit_parts(setup, unit, part_size(config.compute.tile_size))
     if len(parts) == 1:
         return _run_part(setup, config, unit, warming_k, precip_change_pct, progress, whole, keep_kernel, put)
+    within = None
+    if setup.routing is not None:       # the unit's upslope steps bound each part's search
+        from .snowslide import upslope_steps
+        within = upslope_steps(setup.routing, unit.positions)
     t0 = time.perf_counter()
     n_years = len(setup.forcing.years)
     f: dict = {}
@@ -284,7 +289,7 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     budgets, dailies = [], []
     slide_s = 0.0
     for part in parts:
-        r = _run_part(setup, config, part, warming_k, precip_change_pct, None, False, False, put)
+        r = _run_part(setup, config, part, warming_k, precip_change_pct, None, False, False, put, within)
         if r.fields:
             at = np.searchsorted(unit.positions, part.positions)
             for name, v in r.fields.items():
@@ -311,8 +316,9 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
 
 
 def _run_part(setup, config, unit: Unit, warming_k: float, precip_change_pct: float, progress: Progress,
-              whole: bool, keep_kernel: bool, put) -> UnitResult:
-    """One part of a unit (or a unit of one part): :func:`run_unit` without the parts."""
+              whole: bool, keep_kernel: bool, put, within=None) -> UnitResult:
+    """One part of a unit (or a unit of one part): :func:`run_unit` without the parts (``within``:
+    the unit's upslope steps, :func:`firnline.snowslide.upslope_steps`)."""
     from .model import glacier_part_sums, simulate_years
 
     t0 = time.perf_counter()
@@ -326,7 +332,7 @@ def _run_part(setup, config, unit: Unit, warming_k: float, precip_change_pct: fl
     day = 0
     slide_s = 0.0
     for kb in simulate_years(setup, config, [warming_k], [precip_change_pct], progress=progress, cells=cells,
-                             local_regions=not whole, block_years=step):
+                             local_regions=not whole, block_years=step, upslope_within=within):
         a = kb.first_year
         if sub is None:
             sub = setup if whole else setup.select(unit.positions)

@@ -25,7 +25,8 @@ from .kernel import CHUNK_CELLS, CHUNK_STRIDE, N_DAILY, N_FLUX, N_SEASON, N_STAT
 # bytes per DEM cell that do not grow with years: the whole DEM's setup (firnline.model.prepare)
 # at its peak, while the glacier cover and the snow routing are built beside the DEM, its valid
 # mask, cell indices, elevations, columns and slope: 11.0 GB for the 1e8 cells of
-# benchmarks/region.py (about 75 B per cell stay held for the run)
+# benchmarks/region.py, 8.6 GB since the builds fill their arrays in place (kept generous);
+# about 75-78 B per cell stay held for the run
 _BYTES_PER_CELL = 110
 # ... of which the run holds this much (and each worker process of a local cluster its copy)
 _HELD_BYTES_PER_CELL = 75

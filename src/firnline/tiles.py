@@ -279,7 +279,7 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     if len(parts) == 1:
         return _run_part(setup, config, unit, warming_k, precip_change_pct, progress, whole, keep_kernel, put)
     within = None
-    if setup.routing is not None:       # the unit's upslope steps bound each part's search
+    if setup.routing is not None and not whole:     # the unit's upslope steps bound each part's search
         from .snowslide import upslope_steps
         within = upslope_steps(setup.routing, unit.positions)
     t0 = time.perf_counter()
@@ -471,7 +471,7 @@ class Collector:
 
 class Spool:
     """A work folder beside the output folder into which units on worker processes of this machine
-    write each block's fields (:class:`SpoolPut`: one ``.npy`` archive per part and block of
+    write each block's fields (:class:`SpoolPut`: one ``.npz`` file per part and block of
     years), so a worker holds one block of one part, not every year of its unit; the run places
     and removes them as the unit arrives (:meth:`take`). Named like the spilled maps' folders
     (``.OUT.firnline-maps-PID-*``), so the next command on the output folder clears it if the run

@@ -495,7 +495,10 @@ def test_a_unit_run_in_parts_gives_the_numbers_of_one_pass_over_it(tmp_path, bui
             for p in parts:
                 for q in p.glaciers:
                     assert np.array_equal(p.positions[q[1]], q[2])
-    assert_same_run(whole, run(cfg, setup=setup), exact_budget=False)          # one unit, 25 parts
+    calls = []
+    in_parts = run(cfg, setup=setup, progress=lambda label, done, total: calls.append((label, done, total)))
+    assert_same_run(whole, in_parts, exact_budget=False)                       # one unit, 25 parts
+    assert [c for c in calls if c[0] == "parts"] == [("parts", k, 25) for k in range(1, 26)]
     assert_same_run(whole, run(cfg20, setup=setup), exact_budget=False)        # 4 units, 9 parts each
     for u, a in zip(units, one_part):
         b = run_unit(setup, cfg20, u, 0.0, 0.0)

@@ -374,31 +374,31 @@ def _block_links(pos_pad, zc, cells, a, nx, dx, dy, slope_c, snow_density_kg_m3,
     return keep, recv, weight, holding
 
 
+@njit(cache=True, inline="always")
+def _reach_step(order, ptr, recv, reach, k):
+    # the cell of processing step k is reached when one of its receivers is
+    i = order[k]
+    if reach[i]:
+        return
+    for j in range(ptr[k], ptr[k + 1]):
+        if recv[j] >= 0 and reach[recv[j]]:
+            reach[i] = True
+            return
+
+
 @njit(cache=True)
 def _reach_up(order, ptr, recv, reach, last):
     # lowest first: receivers are settled; a cell below every target (a step after ``last``, the
     # lowest target's) sends only to cells below it, so none of them is reached
     for k in range(last, -1, -1):
-        i = order[k]
-        if reach[i]:
-            continue
-        for j in range(ptr[k], ptr[k + 1]):
-            if recv[j] >= 0 and reach[recv[j]]:
-                reach[i] = True
-                break
+        _reach_step(order, ptr, recv, reach, k)
 
 
 @njit(cache=True)
 def _reach_up_within(order, ptr, recv, reach, steps):
     # as _reach_up over the given processing steps only (ascending), lowest first
     for s in range(steps.size - 1, -1, -1):
-        i = order[steps[s]]
-        if reach[i]:
-            continue
-        for j in range(ptr[steps[s]], ptr[steps[s] + 1]):
-            if recv[j] >= 0 and reach[recv[j]]:
-                reach[i] = True
-                break
+        _reach_step(order, ptr, recv, reach, steps[s])
 
 
 def upslope_steps(routing: Routing, targets: np.ndarray) -> np.ndarray:

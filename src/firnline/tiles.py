@@ -267,7 +267,8 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     them into the run's maps at once); without it the fields of every year come back in the
     result. ``threads``: numba threads for the task (a dict host -> threads for a remote
     cluster); ``whole``: the unit is every cell of the setup (the run needs no cut);
-    ``keep_kernel``: keep the kernel's result when the unit is one part and its record one block.
+    ``keep_kernel``: keep the kernel's result when the unit is one part and its record one block;
+    ``progress``: the days of a unit of one part, else its parts (label ``"parts"``).
     """
     if isinstance(threads, dict):
         import socket
@@ -288,8 +289,10 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     gparts: dict = {}
     budgets, dailies = [], []
     slide_s = 0.0
-    for part in parts:
+    for k, part in enumerate(parts):
         r = _run_part(setup, config, part, warming_k, precip_change_pct, None, False, False, put, within)
+        if progress is not None:            # a run of one unit: a bar over its parts
+            progress("parts", k + 1, len(parts))
         if r.fields:
             at = np.searchsorted(unit.positions, part.positions)
             for name, v in r.fields.items():

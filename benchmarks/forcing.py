@@ -111,7 +111,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as td:
         cfgs = {k: firnline.load_config(v) for k, v in make_case(Path(td), args.size).items()}
         setups = {k: prepare(c) for k, c in cfgs.items()}
-        n = setups["station"].z_m.size
+        n = setups["station"].cells.size
         n_days = setups["station"].forcing.n_days
         simulate(setups["station"], cfgs["station"])                   # warm-up (numba)
         t_kernel = best_of(lambda: simulate(setups["station"], cfgs["station"]), args.repeat)
@@ -120,7 +120,7 @@ def main() -> None:
                  f"{t_kernel / (n * n_days) * 1e9:.2f} ns per cell-day",
                  f"numpy add pass: {add_ns:.3f} ns per cell"]
         # the floor of the block protocol: a provider that only writes its two arrays
-        zf = setups["station"].z_m.astype("float32")
+        zf = setups["station"].elevation().astype("float32")
         buf = (np.empty((block_days, n), "float32"), np.empty((block_days, n), "float32"))
 
         def write_only():

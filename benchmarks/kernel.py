@@ -194,7 +194,7 @@ def main() -> None:
         t0 = time.perf_counter()
         result = firnline.run(full, setup=full_setup)
         t_run = time.perf_counter() - t0
-    n_cd = setup.z_m.size * setup.forcing.n_days
+    n_cd = setup.cells.size * setup.forcing.n_days
     ns = t_kernel / n_cd * 1e9
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     n_glacier = int(np.count_nonzero(setup.glacier_mask))
@@ -204,7 +204,7 @@ def main() -> None:
     except ValueError:
         layer_name = "none"
     print(f"grid {args.size} x {args.size} ({'smooth valley' if args.smooth else 'rough relief'}), "
-          f"{setup.z_m.size} cells of which {n_glacier} glacier, {setup.forcing.n_days} days, "
+          f"{setup.cells.size} cells of which {n_glacier} glacier, {setup.forcing.n_days} days, "
           f"method {args.method}")
     print(f"threads {numba.get_num_threads()}, numba threading layer {layer_name}")
     print(f"kernel (best of {args.repeat}): {t_kernel:.3f} s, {ns:.3f} ns per cell-day")

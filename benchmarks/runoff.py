@@ -69,7 +69,7 @@ def main() -> None:
     t_prepare = time.perf_counter() - t_prepare0
     t_total = t_run + t_prepare
     added = (t_daily - t_plain) + t_route + t_files + t_fig
-    n_cells, n_days = setup.z_m.size, setup.forcing.n_days
+    n_cells, n_days = setup.cells.size, setup.forcing.n_days
     print("\n".join([
         f"demo: {n_cells} cells, {n_days} days, {len(series.regions)} regions",
         f"kernel without daily region sums: {t_plain:.2f} s; with them: {t_daily:.2f} s "

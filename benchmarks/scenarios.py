@@ -76,7 +76,7 @@ def main() -> None:
         t_run, one = best(lambda: firnline.run(cfg), args.repeat)
         t_sweep, sw = best(lambda: sweep(prepare(cfg), warming, precip), args.repeat)
         t_prepare = best(lambda: prepare(cfg), args.repeat)[0]
-    n_valid, n_glacier, n_days = one.setup.z_m.size, sw.setup.z_m.size, sw.setup.forcing.n_days
+    n_valid, n_glacier, n_days = one.setup.cells.size, sw.setup.cells.size, sw.setup.forcing.n_days
     print(f"case: {label}; {n_valid} valid cells of which {n_glacier} glacier cells, {n_days} days, "
           f"{len(sw.years)} balance years, {len(sw.setup.glaciers.names)} glaciers, method {cfg.melt.method}")
     print(f"prepare (inputs):   {t_prepare:.3f} s (best of {args.repeat})")

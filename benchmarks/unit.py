@@ -94,7 +94,7 @@ def main(argv=None) -> int:
     cfg = firnline.load_config(a.keep / "region.toml")
     cfg = dataclasses.replace(cfg, compute=dataclasses.replace(cfg.compute, tile_size=a.tile, workers=1))
     setup = prepare(cfg)
-    unit = max(tiles.make_units(setup, a.tile), key=lambda u: u.positions.size)
+    unit = max((tiles.fill_unit(setup, u) for u in tiles.make_units(setup, a.tile)), key=lambda u: u.positions.size)
     n_parts = len(tiles.unit_parts(setup, unit, tiles.part_size(a.tile)))
     print(f"grid {setup.grid.shape[0]} x {setup.grid.shape[1]}, {len(setup.forcing.years)} balance years; "
           f"unit {unit.index}: {unit.rows[1] - unit.rows[0]} x {unit.cols[1] - unit.cols[0]} cells, "

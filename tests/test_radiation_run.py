@@ -184,7 +184,7 @@ def test_radiation_defaults_agree_with_degree_day_defaults_on_the_demo(radiation
     kv = parameters.kernel_values(cfg)
     f = setup.forcing
     lapse = np.asarray(kv["lapse_rate_k_per_m"])[np.asarray(f.month) - 1]
-    dz = setup.z_m - cfg.climate.station_elevation_m
+    dz = setup.elevation() - cfg.climate.station_elevation_m
 
     def i_dd(pos, frac):
         return degree_day_weighted_radiation(setup.radiation, f.temperature_c, lapse, f.day_of_year, dz[pos],

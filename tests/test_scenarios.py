@@ -84,7 +84,7 @@ def test_planar_glacier_ela_moves_by_one_over_lapse_rate_per_kelvin(builders, tm
     setup = prepare(plane(builders, tmp_path))
     sw = sweep(setup, [1.0, 2.0])          # the (0, 0) reference is added by the sweep
     assert sw.scenarios == [(0.0, 0.0), (1.0, 0.0), (2.0, 0.0)]
-    z = setup.z_m
+    z = setup.elevation()
     for w in (0.0, 1.0, 2.0):
         yrs = sw.year_table[sw.year_table.warming_k == w]
         assert (yrs.ela_flag == "ok").all()
@@ -130,7 +130,7 @@ def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(builders,
     """With 6 K, z* = 2594 + 6 x 153.8 = 3517 m lies above the glacier top (3500 m): every
     band loses mass, the flag is above_glacier and the AAR 0 (DESIGN.md ela_flag rule)."""
     setup = prepare(plane(builders, tmp_path))
-    assert hand_ela(6.0) > setup.z_m.max()
+    assert hand_ela(6.0) > setup.elevation().max()
     sw = sweep(setup, [1.0, 2.0, 6.0])
     hot = sw.year_table[sw.year_table.warming_k == 6.0]
     assert (hot.ela_flag == "above_glacier").all() and (hot.aar == 0.0).all() and hot.ela_m.isna().all()
@@ -144,7 +144,7 @@ def test_scenario_above_the_glacier_is_flagged_and_left_out_of_dela_dt(builders,
     assert row.n_ela_years_used == 6 and row.n_ela_years_excluded == 2
     assert "above the glacier" in row.note and "+6 K in 2 of 2 years" in row.note
     # the balance slope keeps every warming step (balance is defined in every year)
-    hand = [hand_daily_balance(setup.z_m, w).mean() * 365 / 1000 for w in (0.0, 1.0, 2.0, 6.0)]
+    hand = [hand_daily_balance(setup.elevation(), w).mean() * 365 / 1000 for w in (0.0, 1.0, 2.0, 6.0)]
     assert row.dbalance_dt_mwe_per_k == pytest.approx(np.polyfit([0, 1, 2, 6], hand, 1)[0], rel=1e-4)
     assert sw.flags[sw.flags.warming_k == 6.0].n_above_glacier.iloc[0] == 2
 
@@ -182,9 +182,9 @@ def test_sweep_is_one_kernel_call_on_the_glacier_cells_and_matches_separate_runs
     setup = prepare(cfg)
     calls = []
     real = scen_mod.simulate
-    monkeypatch.setattr(scen_mod, "simulate", lambda st, *a, **k: calls.append(st.z_m.size) or real(st, *a, **k))
+    monkeypatch.setattr(scen_mod, "simulate", lambda st, *a, **k: calls.append(st.cells.size) or real(st, *a, **k))
     sw = sweep(setup, [0.5, 1.5], [-10.0, 10.0])
-    assert calls == [72, 120] and setup.z_m.size == 120 and len(sw.scenarios) == 5   # 24 x 3 of 40 x 3 cells
+    assert calls == [72, 120] and setup.cells.size == 120 and len(sw.scenarios) == 5   # 24 x 3 of 40 x 3 cells
     for w, p in [(1.5, 10.0), (0.0, 0.0)]:
         one = firnline.run(cfg, warming_k=w, precip_change_pct=p, setup=setup)
         mine = sw.year_table[(sw.year_table.warming_k == w) & (sw.year_table.precip_change_pct == p)]

@@ -21,7 +21,7 @@ import firnline
 from firnline import exact
 from firnline.cli import main
 from firnline.model import prepare, run
-from firnline.tiles import make_units, modelled_positions, run_unit
+from firnline.tiles import fill_unit, make_units, modelled_positions, run_unit
 
 CELL = 50.0
 X0, Y0 = 600000.0, 5150000.0
@@ -90,6 +90,25 @@ def test_exact_sums_merge_in_any_order_and_match_a_correctly_rounded_sum():
     assert np.isnan(exact.values(exact.of([0, 0, 1], [1.0, np.nan, 2.0]))[1][0])
 
 
+def test_exact_sums_of_repeated_terms_are_those_of_every_term():
+    """exact.of_repeated (the region areas: terms equal to one value counted, not split) gives the
+    integers of exact.of, with the common value given or found, one key or a key per term, zeros,
+    a NaN and a subnormal common value."""
+    rng = np.random.default_rng(3)
+    for t in range(60):
+        n = int(rng.integers(0, 3000))
+        x = float(rng.choice([625.0, 900.0, 0.1, 1e-310, 3.3333]))
+        v = np.where(rng.random(n) < 0.8, x, rng.random(n) * x)
+        if t % 7 == 0 and n:
+            v[rng.integers(0, n)] = np.nan
+        if t % 5 == 0 and n:
+            v[rng.integers(0, n)] = 0.0
+        k = np.int64(t % 9) if t % 3 == 0 else rng.integers(0, int(rng.integers(1, 40)), n)
+        a, b = exact.of(k, v), exact.of_repeated(k, v, None if t % 2 else x)
+        for name in ("key", "exp", "hi", "lo", "nonfinite"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+
+
 def test_columns_of_a_selection_are_those_of_the_dense_renumbering():
     """Columns.select (work over the selection's span only) gives the columns, cells, shares and
     regions of the plain definition: renumber every cell, keep the selected cells' own columns
@@ -112,6 +131,32 @@ def test_columns_of_a_selection_are_those_of_the_dense_renumbering():
         for name in ("share", "ice", "region"):
             np.testing.assert_array_equal(getattr(got, name), getattr(cols, name)[keep])
         assert got.n_cells == sub.size
+
+
+def test_the_column_table_of_a_setup_gives_the_columns_of_the_full_build():
+    """A prepared setup holds its columns as a ColumnTable (its glacier cells and appended columns,
+    not a column array of every cell); its selections and its full columns are those of
+    Columns.build, bit for bit, also where glaciers share cells with equal shares (ties go to the
+    first glacier in file order) and where they cover a cell more than wholly."""
+    from firnline.model import Columns, ColumnTable
+
+    rng = np.random.default_rng(11)
+    n = 4000
+    for ties in (False, True):
+        pos = [np.sort(rng.choice(n, rng.integers(1, 400), replace=False)) for _ in range(40)]
+        fr = [rng.choice([0.25, 0.5, 1.0], p.size) if ties else rng.uniform(0.05, 1.0, p.size) for p in pos]
+        cols, table = Columns.build(n, pos, fr), ColumnTable.build(n, pos, fr)
+        assert table.n == cols.n and table.glacier_cell.size < n
+        for sub in (np.arange(n), np.zeros(0, dtype=np.int64), np.arange(100, 1700),
+                    np.sort(rng.choice(n, 999, replace=False))):
+            ref, got = cols.select(sub), table.select(sub)
+            for name in ("cell", "share", "ice", "region"):
+                assert getattr(got, name).dtype == getattr(ref, name).dtype
+                np.testing.assert_array_equal(getattr(got, name), getattr(ref, name))
+            assert got.n_cells == ref.n_cells
+        full = table.full()
+        for name in ("cell", "share", "ice", "region"):
+            np.testing.assert_array_equal(getattr(full, name), getattr(cols, name))
 
 
 def test_columns_of_a_range_of_cells_are_those_of_the_selection_and_blend_alike():
@@ -164,15 +209,31 @@ def test_exact_sums_are_the_same_integers_on_the_dense_and_the_sparse_path():
 # tiled == untiled
 # ----------------------------------------------------------------------------
 
-def test_one_glacier_across_four_units_gives_the_untiled_numbers(tmp_path, builders):
+def test_one_glacier_across_four_units_gives_the_untiled_numbers(tmp_path, builders, monkeypatch):
     cfg = valley_case(tmp_path, builders)
     setup = prepare(cfg)
-    units = make_units(setup, 20)
+    lazy = make_units(setup, 20)
+    assert all(u.positions is None and u.glaciers is None for u in lazy)   # held only when it runs
+    units = [fill_unit(setup, u) for u in lazy]
     assert len(units) == 4
     assert all(any(g == 0 for g, *_ in u.glaciers) for u in units)      # the glacier is in all four
+    # the units share out every cell and every glacier's cells exactly
+    assert np.array_equal(np.sort(np.concatenate([u.positions for u in units])), np.arange(setup.cells.size))
+    for g, pos in enumerate(setup.glacier_pos):
+        mine = [(u, q) for u in units for q in u.glaciers if q[0] == g]
+        assert np.array_equal(np.sort(np.concatenate([q[2] for _, q in mine])), pos)
+        for u, (_, local, gp, share) in mine:
+            assert np.array_equal(u.positions[local], gp) and np.array_equal(pos[share], gp)
     whole = run(cfg, setup=setup)
     tiled = run(compute(cfg, tile_size=20, workers=1), setup=setup)
     assert whole.timings["units"] == 1 and tiled.timings["units"] == 4
+    # the region areas, made from the column table a few cells at a time, are the kernel's
+    from firnline import tiles
+    from firnline.model import simulate
+    kres = simulate(setup, cfg)
+    np.testing.assert_array_equal(tiles.region_areas(setup, None), kres.region_area_m2)
+    monkeypatch.setattr(tiles, "_AREA_CELLS", 7)
+    np.testing.assert_array_equal(tiles.region_areas(setup, None), kres.region_area_m2)
     assert_same_run(whole, tiled)
     # uneven units (tile 16: 3 x 3 windows, the last ones narrow) give the same again
     assert_same_run(whole, run(compute(cfg, tile_size=16, workers=1), setup=setup))
@@ -190,6 +251,47 @@ def test_with_snow_redistribution_and_every_process_on_tiles_give_the_same_maps_
     assert_same_run(whole, tiled, exact_budget=False)
 
 
+def test_snow_routing_made_by_window_gives_the_numbers_of_the_routing_of_the_whole_dem(tmp_path, builders,
+                                                                                       monkeypatch):
+    """Above model.WINDOW_ROUTING_CELLS valid cells (lowered here to 100) a setup holds no snow
+    routing: each unit makes that of a window around it, the halo (here from 1 cell) doubled until
+    the cells upslope of the unit stay two cells clear of the window's inner edges. The tiled run,
+    the run of every cell, a run of some cells (as a calibration's) and a sweep's glacier cut on
+    that setup give the numbers of the routing of the whole DEM, bit for bit."""
+    from firnline import model
+    from firnline.model import simulate
+    from firnline.scenarios import glacier_view
+
+    cfg = valley_case(tmp_path, builders, snow={"redistribution": "gravitational", "refreezing": "cold-content",
+                                                "firn_years": 5, "spinup_years": 1, "min_slide_slope_deg": 15.0})
+    ref = prepare(cfg)
+    assert ref.routing is not None and not ref.routing_by_window
+    whole = run(cfg, setup=ref)
+    monkeypatch.setattr(model, "WINDOW_ROUTING_CELLS", 100)
+    monkeypatch.setattr(model, "WINDOW_HALO", 1)
+    setup = prepare(cfg)
+    assert setup.routing is None and setup.routing_by_window
+    windows = []
+    made = model.window_routing
+    monkeypatch.setattr(model, "window_routing", lambda s, r, c: windows.append((r, c)) or made(s, r, c))
+    tiled = run(compute(cfg, tile_size=10, workers=1), setup=setup)
+    assert tiled.timings["units"] == 16
+    assert_same_run(whole, tiled, exact_budget=False)
+    # some units' upslope cells reached past the first halo (one cell), so it grew
+    assert max(r[1] - r[0] for r, _ in windows) > 12 and len(windows) > 16
+    assert_same_run(whole, run(cfg, setup=setup), exact_budget=False)        # every cell: one routing
+    cells = np.arange(3, setup.cells.size, 37)
+    a = simulate(ref, cfg, cells=cells, snapshot_days=[100, 400], daily=False)
+    b = simulate(setup, cfg, cells=cells, snapshot_days=[100, 400], daily=False)
+    assert np.array_equal(a.snapshots, b.snapshots) and np.array_equal(a.sums, b.sums)
+    ga, gb = glacier_view(ref), glacier_view(setup)
+    assert np.array_equal(ga.cells, gb.cells) and ga.cells.size < setup.cells.size
+    for name in ("order", "recv_ptr", "recv_pos", "recv_weight", "holding_mm"):
+        assert np.array_equal(getattr(ga.routing, name), getattr(gb.routing, name)), name
+    with pytest.raises(ValueError, match="upslope_setup"):
+        setup.select(np.arange(3))
+
+
 def test_the_demo_tiled_equals_the_demo_untiled(tmp_path):
     assert main(["demo", str(tmp_path / "in"), "--quiet"]) == 0
     cfg = firnline.load_config(tmp_path / "in" / "demo.toml")
@@ -200,7 +302,7 @@ def test_the_demo_tiled_equals_the_demo_untiled(tmp_path):
     assert_same_run(whole, tiled, exact_budget=False)
     # a unit's daily sums hold its own glaciers only (plus ice_free and catchment), placed by id
     n_gl = len(setup.glaciers.names)
-    for unit in make_units(setup, 128)[:4]:
+    for unit in [fill_unit(setup, u) for u in make_units(setup, 128)[:4]]:
         ids, sums = run_unit(setup, cfg, unit, 0.0, 0.0).daily
         mine = sorted(g for g, *_ in unit.glaciers)
         assert list(ids) == mine + [n_gl, n_gl + 1] and sums.shape[1] == len(mine) + 2
@@ -478,7 +580,7 @@ def test_a_unit_run_in_parts_gives_the_numbers_of_one_pass_over_it(tmp_path, bui
     setup = prepare(cfg)
     whole = run(cfg, setup=setup)
     cfg20 = compute(cfg, tile_size=20, workers=1)
-    units = make_units(setup, 20)
+    units = [fill_unit(setup, u) for u in make_units(setup, 20)]
     one_part = [run_unit(setup, cfg20, u, 0.0, 0.0) for u in units]
     assert tiles.PART_SIZE == 512 and tiles.part_size(2048) == 512 and tiles.part_size(512) == 512
     assert tiles.part_size(3000) == 500 and tiles.part_size(513) == 257 and tiles.part_size(20) == 20

@@ -98,6 +98,31 @@ def of(keys, values) -> Sums:
     return _normal(k0 + ub // ne, e0 + ub % ne, hi, lo, nonfinite)
 
 
+def of_repeated(keys, values, common: float | None = None) -> Sums:
+    """:func:`of` (the same sums, bit for bit) where many terms share one value, such as the areas of
+    whole cells: the terms equal to ``common`` (default: the largest finite term) are counted per
+    key and enter as ``count x`` their split, exact as integers; only the others are split one by
+    one. ``keys``: one non-negative int per value, or one for all."""
+    v = np.asarray(values, dtype="float64").ravel()
+    k = np.broadcast_to(np.asarray(keys, dtype=np.int64), np.shape(values)).ravel()
+    finite = np.isfinite(v)
+    if common is None:
+        common = float(v[finite].max()) if finite.any() else 0.0
+    same = v == common
+    if not np.isfinite(common) or common == 0.0 or not same.any():
+        return of(k, v)
+    rest = ~same
+    k0 = int(k.min())
+    counts = np.bincount(k[same] - k0)
+    used = np.flatnonzero(counts)
+    m, e = np.frexp(np.float64(common))
+    sig = int(np.ldexp(m, _SIGNIFICAND_BITS))
+    n = counts[used].astype(np.int64)
+    repeated = _normal(k0 + used.astype(np.int64), np.full(used.size, int(e) - _SIGNIFICAND_BITS, dtype=np.int64),
+                       n * (sig >> _SPLIT), n * (sig & _LO_MASK), np.zeros(0, dtype=np.int64))
+    return merge([repeated, of(k[rest], v[rest])])
+
+
 def _with_nonfinite(s: Sums, nonfinite) -> Sums:
     """``s`` with the keys of non-finite terms set."""
     return Sums(s.key, s.exp, s.hi, s.lo, np.unique(np.asarray(nonfinite, dtype=np.int64)))
@@ -152,3 +177,9 @@ def total(values_) -> float:
     """The sum of all terms, independent of their order (one key)."""
     keys, vals = values(of(0, values_))
     return float(vals[0]) if vals.size else 0.0
+
+
+def dense(s: Sums, n: int) -> np.ndarray:
+    """The values of keys ``0 .. n-1`` of some sums as an array (0.0 for a key without terms)."""
+    keys, vals = values(s)
+    return lookup(keys, vals, np.arange(int(n)))

@@ -1502,6 +1502,21 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                                  daily))
 
 
+def region_areas(region: np.ndarray, area_m2: np.ndarray, weight: np.ndarray | None, n_regions: int) -> np.ndarray:
+    """Areas of the daily-sum regions, m2: each region's columns (``region`` < ``n_regions - 1``)
+    and, last, the catchment (every column, times its ``weight``; None: 1).
+
+    Exact sums (:mod:`firnline.exact`): a function of the columns, not of their order, so the
+    areas of a tiled run, summed unit by unit, are those of one pass over every cell.
+    """
+    from . import exact
+
+    area = np.asarray(area_m2, dtype="float64")
+    catchment = area if weight is None else area * np.asarray(weight, dtype="float64")
+    return np.concatenate([exact.dense(exact.of_repeated(region, area), n_regions - 1),
+                           exact.dense(exact.of_repeated(0, catchment), 1)])
+
+
 def run_kernel_years(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                      scenarios: Scenarios | None = None, snapshot_days: Sequence[int] | None = None,
                      progress: Callable[[int], None] | None = None, slide: Slide | None = None,
@@ -1570,8 +1585,7 @@ def run_kernel_years(cells: Cells, calendar: Calendar, forcing, params: KernelPa
         raise ValueError("the calendar's balance-year index must not decrease")
     day_edges = np.searchsorted(year, edges_y, side="left")
     day_edges[-1] = n_days
-    region_area = np.concatenate([np.bincount(region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
-                                  [float(np.sum(area * weight))]])
+    region_area = region_areas(region, area, weight, n_regions)
     year_days_all = np.bincount(year, minlength=n_years)
 
     state = np.zeros((N_STATE, ns, n), dtype="float64")

@@ -190,6 +190,109 @@ class Columns:
         return out
 
 
+@dataclass(frozen=True)
+class ColumnTable:
+    """The surface columns (:class:`Columns`) of every cell of a setup, held compactly.
+
+    A cell without glacier cover is one ice-free column of share 1, so only the glacier cells
+    (their main glacier and its share, 20 B each) and the appended columns are kept, not 21 B per
+    column of every cell (2.1 GB at 1e8 cells). :meth:`select` gives the :class:`Columns` of some
+    cells, :meth:`full` those of every cell: bit for bit what :meth:`Columns.build` and
+    :meth:`Columns.select` give.
+
+    glacier_cell : ndarray int64
+        Positions (``Setup.cells`` order, ascending) of the cells with glacier cover.
+    main_share, main_region : ndarray float64, int32
+        Their main glacier's share and index.
+    extra_cell, extra_share, extra_ice, extra_region : ndarray
+        The appended columns, in column order (see :class:`Columns`).
+    """
+
+    n_cells: int
+    n_glaciers: int
+    glacier_cell: np.ndarray
+    main_share: np.ndarray
+    main_region: np.ndarray
+    extra_cell: np.ndarray
+    extra_share: np.ndarray
+    extra_ice: np.ndarray
+    extra_region: np.ndarray
+
+    @property
+    def n(self) -> int:
+        return int(self.n_cells + self.extra_cell.size)
+
+    @classmethod
+    def build(cls, n_cells: int, glacier_pos, fractions) -> "ColumnTable":
+        """The table of ``n_cells`` cells from the glaciers' cell positions and shares: the sums and
+        comparisons of :meth:`Columns.build`, glacier by glacier in file order, over the glacier
+        cells only."""
+        n_gl = len(glacier_pos)
+        pos_of = [np.asarray(p, dtype=np.int64) for p in glacier_pos]
+        frac_of = [np.asarray(f, dtype="float64") for f in fractions]
+        covered = np.unique(np.concatenate(pos_of)) if n_gl else np.zeros(0, dtype=np.int64)
+        total = np.zeros(covered.size)
+        best = np.zeros(covered.size)
+        main = np.full(covered.size, n_gl, dtype=np.int32)
+        for g, (pos, frac) in enumerate(zip(pos_of, frac_of)):
+            slot = np.searchsorted(covered, pos)
+            total[slot] += frac                  # a glacier's cells are distinct: np.add.at's sums
+            better = frac > best[slot]           # the first glacier in file order wins a tie
+            main[slot[better]] = g
+            best[slot[better]] = frac[better]
+        glacier = main < n_gl
+        part = np.flatnonzero(glacier & (total < 1.0))
+        others = [np.flatnonzero(main[np.searchsorted(covered, pos)] != g) for g, pos in enumerate(pos_of)]
+        extra_cell = np.concatenate([p[o] for p, o in zip(pos_of, others)] + [covered[part]])
+        extra_share = np.concatenate([f[o] for f, o in zip(frac_of, others)] + [1.0 - np.minimum(total[part], 1.0)])
+        n_other = extra_cell.size - part.size
+        extra_ice = np.zeros(extra_cell.size, dtype=bool)
+        extra_ice[:n_other] = True
+        extra_region = np.concatenate([np.full(o.size, g, dtype=np.int32) for g, o in enumerate(others)]
+                                      + [np.full(part.size, n_gl, dtype=np.int32)])
+        return cls(n_cells=int(n_cells), n_glaciers=n_gl, glacier_cell=covered[glacier],
+                   main_share=best[glacier], main_region=main[glacier], extra_cell=extra_cell.astype(np.int64),
+                   extra_share=extra_share.astype("float64"), extra_ice=extra_ice, extra_region=extra_region)
+
+    @functools.cached_property
+    def _extra_by_cell(self) -> tuple[np.ndarray, np.ndarray]:
+        """The appended columns sorted by cell (stable): (their cells, their indices among them)."""
+        order = np.argsort(self.extra_cell, kind="stable")
+        return self.extra_cell[order], order
+
+    def select(self, positions) -> Columns:
+        """The :class:`Columns` of some cells (ascending positions), their cells renumbered: work and
+        memory in proportion to the selection."""
+        sub = np.asarray(positions, dtype=np.int64)
+        n = sub.size
+        share = np.ones(n)
+        region = np.full(n, self.n_glaciers, dtype=np.int32)
+        ice = np.zeros(n, dtype=bool)
+        if n and self.glacier_cell.size:
+            at = np.minimum(np.searchsorted(self.glacier_cell, sub), self.glacier_cell.size - 1)
+            hit = self.glacier_cell[at] == sub
+            k = at[hit]
+            share[hit] = self.main_share[k]
+            region[hit] = self.main_region[k]
+            ice[hit] = True
+        extra = np.zeros(0, dtype=np.int64)
+        if n and self.extra_cell.size:
+            cells_sorted, order = self._extra_by_cell
+            lo = np.searchsorted(cells_sorted, sub, side="left")
+            count = np.searchsorted(cells_sorted, sub, side="right") - lo
+            if count.any():
+                start = np.repeat(lo - np.concatenate([[0], np.cumsum(count)[:-1]]), count)
+                extra = np.sort(order[start + np.arange(start.size)])      # in column order, as appended
+        cell = np.concatenate([np.arange(n, dtype=np.int64), np.searchsorted(sub, self.extra_cell[extra])])
+        return Columns(cell=cell, share=np.concatenate([share, self.extra_share[extra]]),
+                       ice=np.concatenate([ice, self.extra_ice[extra]]),
+                       region=np.concatenate([region, self.extra_region[extra]]), n_cells=int(n))
+
+    def full(self) -> Columns:
+        """The :class:`Columns` of every cell."""
+        return self.select(np.arange(self.n_cells, dtype=np.int64))
+
+
 def _all_in(pos: np.ndarray, sub: np.ndarray) -> bool:
     """Whether every one of ``pos`` is in ``sub`` (ascending)."""
     if pos.size == 0:
@@ -205,7 +308,7 @@ class Setup:
     """Everything a kernel run needs, read and derived once by :func:`prepare` (frozen).
 
     The per-cell order rule: ``cells`` are the flat (C-order) indices of the modelled
-    DEM cells, ascending; every per-cell array (``z_m``, ``glacier_mask``, the rows of
+    DEM cells, ascending; every per-cell array (``glacier_mask``, ``z_m`` or :meth:`elevation`, the rows of
     ``radiation``) follows that order, and ``glacier_pos[g]`` gives the positions of
     glacier ``g``'s cells in it (aligned with ``glaciers.fractions[g]``). A subset of
     cells is made only by :meth:`select`, which keeps the rule.
@@ -214,7 +317,9 @@ class Setup:
     may change only the model parameters of :mod:`firnline.parameters` that the kernel
     takes (see :func:`check_config`).
 
-    Slope and aspect serve :func:`prepare` only (the snow routing and the radiation table) and
+    ``z_m`` (the cells' elevations) is None in a prepared setup, which reads them off the DEM grid
+    (:meth:`elevation`; 8 B per cell not held twice), and held by a selection. Slope and aspect
+    serve :func:`prepare` only (the snow routing and the radiation table) and
     are not kept (16 B per DEM cell); :func:`terrain` gives them.
     """
 
@@ -223,7 +328,7 @@ class Setup:
     glaciers: Glaciers
     forcing: Forcing
     cells: np.ndarray
-    z_m: np.ndarray
+    z_m: np.ndarray | None
     glacier_mask: np.ndarray
     glacier_pos: tuple
     radiation: RadiationTable | None
@@ -234,40 +339,84 @@ class Setup:
     catchment_weight: np.ndarray | None = None
     #: The gauge record of ``[observations] discharge`` (firnline.runoff.ObservedDischarge), or None.
     discharge: object = None
-    columns: Columns | None = None
+    #: The surface columns: a :class:`ColumnTable` (a prepared setup) or :class:`Columns` (a selection).
+    columns: Columns | ColumnTable | None = None
     routing: object | None = None
+    #: Sliding snow on a DEM of more than :data:`WINDOW_ROUTING_CELLS` cells: no routing of the
+    #: whole DEM is held; a run over some cells makes theirs and that of every cell upslope of
+    #: them (:func:`upslope_setup`).
+    routing_by_window: bool = False
 
     @property
     def surface_columns(self) -> Columns:
-        """The kernel's surface columns (:class:`Columns`)."""
-        if self.columns is not None:
-            return self.columns
-        return Columns.build(self.cells.size, self.glacier_pos, self.glaciers.fractions)
+        """The kernel's surface columns of every cell (:class:`Columns`; made once from a table)."""
+        cols = self.columns
+        if isinstance(cols, Columns):
+            return cols
+        made = self.__dict__.get("_every_column")
+        if made is None:
+            made = cols.full() if cols is not None else Columns.build(self.cells.size, self.glacier_pos,
+                                                                       self.glaciers.fractions)
+            self.__dict__["_every_column"] = made           # a cache, not a field: not pickled
+        return made
 
-    def select(self, positions) -> "Setup":
+    def columns_of(self, positions) -> Columns:
+        """The surface columns of some cells (ascending positions), their cells renumbered, made
+        without the columns of every cell when the setup holds a :class:`ColumnTable`."""
+        cols = self.columns
+        if cols is None:
+            cols = self.surface_columns
+        return cols.select(positions)
+
+    def elevation(self, positions=None) -> np.ndarray:
+        """Elevation of the cells (or of some positions in ``cells`` order), m: ``z_m``, or, for a
+        prepared setup (which does not hold them, 8 B per cell), read off the DEM grid."""
+        if self.z_m is not None:
+            return self.z_m if positions is None else self.z_m[positions]
+        flat = self.cells if positions is None else self.cells[positions]
+        return self.grid.elevation.ravel()[flat]
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state.pop("_every_column", None)
+        return state
+
+    def select(self, positions, routing=None) -> "Setup":
         """The setup restricted to some cells, given as ascending positions in ``cells`` order.
 
         The per-cell arrays and the radiation table are cut; the grid, glaciers,
         forcing and notes are shared. ``glacier_pos`` is remapped when every glacier
         lies wholly inside or wholly outside the selection (as for the glacier cells of
         a sweep); otherwise it is empty, and the selection serves kernel runs only (no
-        per-glacier metrics).
+        per-glacier metrics). ``routing``: the snow routing of the selected cells, given for a
+        setup with ``routing_by_window`` (by :func:`upslope_setup`, the one way to cut its cells).
         """
         sub = np.asarray(positions, dtype=np.int64)
         if sub.size > 1 and np.any(np.diff(sub) <= 0):
             raise ValueError("Setup.select takes ascending, distinct positions")
+        if self.routing_by_window and routing is None:
+            raise ValueError("the cells of a setup that makes its snow routing by window are cut by "
+                             "firnline.model.upslope_setup, which makes the routing of the cut")
         whole = all(_all_in(pos, sub) for pos in self.glacier_pos)
         pos = tuple(np.searchsorted(sub, p) for p in self.glacier_pos) if whole else ()
         rad = self.radiation.subset(sub) if self.radiation is not None else None
         cw = self.catchment_weight[sub] if self.catchment_weight is not None else None
-        routing = None
-        if self.routing is not None:
+        if routing is None and self.routing is not None:
             from . import snowslide
             routing = snowslide.subset(self.routing, sub)
-        return dataclasses.replace(self, cells=self.cells[sub], z_m=self.z_m[sub],
+        return dataclasses.replace(self, cells=self.cells[sub], z_m=self.elevation(sub),
                                    glacier_mask=self.glacier_mask[sub], radiation=rad,
                                    glacier_pos=pos, catchment_weight=cw,
-                                   columns=self.surface_columns.select(sub), routing=routing)
+                                   columns=self.columns_of(sub), routing=routing, routing_by_window=False)
+
+    def window_positions(self, rows: tuple[int, int], cols: tuple[int, int]) -> np.ndarray:
+        """The positions (``cells`` order, ascending) of the cells in a window of the DEM (rows
+        ``rows[0]`` to ``rows[1] - 1``, columns likewise): a search per row, no pass over the DEM."""
+        nx = self.grid.shape[1]
+        starts = np.arange(rows[0], rows[1], dtype=np.int64) * nx
+        lo = np.searchsorted(self.cells, starts + cols[0])
+        count = np.searchsorted(self.cells, starts + cols[1]) - lo
+        return np.repeat(lo - (np.cumsum(count) - count), count) + np.arange(int(count.sum()), dtype=np.int64)
 
 
 def check_config(setup: Setup, config: Config | None) -> Config:
@@ -353,7 +502,11 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
         timings["radiation_s"] = time.perf_counter() - t1
     del aspect                  # only the radiation table needs it (8 B per DEM cell)
     routing = None
-    if config.snow.redistribution == "gravitational":
+    by_window = config.snow.redistribution == "gravitational" and cells.size > WINDOW_ROUTING_CELLS
+    if by_window:
+        notes.append(f"snow routing: made for each unit of work and the cells upslope of it ({cells.size} "
+                     f"cells are more than {WINDOW_ROUTING_CELLS} for one routing of the whole DEM)")
+    elif config.snow.redistribution == "gravitational":
         from . import slide_cache
         t2 = time.perf_counter()
         routing, note = slide_cache.cached_routing(
@@ -364,12 +517,81 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
     glacier_pos = tuple(np.searchsorted(cells, c) for c in gl.cells)
     del slope
     return Setup(config=config, grid=grid, glaciers=gl,
-                 forcing=forcing, cells=cells, z_m=grid.elevation.ravel()[cells],
+                 forcing=forcing, cells=cells, z_m=None,
                  glacier_mask=gl.total_fraction.ravel()[cells] > 0,
                  glacier_pos=glacier_pos,
                  radiation=table, checksums=checksums, notes=tuple(notes), timings=timings,
                  catchment_weight=weight, discharge=observed,
-                 columns=Columns.build(cells.size, glacier_pos, gl.fractions), routing=routing)
+                 columns=ColumnTable.build(cells.size, glacier_pos, gl.fractions), routing=routing,
+                 routing_by_window=by_window)
+
+
+#: A DEM of more valid cells than this does not get one snow routing of the whole DEM (13 B per
+#: cell held, about 30 B more while it is built): each run over some cells makes the routing of
+#: a window around them (:func:`upslope_setup`). Up to it the routing of the whole DEM is made
+#: once and cached on disk (:mod:`firnline.slide_cache`).
+WINDOW_ROUTING_CELLS = 1 << 24
+#: Cells around the asked cells' bounding box in the first window of :func:`upslope_setup`
+#: (doubled until the cells upslope of them stay clear of the window's edge).
+WINDOW_HALO = 16
+
+
+def window_routing(setup: Setup, rows: tuple[int, int], cols: tuple[int, int]):
+    """The snow routing (:func:`firnline.snowslide.build_routing`) of a window of the DEM, over its
+    valid cells in ``cells`` order, with the Horn slope of the window: that of the whole DEM for
+    every cell whose 3 x 3 neighbourhood lies in the window."""
+    from .snowslide import build_routing
+
+    grid, snow = setup.grid, setup.config.snow
+    z = grid.elevation[rows[0]:rows[1], cols[0]:cols[1]]
+    slope, aspect = slope_aspect(z, *grid.cell_size_m)
+    del aspect
+    return build_routing(z, grid.valid[rows[0]:rows[1], cols[0]:cols[1]], grid.cell_size_m, slope,
+                         snow.snow_density_kg_m3, snow.min_slide_slope_deg)
+
+
+def upslope_setup(setup: Setup, positions) -> tuple[Setup, np.ndarray, np.ndarray]:
+    """The setup cut to some cells and every cell upslope of them, with the snow routing of the cut,
+    for a setup with ``routing_by_window``; also the cells' places in the cut and the cut's
+    positions in ``setup``.
+
+    The routing is made over a window: the cells' bounding box with a halo of
+    :data:`WINDOW_HALO` cells, doubled until no cell upslope of them (:func:`firnline.snowslide.upslope`
+    in the window) lies within two cells of a window edge that is not the DEM's. Then every such
+    cell has its 3 x 3 neighbourhood in the window, so its slope, capacity, receivers and weights
+    are those of the whole DEM, and a cell that sends snow onto one of them lies in the window
+    (it is next to one), so the cut holds every cell upslope of them: the run of the cut gives the
+    cells the values of a run with the routing of the whole DEM, bit for bit (the window's cells
+    are in the same row-major order, so the processing order of equal elevations is the same).
+    """
+    from .snowslide import subset, upslope
+
+    pos = np.asarray(positions, dtype=np.int64)
+    grid = setup.grid
+    ny, nx = grid.shape
+    if pos.size == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return setup.select(empty, routing=subset(window_routing(setup, (0, 1), (0, 1)), empty)), empty, empty
+    rr, cc = np.divmod(setup.cells[pos], nx)
+    r0, r1, c0, c1 = int(rr.min()), int(rr.max()) + 1, int(cc.min()), int(cc.max()) + 1
+    del rr, cc
+    halo = WINDOW_HALO
+    while True:
+        rows = (max(0, r0 - halo), min(ny, r1 + halo))
+        cols = (max(0, c0 - halo), min(nx, c1 + halo))
+        win = setup.window_positions(rows, cols)
+        routing = window_routing(setup, rows, cols)
+        keep = np.flatnonzero(upslope(routing, np.searchsorted(win, pos)))
+        ur, uc = np.divmod(setup.cells[win[keep]], nx)
+        clear = ((rows[0] == 0 or ur.min() >= rows[0] + 2) and (rows[1] == ny or ur.max() < rows[1] - 2)
+                 and (cols[0] == 0 or uc.min() >= cols[0] + 2) and (cols[1] == nx or uc.max() < cols[1] - 2))
+        del ur, uc
+        if clear:
+            break
+        halo *= 2
+    cut = win[keep]
+    sub = setup.select(cut, routing=subset(routing, keep))
+    return sub, np.searchsorted(cut, pos), cut
 
 
 def runoff_inputs(config: Config, grid: Grid, cells: np.ndarray, checksums: dict, notes: list):
@@ -528,7 +750,7 @@ def cell_forcing(setup: Setup, params: KernelParams, positions: np.ndarray | Non
 
     src = setup.forcing.cells_source
     flat = setup.cells if positions is None else setup.cells[positions]
-    z = setup.z_m if positions is None else setup.z_m[positions]
+    z = setup.elevation(positions)
     month = setup.forcing.month
     if isinstance(src, GriddedForcing):
         return src.cells_provider(z, params, month, np.searchsorted(src.cells, flat))
@@ -672,13 +894,22 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
     params = KernelParams.from_config(cfg)
     keep = None
     halo = None           # cells run only for the snow they send to the asked cells (not in the daily sums)
+    if cells is None and setup.routing_by_window:       # every cell: the routing of the whole DEM
+        setup = dataclasses.replace(setup, routing=window_routing(setup, (0, setup.grid.shape[0]),
+                                                                  (0, setup.grid.shape[1])),
+                                    routing_by_window=False)
     if cells is not None:
         cells = np.asarray(cells, dtype=np.int64)
+        if setup.routing_by_window:     # the asked cells and those upslope of them, with their routing
+            setup, cells, cut = upslope_setup(setup, cells)
+            upslope_within = None
+            if catchment_weight is not None:
+                catchment_weight = np.asarray(catchment_weight)[cut]
         if setup.routing is not None:
             from .snowslide import upslope
             wide = np.flatnonzero(upslope(setup.routing, cells, upslope_within))
             if wide.size != cells.size:
-                inner = setup.surface_columns.select(wide)
+                inner = setup.columns_of(wide)
                 keep_cells = np.searchsorted(wide, cells)
                 mark = np.zeros(wide.size, bool)
                 mark[keep_cells] = True
@@ -722,7 +953,7 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
         out_col = halo[cols.cell]
         region = np.where(out_col, n_gl, region + (region >= n_gl)).astype(np.int32)
         weight = np.where(out_col, 0.0, weight)
-    kcells = Cells(setup.z_m[cols.cell], cols.ice, rad, region=region,
+    kcells = Cells(setup.elevation(cols.cell), cols.ice, rad, region=region,
                    area_m2=setup.grid.cell_area_m2 * cols.share, catchment_weight=weight,
                    n_glaciers=n_gl + (halo is not None and daily))
     if f.cells_source is not None:      # several stations or a gridded file: the kernel's cell mode
@@ -931,7 +1162,7 @@ def glacier_part_sums(setup: Setup, fields: dict[str, np.ndarray], parts=None, f
     out = []
     for g, local, pos, share in parts:
         b = [fields[k][:, local] for k in ("annual_balance", "winter_balance", "summer_balance")]
-        out.append(glacier_sums(setup.z_m[pos], gl.fractions[g][share] * area, *b, bw, first_year))
+        out.append(glacier_sums(setup.elevation(pos), gl.fractions[g][share] * area, *b, bw, first_year))
     return out
 
 

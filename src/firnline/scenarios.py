@@ -314,7 +314,7 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
     per_scenario = []
     profile_rows = []
     profile_ela = []
-    mean_balance = np.empty((len(defs), setup.z_m.size), dtype="float32")
+    mean_balance = np.empty((len(defs), setup.cells.size), dtype="float32")
     for s, d in enumerate(defs):
         w, p = scen[s]
         f = cell_fields(setup, kres, s)
@@ -325,7 +325,7 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
         summary["scenario"] = d.name
         per_scenario.append(summary)
         for name, pos, frac in zip(gl.names, setup.glacier_pos, gl.fractions):
-            zs, bs = setup.z_m[pos], mean_balance[s][pos].astype("float64")
+            zs, bs = setup.elevation(pos), mean_balance[s][pos].astype("float64")
             prof = band_profile(zs, bs, frac * area, bw)
             profile_rows += [[name, w, p, b0, b1, a / 1e6, b, d.name] for b0, b1, a, b in
                              zip(prof.band_bottom_m, prof.band_top_m, prof.area_m2, prof.balance_mwe)]
@@ -343,8 +343,8 @@ def sweep(setup: Setup, warming_k: Sequence[float] = (), precip_change_pct: Sequ
     glaciers = pd.DataFrame({
         "glacier": list(gl.names),
         "area_km2": [float(np.sum(fr) * area / 1e6) for fr in gl.fractions],
-        "min_elevation_m": [float(setup.z_m[pos].min()) for pos in setup.glacier_pos],
-        "max_elevation_m": [float(setup.z_m[pos].max()) for pos in setup.glacier_pos],
+        "min_elevation_m": [float(setup.elevation(pos).min()) for pos in setup.glacier_pos],
+        "max_elevation_m": [float(setup.elevation(pos).max()) for pos in setup.glacier_pos],
     })
     prof_ela = pd.DataFrame(profile_ela, columns=["glacier", "scenario", "profile_ela_m", "profile_ela_flag"])
     table = scenario_means(years_df, prof_ela)
@@ -387,6 +387,9 @@ def glacier_view(setup: Setup) -> Setup:
     """
     if setup.glacier_mask.all():
         return setup
+    if setup.routing_by_window:
+        from .model import upslope_setup
+        return upslope_setup(setup, np.flatnonzero(setup.glacier_mask))[0]
     if setup.routing is not None:
         # snow slides onto the glaciers from above: keep every cell upslope of them (exact)
         from .snowslide import upslope

@@ -26,7 +26,9 @@ so its memory does not grow with the years. The fields go into the run's
 as each unit arrives from a worker elsewhere (:meth:`Collector.add`), in
 memory or, for a large run, into a chunked file read lazily, so the run holds one unit's
 results at a time. Terrain, horizons and the radiation table are computed once
-for the whole DEM by :func:`firnline.model.prepare` (no per-unit halo yet).
+for the whole DEM by :func:`firnline.model.prepare` (no per-unit halo yet); on a DEM above
+:data:`firnline.model.WINDOW_ROUTING_CELLS` the snow routing is not: each unit makes that of its
+cells and those upslope of them (:func:`firnline.model.upslope_setup`) and runs on that cut.
 
 Scheduling (:func:`run_units`): a run of one unit, or with ``workers = 1``, runs in this
 process (the synchronous path: no copy of the inputs to other processes, and numba's
@@ -39,6 +41,7 @@ oversubscribe the cores.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 import time
@@ -59,14 +62,18 @@ class Unit:
 
     ``positions`` (ascending, into ``Setup.cells`` order) are its modelled cells; ``glaciers``
     lists, for each glacier with cells in it, ``(g, local, pos, share)``: the cells' places in
-    ``positions``, in ``Setup.cells`` and in ``glaciers.fractions[g]``.
+    ``positions``, in ``Setup.cells`` and in ``glaciers.fractions[g]``. A unit of
+    :func:`make_units` holds neither (None: every valid cell of its window, and the parts of the
+    glaciers ``glacier_ids``) until it runs (:func:`fill_unit`), so a run does not hold every
+    unit's cells (8 B per DEM cell) while they wait.
     """
 
     index: int
     rows: tuple[int, int]
     cols: tuple[int, int]
-    positions: np.ndarray
-    glaciers: tuple = ()
+    positions: np.ndarray | None = None
+    glaciers: tuple | None = None
+    glacier_ids: tuple = ()
 
 
 def window_of(setup, tile_size: int, positions: np.ndarray) -> np.ndarray:
@@ -96,47 +103,61 @@ def modelled_positions(setup, compute) -> np.ndarray | None:
 
 
 def make_units(setup, tile_size: int, positions: np.ndarray | None = None) -> list[Unit]:
-    """The units of a run: windows of ``tile_size`` cells with at least one modelled cell.
+    """The units of a run: windows of ``tile_size`` cells with at least one modelled cell, row-major.
 
-    Made a band of ``tile_size`` rows at a time (the cells are in row-major order, so a band's
-    cells are a range of them): no array of every cell besides the units' positions."""
+    With ``positions`` (a selection of cells) each unit holds its own; without, it holds none until
+    it runs (:func:`fill_unit`). Made a band of ``tile_size`` rows at a time (the cells are in
+    row-major order, so a band's cells are a range of them)."""
     ny, nx = setup.grid.shape
     n_tc = -(-nx // tile_size)
     cells = setup.cells
     if positions is not None:
         positions = np.asarray(positions, dtype=np.int64)
         at = cells[positions]
-    g_parts: dict[int, list] = {}
+    g_ids: dict[int, list] = {}
     for g, gpos in enumerate(setup.glacier_pos):
-        gu = window_of(setup, tile_size, gpos)
-        for u in np.unique(gu):
-            g_parts.setdefault(int(u), []).append((g, np.flatnonzero(gu == u)))
+        for u in np.unique(window_of(setup, tile_size, gpos)):
+            g_ids.setdefault(int(u), []).append(g)
     units = []
     for r0 in range(0, ny, tile_size):
         r1 = min(r0 + tile_size, ny)
         if positions is None:
             lo, hi = np.searchsorted(cells, [r0 * nx, r1 * nx])
-            band = np.arange(lo, hi, dtype=np.int64)
             col = cells[lo:hi] % nx // tile_size
+            ids = np.unique(col)
+            bounds = None
         else:
             lo, hi = np.searchsorted(at, [r0 * nx, r1 * nx])
             band = positions[lo:hi]
             col = at[lo:hi] % nx // tile_size
-        order = np.argsort(col, kind="stable")
-        ids, start = np.unique(col[order], return_index=True)
-        bounds = np.append(start, order.size)
+            order = np.argsort(col, kind="stable")
+            ids, start = np.unique(col[order], return_index=True)
+            bounds = np.append(start, order.size)
         for k, w in enumerate(ids):
-            mine = band[order[bounds[k]:bounds[k + 1]]]
             u = (r0 // tile_size) * n_tc + int(w)
-            parts = []
-            for g, share in g_parts.get(u, []):
-                gp = setup.glacier_pos[g][share]
-                parts.append((g, np.searchsorted(mine, gp), gp, share))
             c0 = int(w) * tile_size
-            units.append(Unit(index=u, rows=(r0, r1), cols=(c0, min(c0 + tile_size, nx)),
-                              positions=mine, glaciers=tuple(parts)))
-        del band, col, order
+            mine = None if bounds is None else band[order[bounds[k]:bounds[k + 1]]]
+            units.append(Unit(index=u, rows=(r0, r1), cols=(c0, min(c0 + tile_size, nx)), positions=mine,
+                              glacier_ids=tuple(g_ids.get(u, ()))))
+        del col
     return units
+
+
+def fill_unit(setup, unit: Unit) -> Unit:
+    """The unit with its modelled cells and glacier parts (see :class:`Unit`)."""
+    if unit.positions is not None and unit.glaciers is not None:
+        return unit
+    pos = unit.positions if unit.positions is not None else setup.window_positions(unit.rows, unit.cols)
+    (r0, r1), (c0, c1) = unit.rows, unit.cols
+    nx = setup.grid.shape[1]
+    parts = []
+    for g in unit.glacier_ids:
+        gpos = setup.glacier_pos[g]
+        r, c = np.divmod(setup.cells[gpos], nx)
+        share = np.flatnonzero((r >= r0) & (r < r1) & (c >= c0) & (c < c1))
+        gp = gpos[share]
+        parts.append((g, np.searchsorted(pos, gp), gp, share))
+    return dataclasses.replace(unit, positions=pos, glaciers=tuple(parts))
 
 
 #: A unit runs in blocks of balance years whose kernel results and fields take about this much
@@ -276,6 +297,20 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
     if threads:
         import numba
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    unit = fill_unit(setup, unit)
+    if setup.routing_by_window and not whole:
+        # the unit's cells and those upslope of them, with their own routing; the results go back
+        # to the run's positions
+        from .model import upslope_setup
+        t0 = time.perf_counter()
+        setup, local, cut = upslope_setup(setup, unit.positions)
+        unit = dataclasses.replace(unit, positions=local, glaciers=tuple(
+            (g, at, np.searchsorted(cut, gp), share) for g, at, gp, share in unit.glaciers))
+        r = run_unit(setup, config, unit, warming_k, precip_change_pct, None, progress, False, keep_kernel,
+                     None if put is None else _PutBack(put, cut))
+        r.positions = cut[r.positions]
+        r.seconds = time.perf_counter() - t0
+        return r
     parts = unit_parts(setup, unit, part_size(config.compute.tile_size))
     if len(parts) == 1:
         return _run_part(setup, config, unit, warming_k, precip_change_pct, progress, whole, keep_kernel, put)
@@ -318,6 +353,18 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
                       daily=daily, seconds=time.perf_counter() - t0, slide_seconds=slide_s)
 
 
+@dataclass(frozen=True)
+class _PutBack:
+    """A ``put`` of :func:`run_unit` for a unit run on a cut of the setup (:func:`firnline.model.upslope_setup`):
+    the parts' positions turned back into the run's (``cut``: the cut's positions in it)."""
+
+    put: object
+    cut: np.ndarray
+
+    def __call__(self, part, first_year: int, fields: dict) -> None:
+        self.put(dataclasses.replace(part, positions=self.cut[part.positions]), first_year, fields)
+
+
 def _run_part(setup, config, unit: Unit, warming_k: float, precip_change_pct: float, progress: Progress,
               whole: bool, keep_kernel: bool, put, within=None) -> UnitResult:
     """One part of a unit (or a unit of one part): :func:`run_unit` without the parts (``within``:
@@ -327,7 +374,7 @@ def _run_part(setup, config, unit: Unit, warming_k: float, precip_change_pct: fl
     t0 = time.perf_counter()
     cells = None if whole else unit.positions
     n_years = len(setup.forcing.years)
-    n_cols = setup.surface_columns.n if whole else setup.surface_columns.select(unit.positions).n
+    n_cols = setup.surface_columns.n if whole else setup.columns_of(unit.positions).n
     step = block_years(n_cols, n_years)
     sub = None          # the unit's setup, cut once the kernel's first block is done
     f, budgets, gparts = {}, [], {}
@@ -392,19 +439,27 @@ class Merged:
     notes: tuple = ()
 
 
+#: Cells at a time of :func:`region_areas` (their columns take about 100 MB).
+_AREA_CELLS = 1 << 22
+
+
 def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
     """Areas of the daily-sum regions (glaciers, ice_free, catchment weighted) of the modelled cells,
-    m2, computed as the kernel computes them."""
-    cols = setup.surface_columns if positions is None else setup.surface_columns.select(positions)
+    m2: the exact sums of :func:`firnline.kernel.region_areas` (what a kernel run over the same cells
+    gives), made :data:`_AREA_CELLS` cells at a time."""
     n_regions = len(setup.glaciers.names) + 2
-    area = setup.grid.cell_area_m2 * cols.share
     cw = setup.catchment_weight
-    if positions is not None and cw is not None:
-        cw = cw[positions]
-    # every weight 1: the sum of the areas themselves (x 1.0 is exact), with no array of ones
-    catchment = float(np.sum(area)) if cw is None else float(np.sum(area * np.asarray(cw, dtype="float64")[cols.cell]))
-    return np.concatenate([np.bincount(cols.region, weights=area, minlength=n_regions - 1)[:n_regions - 1],
-                           [catchment]])
+    n = setup.cells.size if positions is None else int(np.asarray(positions).size)
+    parts = []
+    for a in range(0, n, _AREA_CELLS):
+        b = min(n, a + _AREA_CELLS)
+        sub = np.arange(a, b, dtype=np.int64) if positions is None else np.asarray(positions[a:b], dtype=np.int64)
+        cols = setup.columns_of(sub)
+        area = setup.grid.cell_area_m2 * cols.share
+        catchment = area if cw is None else area * np.asarray(cw, dtype="float64")[sub][cols.cell]
+        parts += [exact.of_repeated(cols.region, area), exact.of_repeated(n_regions - 1, catchment)]
+        del cols, area, catchment
+    return exact.dense(exact.merge(parts), n_regions)
 
 
 class Collector:

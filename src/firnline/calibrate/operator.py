@@ -140,7 +140,7 @@ def observation_table(setup: Setup, points: PointBalances | None,
         mean_z = {}
         for g in set(int(i) for i in glaciers.glacier_index):
             frac = np.asarray(gl.fractions[g], dtype="float64")
-            mean_z[g] = float(np.sum(frac * setup.z_m[setup.glacier_pos[g]]) / frac.sum())
+            mean_z[g] = float(np.sum(frac * setup.elevation(setup.glacier_pos[g])) / frac.sum())
         frames.append(pd.DataFrame({
             "kind": "glacier", "id": glaciers.glacier, "file": glaciers.source, "line": glaciers.lines,
             "start_date": [d.isoformat() for d in glaciers.start_date],

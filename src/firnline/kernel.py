@@ -1502,19 +1502,26 @@ def run_kernel(cells: Cells, calendar: Calendar, forcing, params: KernelParams,
                                  daily))
 
 
-def region_areas(region: np.ndarray, area_m2: np.ndarray, weight: np.ndarray | None, n_regions: int) -> np.ndarray:
-    """Areas of the daily-sum regions, m2: each region's columns (``region`` < ``n_regions - 1``)
-    and, last, the catchment (every column, times its ``weight``; None: 1).
-
-    Exact sums (:mod:`firnline.exact`): a function of the columns, not of their order, so the
-    areas of a tiled run, summed unit by unit, are those of one pass over every cell.
-    """
+def region_area_sums(region: np.ndarray, area_m2: np.ndarray, weight: np.ndarray | None, n_regions: int):
+    """The exact sums (:mod:`firnline.exact`) of the daily-sum regions' areas, m2, keyed by region:
+    each region's columns (``region`` < ``n_regions - 1``) and, under key ``n_regions - 1``, the
+    catchment (every column, times its ``weight``; None: 1). They merge exactly, so areas summed
+    slice by slice or unit by unit (:func:`firnline.tiles.region_areas`) are those of one pass."""
     from . import exact
 
     area = np.asarray(area_m2, dtype="float64")
     catchment = area if weight is None else area * np.asarray(weight, dtype="float64")
-    return np.concatenate([exact.dense(exact.of_repeated(region, area), n_regions - 1),
-                           exact.dense(exact.of_repeated(0, catchment), 1)])
+    region = np.asarray(region, dtype=np.int64)
+    inside = region < n_regions - 1
+    return exact.merge([exact.of_repeated(region[inside], area[inside]), exact.of_repeated(n_regions - 1, catchment)])
+
+
+def region_areas(region: np.ndarray, area_m2: np.ndarray, weight: np.ndarray | None, n_regions: int) -> np.ndarray:
+    """Areas of the daily-sum regions, m2 (:func:`region_area_sums`, the catchment last): a function
+    of the columns, not of their order."""
+    from . import exact
+
+    return exact.dense(region_area_sums(region, area_m2, weight, n_regions), n_regions)
 
 
 def run_kernel_years(cells: Cells, calendar: Calendar, forcing, params: KernelParams,

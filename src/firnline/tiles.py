@@ -445,8 +445,10 @@ _AREA_CELLS = 1 << 22
 
 def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
     """Areas of the daily-sum regions (glaciers, ice_free, catchment weighted) of the modelled cells,
-    m2: the exact sums of :func:`firnline.kernel.region_areas` (what a kernel run over the same cells
-    gives), made :data:`_AREA_CELLS` cells at a time."""
+    m2: the exact sums of :func:`firnline.kernel.region_area_sums` (what a kernel run over the same
+    cells gives), made :data:`_AREA_CELLS` cells at a time and merged."""
+    from .kernel import region_area_sums
+
     n_regions = len(setup.glaciers.names) + 2
     cw = setup.catchment_weight
     n = setup.cells.size if positions is None else int(np.asarray(positions).size)
@@ -455,10 +457,9 @@ def region_areas(setup, positions: np.ndarray | None) -> np.ndarray:
         b = min(n, a + _AREA_CELLS)
         sub = np.arange(a, b, dtype=np.int64) if positions is None else np.asarray(positions[a:b], dtype=np.int64)
         cols = setup.columns_of(sub)
-        area = setup.grid.cell_area_m2 * cols.share
-        catchment = area if cw is None else area * np.asarray(cw, dtype="float64")[sub][cols.cell]
-        parts += [exact.of_repeated(cols.region, area), exact.of_repeated(n_regions - 1, catchment)]
-        del cols, area, catchment
+        weight = None if cw is None else np.asarray(cw, dtype="float64")[sub][cols.cell]
+        parts.append(region_area_sums(cols.region, setup.grid.cell_area_m2 * cols.share, weight, n_regions))
+        del cols, weight
     return exact.dense(exact.merge(parts), n_regions)
 
 

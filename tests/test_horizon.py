@@ -146,3 +146,33 @@ def test_cone_apex_sees_open_sky_and_the_foot_sees_the_cone():
     assert np.all(hz[:, 20, 20] == 0.0)
     # from a cell on the flank, looking straight up the fall line (east from the west flank)
     assert hz[18, 20, 10] == pytest.approx(math.atan(s), abs=1e-6)
+
+
+def test_the_horizons_of_a_window_with_its_halo_are_those_of_the_whole_dem():
+    """window_sines searches the whole DEM's lines and search blocks over a window of it, so the
+    codes of any cells with window_halo_cells around them equal those of the whole DEM bit for bit
+    (nodata cells, non-square cells, a zero distance); with too little halo it refuses."""
+    from firnline.horizon import quantised_sines, window_halo_cells, window_sines
+
+    rng = np.random.default_rng(3)
+    for trial, (cs, dist, ns) in enumerate([(25.0, 800.0, 8), ((25.0, 30.0), 1500.0, 36), (25.0, 0.0, 12)]):
+        ny, nx = (int(v) for v in rng.integers(150, 230, 2))
+        y, x = np.mgrid[0:ny, 0:nx]
+        z = (2000 + 700 * np.sin(x / (20 + trial * 7)) * np.cos(y / 31.0) + 200 * np.sin((x - 2 * y) / 9.0)
+             + rng.normal(0, 8, (ny, nx)))
+        z[rng.random((ny, nx)) < 0.02] = np.nan
+        valid = np.isfinite(z)
+        whole = quantised_sines(horizon_angles(z, valid, cs, ns, dist))
+        halo = window_halo_cells(cs, dist)
+        for _ in range(4):
+            r0 = int(rng.integers(0, ny - 2))
+            r1 = int(rng.integers(r0 + 1, ny + 1))
+            c0 = int(rng.integers(0, nx - 2))
+            c1 = int(rng.integers(c0 + 1, nx + 1))
+            zr = (max(0, r0 - halo), min(ny, r1 + halo))
+            zc = (max(0, c0 - halo), min(nx, c1 + halo))
+            got = window_sines(z[zr[0]:zr[1], zc[0]:zc[1]], valid[zr[0]:zr[1], zc[0]:zc[1]], (zr[0], zc[0]),
+                               (ny, nx), (r0, r1), (c0, c1), cs, ns, dist)
+            assert np.array_equal(got, whole[:, r0:r1, c0:c1]), (trial, r0, r1, c0, c1)
+    with pytest.raises(ValueError, match="outside the given window"):
+        window_sines(z[10:60, 10:60], valid[10:60, 10:60], (10, 10), (ny, nx), (20, 50), (20, 50), 25.0, 8, 1000.0)

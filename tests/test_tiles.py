@@ -292,6 +292,46 @@ def test_snow_routing_made_by_window_gives_the_numbers_of_the_routing_of_the_who
         setup.select(np.arange(3))
 
 
+@pytest.mark.parametrize("sliding", [False, True])
+def test_radiation_made_by_window_gives_the_numbers_of_the_table_of_the_whole_dem(tmp_path, builders, monkeypatch,
+                                                                                 sliding):
+    """Above model.WINDOW_RADIATION_CELLS valid cells (lowered here to 100) a radiation-method setup
+    holds no table of the whole DEM: a run makes that of its cells (a tiled run: each unit's),
+    window by window (here of 16 cells), each with the rows either side, a slope window and a
+    horizon halo, and the whole DEM's sun constants. The table of any cells equals those columns
+    of the whole DEM's table bit for bit, and so do the tiled run and the run of every cell (with
+    and without sliding snow, whose upslope cells join a unit's cut)."""
+    from firnline import model
+    from firnline.radiation import RadiationTable
+
+    snow = {"redistribution": "gravitational", "spinup_years": 1, "min_slide_slope_deg": 15.0} if sliding else {}
+    # a horizon distance of 4 cells, so that each window's halo is a part of the DEM
+    cfg = valley_case(tmp_path, builders, snow=snow, melt={"method": "radiation"},
+                      radiation={"horizon_distance_m": 4 * CELL, "horizon_sectors": 16})
+    ref = prepare(cfg)
+    assert isinstance(ref.radiation, RadiationTable) and not ref.by_window
+    whole = run(cfg, setup=ref)
+    monkeypatch.setattr(model, "WINDOW_RADIATION_CELLS", 100)
+    monkeypatch.setattr(model, "RADIATION_WINDOW", 16)
+    setup = prepare(cfg)
+    assert isinstance(setup.radiation, model.WindowRadiation) and setup.by_window
+    assert any("radiation climatology: made for each unit" in n for n in setup.notes)
+    n = setup.cells.size
+    rng = np.random.default_rng(5)
+    for pos in (np.arange(n), np.arange(3, n, 37), np.array([0]), np.array([n - 1]),
+                np.sort(rng.choice(n, 200, replace=False)), np.arange(17 * 40 + 5, 17 * 40 + 9)):
+        table = setup.radiation.subset(pos)
+        assert np.array_equal(table.values, ref.radiation.values[:, pos]), pos[:5]
+        assert table.scale_w_m2 == ref.radiation.scale_w_m2 and np.array_equal(table.doy_nodes, ref.radiation.doy_nodes)
+    made = []
+    window = model.window_radiation
+    monkeypatch.setattr(model, "window_radiation", lambda *a: made.append(a[2].size) or window(*a))
+    tiled = run(compute(cfg, tile_size=10, workers=1), setup=setup)
+    assert tiled.timings["units"] == 16 and len(made) == 16      # one table per unit
+    assert_same_run(whole, tiled, exact_budget=False)
+    assert_same_run(whole, run(cfg, setup=setup), exact_budget=False)
+
+
 def test_the_demo_tiled_equals_the_demo_untiled(tmp_path):
     assert main(["demo", str(tmp_path / "in"), "--quiet"]) == 0
     cfg = firnline.load_config(tmp_path / "in" / "demo.toml")

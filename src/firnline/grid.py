@@ -96,9 +96,15 @@ class Grid:
         y = t.f + (np.arange(ny) + 0.5) * t.e
         return x, y
 
-    def lonlat(self) -> tuple[np.ndarray, np.ndarray]:
-        """Longitude and latitude (degrees, WGS 84) of every cell centre, each (ny, nx)."""
+    def lonlat(self, rows: tuple[int, int] | None = None,
+               cols: tuple[int, int] | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Longitude and latitude (degrees, WGS 84) of every cell centre, each (ny, nx), or of a
+        window of rows ``rows[0] .. rows[1] - 1`` and columns ``cols[0] ..`` (the same values)."""
         x, y = self.cell_centres()
+        if rows is not None:
+            y = y[rows[0]:rows[1]]
+        if cols is not None:
+            x = x[cols[0]:cols[1]]
         xx, yy = np.meshgrid(x, y)
         tr = Transformer.from_crs(CRS.from_wkt(self.crs.to_wkt()), CRS.from_epsg(4326), always_xy=True)
         lon, lat = tr.transform(xx, yy)

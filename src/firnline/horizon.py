@@ -111,11 +111,21 @@ def _sector_count(n_sectors):
     return n_sectors
 
 
-def _sector(z, dx, dy, az_rad, max_distance_m, out, row0):
-    """Horizons of one sector into ``out`` (rows row0 .. row0 + len(out) - 1 of the grid)."""
+def _sector(z, dx, dy, az_rad, max_distance_m, out, row0, at=None):
+    """Horizons of one sector into ``out`` (rows row0 .. row0 + len(out) - 1 of the grid).
+
+    ``at``: ``(zr0, zc0, ny, nx, col0)`` when ``z`` is a window of a larger grid (``ny`` x ``nx``)
+    whose first cell is row ``zr0``, column ``zc0``, and ``out`` starts at column ``col0`` (rows
+    and columns counted in the larger grid): the lines are those of the larger grid. Raises when
+    a point the search needs lies outside the window.
+    """
     # exact zeros along the grid axes, so that those lines run through the cell centres
     sin_az, cos_az = (0.0 if abs(v) < 1e-12 else v for v in (math.sin(az_rad), math.cos(az_rad)))
-    _direction_horizon(z, dx, dy, sin_az, cos_az, max_distance_m, out, row0)
+    zr0, zc0, ny, nx, col0 = (0, 0, z.shape[0], z.shape[1], 0) if at is None else at
+    outside = _direction_horizon(z, zr0, zc0, ny, nx, dx, dy, sin_az, cos_az, max_distance_m, out, row0, col0)
+    if outside:
+        raise ValueError(f"the horizon search needs {outside} points outside the given window of the DEM; "
+                         "widen its halo (firnline.horizon.window_halo_cells)")
 
 
 def horizon_angles(elevation_m, valid, cell_size_m, n_sectors, max_distance_m, progress=None) -> np.ndarray:
@@ -223,11 +233,43 @@ class SineBands:
         return out
 
 
+def window_halo_cells(cell_size_m, max_distance_m) -> int:
+    """Cells a window of the DEM needs on every side of the cells whose horizons
+    :func:`window_sines` gives from it: two search blocks of one horizon distance (the rest of
+    a point's block and the next one, ahead or behind it along its line), the line's drift
+    across (at most one cell per step) and the interpolation's neighbour."""
+    dx, dy = _spacing(cell_size_m)
+    return 2 * int(math.floor(float(max_distance_m) / min(dx, dy) + 1e-9)) + 3
+
+
+def window_sines(elevation_m, valid, origin, grid_shape, rows, cols, cell_size_m, n_sectors,
+                 max_distance_m) -> np.ndarray:
+    """uint16 (n_sectors, rows, cols) :func:`quantised_sines` codes of the horizons of the cells of
+    rows ``rows[0] .. rows[1] - 1`` and columns ``cols[0] ..`` of a DEM of ``grid_shape``, from a
+    window of it: ``elevation_m`` and ``valid`` are the window, whose first cell is at ``origin``
+    (row, column) of the DEM. The lines and search blocks are those of the whole DEM, so where
+    the window holds :func:`window_halo_cells` around the cells (or reaches the DEM's edge)
+    they get the codes of :func:`horizon_angles` of the whole DEM bit for bit; otherwise a
+    ValueError is raised. Only the window is held: the cells' horizons of a unit of work."""
+    z = _elevation_grid(elevation_m, valid)
+    dx, dy = _spacing(cell_size_m)
+    n_sectors = _sector_count(n_sectors)
+    (r0, r1), (c0, c1) = rows, cols
+    at = (int(origin[0]), int(origin[1]), int(grid_shape[0]), int(grid_shape[1]), int(c0))
+    out = np.empty((n_sectors, r1 - r0, c1 - c0), dtype=np.uint16)
+    scratch = np.empty((r1 - r0, c1 - c0), dtype=np.float32)
+    for k, az in enumerate(np.deg2rad(sector_azimuths_deg(n_sectors))):
+        _sector(z, dx, dy, az, float(max_distance_m), scratch, int(r0), at)
+        quantised_sines(scratch, out=out[k])
+    return out
+
+
 @njit(cache=True, parallel=True)
-def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out, row0):
-    """Horizon angles in one direction (grid azimuth given by sin/cos) of the grid rows
-    row0 .. row0 + out.shape[0] - 1, into out; lines that never meet those rows are skipped."""
-    ny, nx = z.shape
+def _direction_horizon(z, zr0, zc0, ny, nx, dx, dy, sin_az, cos_az, max_dist, out, row0, col0):
+    """Horizon angles in one direction (grid azimuth given by sin/cos) of the rows row0 ..
+    row0 + out.shape[0] - 1 and columns col0 .. col0 + out.shape[1] - 1 of an ny x nx grid, into
+    out; ``z`` is the window of the grid from row zr0, column zc0. Lines that never meet out's
+    cells are skipped. Returns the number of points the search needed outside the window."""
     dcol = sin_az / dx  # columns per metre along the direction
     drow = -cos_az / dy  # rows per metre (up = decreasing row)
     if abs(dcol) >= abs(drow):
@@ -236,12 +278,16 @@ def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out, row0):
         forward = dcol > 0
         t = drow / dcol  # rows per +1 column
         ds = math.hypot(dx, t * dy)  # metres per step along the line
+        m_lo, m_hi = col0, col0 + out.shape[1]      # out's major and minor ranges
+        n_lo, n_hi = row0, row0 + out.shape[0]
     else:
         major_is_col = False
         n_major, n_minor = ny, nx
         forward = drow > 0
         t = dcol / drow  # columns per +1 row
         ds = math.hypot(dy, t * dx)
+        m_lo, m_hi = row0, row0 + out.shape[0]
+        n_lo, n_hi = col0, col0 + out.shape[1]
     # the line with offset o crosses major index m at minor position o + t*m; its nearest
     # cell is o + shift[m] and the next one across is o + shift[m] + side[m], weight frac[m]
     shift = np.empty(n_major, np.int64)
@@ -256,45 +302,48 @@ def _direction_horizon(z, dx, dy, sin_az, cos_az, max_dist, out, row0):
     o_lo = -shift.max()
     n_lines = (n_minor - 1 - shift.min()) - o_lo + 1
     window = int(math.floor(max_dist / ds + 1e-9))
-    line0, line1 = 0, n_lines
-    if major_is_col:
-        # line o writes rows o + shift[m]: only the lines that reach rows row0 .. row0 + rows - 1
-        line0 = max(0, row0 - shift.max() - o_lo)
-        line1 = min(n_lines, row0 + out.shape[0] - 1 - shift.min() - o_lo + 1)
+    # only the lines that reach out's minor range within its major range
+    s_lo = shift[m_lo:m_hi].min()
+    s_hi = shift[m_lo:m_hi].max()
+    line0 = max(0, n_lo - s_hi - o_lo)
+    line1 = min(n_lines, n_hi - 1 - s_lo - o_lo + 1)
     n_run = line1 - line0
     if n_run <= 0:
-        return
+        return 0
     # neighbouring lines share cache lines of the grid, so each task takes a run of them
     n_chunks = min(n_run, 64)
+    outside = np.zeros(n_chunks, np.int64)
     for chunk in prange(n_chunks):
         first = line0 + chunk * n_run // n_chunks
         stop = line0 + (chunk + 1) * n_run // n_chunks
-        _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds)
+        outside[chunk] = _lines_horizon(z, zr0, zc0, n_major, n_minor, out, row0, col0, major_is_col, forward,
+                                        shift, frac, side, o_lo, first, stop, window, ds)
+    return outside.sum()
 
 
 @njit(cache=True)
-def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo, first, stop, window, ds):
-    """Horizons along the lines first .. stop - 1 of one direction (rows row0 .. of out).
+def _lines_horizon(z, zr0, zc0, n_major, n_minor, out, row0, col0, major_is_col, forward, shift, frac, side,
+                   o_lo, first, stop, window, ds):
+    """Horizons along the lines first .. stop - 1 of one direction (out: rows row0 .., columns
+    col0 .. of the grid; z: its window from row zr0, column zc0).
 
-    Each line's profile holds its in-grid points; only the part that the band's points and
+    Each line's profile holds its in-grid points; only the part that out's points and
     their windows need is built and searched: from the start of the search block (of the
-    whole profile) holding the band's first point to one block past the band's last, so
-    that every point of the band sees the same blocks as in the whole profile and gets the
-    same value bit for bit.
+    whole profile) holding out's first point to one block past its last, so that every
+    point of out sees the same blocks as in the whole profile and gets the same value bit
+    for bit. Returns the number of those points that lie outside z (then out is not valid).
     """
-    if major_is_col:
-        n_minor, n_major = z.shape
-    else:
-        n_major, n_minor = z.shape
-    rows = out.shape[0]
+    zny, znx = z.shape
+    rows, cols = out.shape
     zp = np.empty(n_major, np.float64)
     im = np.empty(n_major, np.int64)
     hz = np.empty(n_major, np.float64)
     stack = np.empty(n_major, np.int64)
+    outside = 0
     for line in range(first, stop):
         o = o_lo + line
         # the in-grid points (q = qa .. qa + n - 1, profile index k = q - qa) and those of
-        # the band (k = ka .. kb - 1): both runs, since the line's cells move monotonically
+        # out (k = ka .. kb - 1): both runs, since the line's cells move monotonically
         qa = -1
         n = 0
         ka = -1
@@ -307,7 +356,8 @@ def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo,
             if qa < 0:
                 qa = q
             r = (near if major_is_col else m) - row0
-            if 0 <= r < rows:
+            c = (m if major_is_col else near) - col0
+            if 0 <= r < rows and 0 <= c < cols:
                 if ka < 0:
                     ka = n
                 kb = n + 1
@@ -332,10 +382,20 @@ def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo,
             if not 0 <= other < n_minor:
                 other = near - side[m]
                 w = -w
-            z_near = z[near, m] if major_is_col else z[m, near]
+            if major_is_col:
+                zr, zc, zr2, zc2 = near - zr0, m - zc0, other - zr0, m - zc0
+            else:
+                zr, zc, zr2, zc2 = m - zr0, near - zc0, m - zr0, other - zc0
+            has_other = 0 <= other < n_minor
+            if not (0 <= zr < zny and 0 <= zc < znx) or (has_other and not (0 <= zr2 < zny and 0 <= zc2 < znx)):
+                outside += 1
+                zp[k - s0] = np.nan
+                im[k - s0] = m
+                continue
+            z_near = z[zr, zc]
             z_other = np.nan
-            if 0 <= other < n_minor:
-                z_other = z[other, m] if major_is_col else z[m, other]
+            if has_other:
+                z_other = z[zr2, zc2]
             j = k - s0
             if math.isnan(z_other):
                 zp[j] = z_near
@@ -354,11 +414,10 @@ def _lines_horizon(z, out, row0, major_is_col, forward, shift, frac, side, o_lo,
             else:
                 val = 0.0
             r = (minor if major_is_col else m) - row0
-            if 0 <= r < rows:
-                if major_is_col:
-                    out[r, m] = val
-                else:
-                    out[r, minor] = val
+            c = (m if major_is_col else minor) - col0
+            if 0 <= r < rows and 0 <= c < cols:
+                out[r, c] = val
+    return outside
 
 
 @njit(cache=True)

@@ -331,7 +331,8 @@ class Setup:
     z_m: np.ndarray | None
     glacier_mask: np.ndarray
     glacier_pos: tuple
-    radiation: RadiationTable | None
+    #: The radiation table of ``cells``, or a :class:`WindowRadiation` that makes that of any of them.
+    radiation: RadiationTable | WindowRadiation | None
     checksums: dict
     notes: tuple = ()
     timings: dict = field(default_factory=dict)
@@ -346,6 +347,12 @@ class Setup:
     #: whole DEM is held; a run over some cells makes theirs and that of every cell upslope of
     #: them (:func:`upslope_setup`).
     routing_by_window: bool = False
+
+    @property
+    def by_window(self) -> bool:
+        """Whether a run over some cells cuts the setup to them first (:func:`upslope_setup`): the
+        snow routing or the radiation table is made for the cut (a unit's, for a tiled run)."""
+        return self.routing_by_window or isinstance(self.radiation, WindowRadiation)
 
     @property
     def surface_columns(self) -> Columns:
@@ -496,7 +503,11 @@ def prepare(config: Config, progress: Progress = None, need_radiation: bool | No
     if need_radiation is None:
         need_radiation = config.melt.method == "radiation"
     table = None
-    if need_radiation:
+    if need_radiation and cells.size > WINDOW_RADIATION_CELLS:
+        table = WindowRadiation(grid, config, cells)
+        notes.append(f"radiation climatology: made for each unit of work ({cells.size} cells are more than "
+                     f"{WINDOW_RADIATION_CELLS} for one table of the whole DEM; not cached)")
+    elif need_radiation:
         table, _, note = radiation_climatology(grid, slope, aspect, config, progress)
         notes.append(note)
         timings["radiation_s"] = time.perf_counter() - t1
@@ -550,10 +561,126 @@ def window_routing(setup: Setup, rows: tuple[int, int], cols: tuple[int, int]):
                          snow.snow_density_kg_m3, snow.min_slide_slope_deg)
 
 
+#: With ``[melt] method = "radiation"``, a DEM of more valid cells than this gets no radiation table
+#: of the whole DEM (186 B per cell, 1.6 GB here, and not cached): :class:`WindowRadiation` makes
+#: that of the cells a run asks for, window by window of the DEM (a unit of a tiled run: its own).
+WINDOW_RADIATION_CELLS = 1 << 23
+#: The cells of a :class:`WindowRadiation` table are made in windows of at most this many cells a
+#: side (each with a horizon halo), so asked cells spread over the DEM cost their blocks only.
+RADIATION_WINDOW = 2048
+
+
+class WindowRadiation:
+    """The radiation table of a DEM too large for one (:data:`WINDOW_RADIATION_CELLS`), made for the
+    cells a run asks for: ``subset(positions)`` (what :meth:`Setup.select` and the kernel's cells
+    call on a table) gives the :class:`~firnline.radiation.RadiationTable` of those cells, the
+    values of the whole DEM's table bit for bit (:func:`window_radiation`). The last table made is
+    kept, so a calibration that runs the same cells again does not make it again."""
+
+    def __init__(self, grid: Grid, config: Config, cells: np.ndarray):
+        from .radiation import sun_constants
+
+        self.grid, self.config, self.cells = grid, config, cells
+        ny, nx = grid.shape
+        lo, hi = np.inf, -np.inf
+        for r0 in range(0, ny, 256):            # the valid cells' latitude range, band by band
+            r1 = min(ny, r0 + 256)
+            v = grid.valid[r0:r1]
+            if v.any():
+                lat = grid.lonlat((r0, r1))[1]
+                lo = min(lo, float(np.min(lat, where=v, initial=np.inf)))
+                hi = max(hi, float(np.max(lat, where=v, initial=-np.inf)))
+        r, c = divmod(int(cells[cells.size // 2]), nx)      # the middle valid cell in C order
+        h0, h1 = max(0, r - 1), min(ny, r + 2)
+        lon, lat = grid.lonlat((h0, h1), (c, c + 1))
+        self.sun = sun_constants((lo, hi), lat, lon, r - h0)
+        self._last = None
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.cells.size)
+
+    def subset(self, positions):
+        """The table of some cells (positions in ``cells`` order, in any order and repeated as the
+        kernel's surface columns repeat a cell)."""
+        pos = np.asarray(positions, dtype=np.int64)
+        key = (pos.size, hash(pos.tobytes()))
+        if self._last is None or self._last[0] != key:
+            ascending = pos.size < 2 or bool(np.all(np.diff(pos) > 0))
+            uniq, inverse = (pos, None) if ascending else np.unique(pos, return_inverse=True)
+            table = window_radiation(self.grid, self.config, self.cells[uniq], self.sun)
+            if inverse is not None:
+                table = table.subset(inverse)
+            self._last = (key, table)
+        return self._last[1]
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_last"] = None
+        return state
+
+
+def window_radiation(grid: Grid, config: Config, flat: np.ndarray, sun) -> RadiationTable:
+    """The radiation table of some DEM cells (ascending flat indices ``flat``), made in blocks of
+    :data:`RADIATION_WINDOW` cells a side: for each block holding some of them, a window of the
+    DEM over their bounding box and the rows either side (:func:`firnline.radiation.window_table`,
+    with the whole DEM's sun constants ``sun``), its slope and aspect from the DEM around it, and
+    its horizons from a halo of :func:`firnline.horizon.window_halo_cells` around it
+    (:func:`firnline.horizon.window_sines`). Each cell then has its whole-DEM slope, aspect,
+    grid convergence and horizons, so the table is that of the whole DEM's, bit for bit."""
+    from .horizon import window_halo_cells, window_sines
+    from .radiation import day_nodes, window_table
+
+    rc = config.radiation
+    ny, nx = grid.shape
+    flat = np.asarray(flat, dtype=np.int64)
+    rr, cc = np.divmod(flat, nx)
+    block = (rr // RADIATION_WINDOW) * (-(-nx // RADIATION_WINDOW)) + cc // RADIATION_WINDOW
+    order = np.argsort(block, kind="stable")
+    bounds = np.flatnonzero(np.diff(block[order])) + 1
+    # one block (a unit's cut): its table is the result, not a copy
+    values = np.empty((len(day_nodes()), flat.size), dtype=np.uint16) if bounds.size else None
+    scale = None
+    halo = window_halo_cells(grid.cell_size_m, rc.horizon_distance_m)
+    for idx in np.split(order, bounds) if flat.size else []:
+        r, c = rr[idx], cc[idx]
+        t0, t1 = max(0, int(r.min()) - 1), min(ny, int(r.max()) + 2)       # the table's window
+        c0, c1 = int(c.min()), int(c.max()) + 1
+        s0, s1 = max(0, t0 - 1), min(ny, t1 + 1)                           # its slope's window
+        sc0, sc1 = max(0, c0 - 1), min(nx, c1 + 1)
+        slope, aspect = slope_aspect(grid.elevation[s0:s1, sc0:sc1], *grid.cell_size_m)
+        inner = (slice(t0 - s0, t1 - s0), slice(c0 - sc0, c1 - sc0))
+        slope, aspect = slope[inner], aspect[inner]
+        z0, z1 = max(0, t0 - halo), min(ny, t1 + halo)                     # its horizons' window
+        zc0, zc1 = max(0, c0 - halo), min(nx, c1 + halo)
+        z, zv = grid.elevation[z0:z1, zc0:zc1], grid.valid[z0:z1, zc0:zc1]
+
+        def codes(a, b, z=z, zv=zv, z0=z0, zc0=zc0, t0=t0, c0=c0, c1=c1):
+            return window_sines(z, zv, (z0, zc0), grid.shape, (t0 + a, t0 + b), (c0, c1), grid.cell_size_m,
+                                rc.horizon_sectors, rc.horizon_distance_m)
+
+        asked = np.zeros((t1 - t0, c1 - c0), dtype=bool)
+        asked[r - t0, c - c0] = True
+        lon, lat = grid.lonlat((t0, t1), (c0, c1))
+        table = window_table(grid.elevation[t0:t1, c0:c1], asked, slope, aspect, lat, lon, codes,
+                             config.melt.transmissivity, rc.time_step_minutes, rc.horizon_sectors, sun)
+        del slope, aspect, lat, lon, z, zv
+        if values is None:
+            return table
+        values[:, idx] = table.values       # idx ascends within a block: the table's C order
+        scale = table.scale_w_m2
+    if scale is None:
+        from .radiation import STORAGE_SCALE_W_M2
+        scale = STORAGE_SCALE_W_M2
+    return RadiationTable(doy_nodes=day_nodes(), values=values, scale_w_m2=scale)
+
+
 def upslope_setup(setup: Setup, positions) -> tuple[Setup, np.ndarray, np.ndarray]:
     """The setup cut to some cells and every cell upslope of them, with the snow routing of the cut,
     for a setup with ``routing_by_window``; also the cells' places in the cut and the cut's
-    positions in ``setup``.
+    positions in ``setup``. (Without ``routing_by_window``: the cut of the cells and those upslope of
+    them in the setup's routing, if any, as for a :class:`WindowRadiation`, whose table
+    :meth:`Setup.select` makes for the cut.)
 
     The routing is made over a window: the cells' bounding box with a halo of
     :data:`WINDOW_HALO` cells, doubled until no cell upslope of them (:func:`firnline.snowslide.upslope`
@@ -567,6 +694,11 @@ def upslope_setup(setup: Setup, positions) -> tuple[Setup, np.ndarray, np.ndarra
     from .snowslide import subset, upslope
 
     pos = np.asarray(positions, dtype=np.int64)
+    if not setup.routing_by_window:
+        # the routing of the whole DEM, or none: the cut is the cells and those upslope of them in
+        # it (its radiation table is made for the cut by Setup.select)
+        cut = pos if setup.routing is None else np.flatnonzero(upslope(setup.routing, pos))
+        return setup.select(cut), np.searchsorted(cut, pos), cut
     grid = setup.grid
     ny, nx = grid.shape
     if pos.size == 0:
@@ -900,7 +1032,7 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
                                     routing_by_window=False)
     if cells is not None:
         cells = np.asarray(cells, dtype=np.int64)
-        if setup.routing_by_window:     # the asked cells and those upslope of them, with their routing
+        if setup.by_window:     # the asked cells and those upslope of them, with their routing or radiation
             setup, cells, cut = upslope_setup(setup, cells)
             upslope_within = None
             if catchment_weight is not None:
@@ -933,7 +1065,9 @@ def simulate_years(setup: Setup, config: Config | None = None, warming_k: Sequen
                         np.asarray(f.winter)[days])
     rad = None
     if params.use_radiation:
-        rad = setup.radiation if cols.n == cols.n_cells else setup.radiation.subset(cols.cell)
+        rad = setup.radiation
+        if cols.n != cols.n_cells or not isinstance(rad, RadiationTable):
+            rad = rad.subset(cols.cell)
     if catchment_weight is None:
         catchment_weight = setup.catchment_weight
     weight = np.ones(cols.n) if catchment_weight is None else np.asarray(catchment_weight, dtype="float64")[cols.cell]

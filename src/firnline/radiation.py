@@ -107,7 +107,7 @@ from .errors import InputError
 from .horizon import SINE_LEVELS, SineBands, quantised_sines
 
 #: Changes whenever the algorithm changes the numbers it returns (cache keys use it).
-ALGORITHM_VERSION = "radiation-2"  # 2: horizon sines as uint16 codes
+ALGORITHM_VERSION = "radiation-3"  # 2: horizon sines as uint16 codes; 3: whole blocks of cells per row
 
 #: Spacing of the day-of-year nodes at which daily means are computed exactly.
 NODE_SPACING_DAYS = 4
@@ -125,6 +125,14 @@ MIN_SINE_BAND_BYTES = 64 << 20
 
 #: ... nor less than the table's bytes over this.
 TABLE_PARTS_PER_BAND = 8
+
+#: The radiation kernel's rows (and numpy's work on its per-cell constants) are padded with unlit
+#: cells: a block of this many before each row, whole blocks after it, the last all padding. The
+#: vectorised loops' first and last steps, which may run other code whose float32 rounding
+#: differs (measured: the last cells of a row, and its first), then never take a cell, so a
+#: cell's value does not depend on where its row starts or ends: any window of the DEM gives the
+#: values of the whole DEM (what a unit of work computes, :func:`firnline.model.window_radiation`).
+CELL_BLOCK = 64
 
 #: W m-2 per stored uint16 unit.
 STORAGE_SCALE_W_M2 = 0.025
@@ -289,12 +297,12 @@ class RadiationTable:
         return self._mean_over([np.arange(1, 366)])[0]
 
 
-def _grid_convergence_rad(lat_deg: np.ndarray, lon_deg: np.ndarray) -> np.ndarray:
+def _grid_convergence_rad(lat_deg: np.ndarray, lon_deg: np.ndarray, columns: tuple | None = None) -> np.ndarray:
     """True azimuth of the grid's up direction (decreasing row), radians, per cell.
 
     From the change of latitude and longitude along the columns of the grid;
     0 for a north-up geographic grid, the meridian convergence for a
-    projected one.
+    projected one. ``columns``: (first, stop) of the grid's own columns (the rest is padding).
     """
     if lat_deg.shape[0] < 2:
         return np.zeros(lat_deg.shape)
@@ -309,7 +317,8 @@ def _grid_convergence_rad(lat_deg: np.ndarray, lon_deg: np.ndarray) -> np.ndarra
     # next to cells without coordinates (NaN) use the typical value of the grid
     bad = ~np.isfinite(gamma)
     if bad.any():
-        good = gamma[~bad]
+        inside = slice(None) if columns is None else slice(*columns)
+        good = gamma[:, inside][~bad[:, inside]]
         gamma[bad] = float(np.arctan2(np.sin(good).mean(), np.cos(good).mean())) if good.size else 0.0
     return gamma
 
@@ -350,12 +359,31 @@ def _rows(value, r0: int, r1: int, nx: int) -> np.ndarray:
     return value[r0:r1]
 
 
+def _block_rows(value, r0: int, r1: int, nx: int) -> np.ndarray:
+    """Rows r0 .. r1 - 1 of a grid input as a C-contiguous float64 block, each row padded with zeros
+    as :func:`_padded_width` (the row from column :data:`CELL_BLOCK`): numpy's vectorised loops
+    then take every cell in their main loop, whose rounding does not depend on where a row starts
+    or ends (that of a window of the DEM equals that of the whole DEM)."""
+    out = np.zeros((r1 - r0, _padded_width(nx)))
+    out[:, CELL_BLOCK:CELL_BLOCK + nx] = _rows(value, r0, r1, nx)
+    return out
+
+
+def _padded_width(nx: int) -> int:
+    """A row of nx cells with a block of padding before it and whole blocks after it, the last
+    all padding: the vectorised loops' first and last steps (which may run other code) never
+    take a cell."""
+    return CELL_BLOCK + nx + (-nx % CELL_BLOCK) + CELL_BLOCK
+
+
 def _convergence_rows(tile: _Tile, r0: int, r1: int) -> np.ndarray:
-    """Grid convergence of rows r0 .. r1 - 1, from those rows and one row either side
-    (the same values as over the whole grid: the derivative along the columns is local)."""
+    """Grid convergence of rows r0 .. r1 - 1 (padded as :func:`_block_rows`), from those rows and
+    one row either side (the same values as over the whole grid: the derivative along the
+    columns is local)."""
     ny, nx = tile.valid.shape
     h0, h1 = max(0, r0 - 1), min(ny, r1 + 1)
-    gamma = _grid_convergence_rad(_rows(tile.lat_deg, h0, h1, nx), _rows(tile.lon_deg, h0, h1, nx))
+    gamma = _grid_convergence_rad(_block_rows(tile.lat_deg, h0, h1, nx), _block_rows(tile.lon_deg, h0, h1, nx),
+                                  (CELL_BLOCK, CELL_BLOCK + nx))
     return gamma[r0 - h0 : r0 - h0 + (r1 - r0)]
 
 
@@ -401,31 +429,33 @@ def _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmiss
     centre_values = dict(
         lat_centre_deg=float(_rows(lat, r, r + 1, shape[1])[0, c]),
         lon_centre_deg=float(_rows(lon, r, r + 1, shape[1])[0, c]),
-        convergence_centre_rad=float(_convergence_rows(tile, r, r + 1)[0, c]))
+        convergence_centre_rad=float(_convergence_rows(tile, r, r + 1)[0, CELL_BLOCK + c]))
     return dataclasses.replace(tile, **centre_values)
 
 
 def _band_constants(tile: _Tile, r0: int, r1: int):
     """Per-cell constants of rows r0 .. r1 - 1, float32, zeros off the valid cells:
     sin and cos of latitude, the slope normal's east, north and up components
-    (turned to true north), and ln(psi) P / P0."""
+    (turned to true north), and ln(psi) P / P0; and the rows' valid mask. All padded as
+    :func:`_block_rows`."""
     nx = tile.valid.shape[1]
-    valid = tile.valid[r0:r1]
-    slope = _rows(tile.slope_deg, r0, r1, nx)
-    aspect = _rows(tile.aspect_deg, r0, r1, nx)
+    valid = np.zeros((r1 - r0, _padded_width(nx)), dtype=bool)
+    valid[:, CELL_BLOCK:CELL_BLOCK + nx] = tile.valid[r0:r1]
+    slope = _block_rows(tile.slope_deg, r0, r1, nx)
+    aspect = _block_rows(tile.aspect_deg, r0, r1, nx)
     # flat cells (aspect NaN) and missing slopes count as slope 0
     flat = ~np.isfinite(slope) | ~np.isfinite(aspect)
     beta = np.where(flat, 0.0, np.deg2rad(slope))
     true_aspect = np.where(flat, 0.0, np.deg2rad(aspect)) + _convergence_rows(tile, r0, r1)
-    phi = np.deg2rad(_rows(tile.lat_deg, r0, r1, nx))
-    pressure_ratio = solar.standard_pressure_pa(_rows(tile.elevation_m, r0, r1, nx)) / solar.SEA_LEVEL_PRESSURE_PA
+    phi = np.deg2rad(_block_rows(tile.lat_deg, r0, r1, nx))
+    pressure_ratio = solar.standard_pressure_pa(_block_rows(tile.elevation_m, r0, r1, nx)) / solar.SEA_LEVEL_PRESSURE_PA
 
     def on_valid(a):
         return np.where(valid, a, 0.0).astype(np.float32)
 
     return (on_valid(np.sin(phi)), on_valid(np.cos(phi)),
             on_valid(np.sin(beta) * np.sin(true_aspect)), on_valid(np.sin(beta) * np.cos(true_aspect)),
-            on_valid(np.cos(beta)), on_valid(tile.log_psi * pressure_ratio))
+            on_valid(np.cos(beta)), on_valid(tile.log_psi * pressure_ratio)), valid
 
 
 def _sun_path(tile: _Tile, doy: int):
@@ -552,9 +582,11 @@ def _kernel_bands(tile: _Tile) -> list[tuple[int, int]]:
 def _band_means(tile: _Tile, paths: tuple, r0: int, r1: int, sine_codes: np.ndarray, out: np.ndarray) -> None:
     """Daily means (W m-2) of the valid cells of rows r0 .. r1 - 1 into out (n_days, their cells)."""
     east, cdch, k0, k1, weight, start, sin_dec, scale = paths
-    constants = _band_constants(tile, r0, r1)
+    constants, valid = _band_constants(tile, r0, r1)        # padded to whole blocks of cells
+    nx = sine_codes.shape[2]
+    sine_codes = np.pad(sine_codes, ((0, 0), (0, 0), (CELL_BLOCK, valid.shape[1] - nx - CELL_BLOCK)))
     row_offset = tile.row_offset[r0:r1] - tile.row_offset[r0]
-    _daily_mean_kernel(*constants, sine_codes, tile.valid[r0:r1], row_offset,
+    _daily_mean_kernel(*constants, sine_codes, valid, row_offset,
                        east, cdch, k0, k1, weight, start, sin_dec, scale, out)
 
 
@@ -792,6 +824,59 @@ def table_from_terrain(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_d
         return out
 
     return _table(tile, groups, codes, progress)
+
+
+@dataclass(frozen=True)
+class SunConstants:
+    """What the sun paths of :func:`compute_table` take of the whole DEM (see the module docstring:
+    per tile): the valid cells' latitude range, and the latitude, longitude and grid convergence
+    of the middle valid cell in C order. A window of the DEM made with them
+    (:func:`window_table`) gives the values of the whole DEM's table."""
+
+    lat_range_deg: tuple[float, float]
+    lat_centre_deg: float
+    lon_centre_deg: float
+    convergence_centre_rad: float
+
+
+def sun_constants(lat_range_deg, lat_deg, lon_deg, row: int) -> SunConstants:
+    """The :class:`SunConstants` of a DEM from its valid cells' latitude range and the latitude and
+    longitude of its middle valid cell's column, over that cell's row (``row``) and the rows
+    either side of it that the DEM has (shape (rows, 1))."""
+    lat = np.asarray(lat_deg, dtype=np.float64).reshape(-1, 1)
+    lon = np.asarray(lon_deg, dtype=np.float64).reshape(-1, 1)
+    gamma = _grid_convergence_rad(_block_rows(lat, 0, lat.shape[0], 1), _block_rows(lon, 0, lon.shape[0], 1),
+                                  (CELL_BLOCK, CELL_BLOCK + 1))
+    return SunConstants(lat_range_deg=(float(lat_range_deg[0]), float(lat_range_deg[1])),
+                        lat_centre_deg=float(lat[row, 0]), lon_centre_deg=float(lon[row, 0]),
+                        convergence_centre_rad=float(gamma[row, CELL_BLOCK]))
+
+
+def window_table(elevation_m, cells, slope_deg, aspect_deg, lat_deg, lon_deg, codes, transmissivity,
+                 time_step_minutes, n_sectors, sun: SunConstants, progress=None) -> RadiationTable:
+    """The table of :func:`compute_table` of some cells of a window of a DEM, with the whole DEM's
+    sun constants (:func:`sun_constants`): bit for bit the whole DEM's values of those cells.
+
+    ``cells``: the window's cells to compute (bool, the window's shape; the table's columns are
+    them in C order). ``lat_deg`` and ``lon_deg`` are the window's; its first and last rows serve
+    the grid convergence of the rows next to them only (a cell there gets that of its rows in
+    the window, so the window should hold the rows either side of its cells, where the DEM has
+    them). ``codes(r0, r1)``: the uint16 horizon sine codes (n_sectors, r1 - r0, window columns)
+    of rows r0 .. r1 - 1 of the window, from the whole DEM's horizons
+    (:func:`firnline.horizon.window_sines`). Other parameters as :func:`compute_table`.
+    """
+    tile = _tile(elevation_m, cells, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
+                 time_step_minutes, n_sectors)
+    tile = dataclasses.replace(tile, lat_range_deg=sun.lat_range_deg, lat_centre_deg=sun.lat_centre_deg,
+                               lon_centre_deg=sun.lon_centre_deg, convergence_centre_rad=sun.convergence_centre_rad)
+    groups = horizon_band_groups(tile.valid.shape, int(tile.row_offset[-1]), tile.n_sectors, _kernel_bands(tile))
+
+    def masked(r0, r1):
+        out = codes(r0, r1)
+        out[:, ~tile.valid[r0:r1]] = 0
+        return out
+
+    return _table(tile, groups, masked, progress)
 
 
 def degree_day_weighted_radiation(table: RadiationTable, t_station_c: np.ndarray, lapse_k_per_m: np.ndarray,

@@ -387,7 +387,7 @@ def glacier_view(setup: Setup) -> Setup:
     """
     if setup.glacier_mask.all():
         return setup
-    if setup.routing_by_window:
+    if setup.by_window:
         from .model import upslope_setup
         return upslope_setup(setup, np.flatnonzero(setup.glacier_mask))[0]
     if setup.routing is not None:

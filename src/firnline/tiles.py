@@ -298,8 +298,8 @@ def run_unit(setup, config, unit: Unit, warming_k: float, precip_change_pct: flo
         import numba
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
     unit = fill_unit(setup, unit)
-    if setup.routing_by_window and not whole:
-        # the unit's cells and those upslope of them, with their own routing; the results go back
+    if setup.by_window and not whole:
+        # the unit's cells and those upslope of them, with their own routing or radiation table; the results go back
         # to the run's positions
         from .model import upslope_setup
         t0 = time.perf_counter()

@@ -89,8 +89,17 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
     bands = math.ceil(_GLACIER_RELIEF_M / band_width_m)
     b += bands * max(years, 1) * glaciers * scenarios * _BYTES_PER_PROFILE_ROW
     if radiation_sectors:
-        from .radiation import peak_bytes
-        b += peak_bytes(cells, cells, radiation_sectors)    # the climatology as it is made
+        from .model import WINDOW_RADIATION_CELLS
+        from .radiation import day_nodes, peak_bytes
+        if unit_cells is not None and cells > WINDOW_RADIATION_CELLS:
+            # made per unit (model.WindowRadiation): the unit's table and as much again of working
+            # arrays (measured: +1.71 GB for a 2048 x 2048 unit, 72 sectors, 20 km), and no less
+            # than a whole table at the threshold (which counts valid cells, this the DEM's)
+            unit = min(unit_cells, cells)
+            b += max(peak_bytes(unit, unit, radiation_sectors) + len(day_nodes()) * unit * 2,
+                     peak_bytes(WINDOW_RADIATION_CELLS, WINDOW_RADIATION_CELLS, radiation_sectors))
+        else:
+            b += peak_bytes(cells, cells, radiation_sectors)    # the climatology as it is made
     return Estimate(int(b), cells, (ny, nx), years, scenarios, band_width_m, glaciers)
 
 

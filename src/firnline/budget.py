@@ -93,8 +93,9 @@ def estimate(shape: tuple[int, int], years: int, scenarios: int = 1, band_width_
         from .radiation import day_nodes, peak_bytes
         if unit_cells is not None and cells > WINDOW_RADIATION_CELLS:
             # made per unit (model.WindowRadiation): the unit's table and as much again of working
-            # arrays (measured: +1.71 GB for a 2048 x 2048 unit, 72 sectors, 20 km), and no less
-            # than a whole table at the threshold (which counts valid cells, this the DEM's)
+            # arrays (generous: measured +1.16 GB for a 2048 x 2048 unit, 72 sectors, 20 km, and
+            # +1.71 GB for a window across four blocks), and no less than a whole table at the
+            # threshold (which counts valid cells, this the DEM's)
             unit = min(unit_cells, cells)
             b += max(peak_bytes(unit, unit, radiation_sectors) + len(day_nodes()) * unit * 2,
                      peak_bytes(WINDOW_RADIATION_CELLS, WINDOW_RADIATION_CELLS, radiation_sectors))

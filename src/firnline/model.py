@@ -634,16 +634,21 @@ def window_radiation(grid: Grid, config: Config, flat: np.ndarray, sun) -> Radia
     rc = config.radiation
     ny, nx = grid.shape
     flat = np.asarray(flat, dtype=np.int64)
-    rr, cc = np.divmod(flat, nx)
-    block = (rr // RADIATION_WINDOW) * (-(-nx // RADIATION_WINDOW)) + cc // RADIATION_WINDOW
-    order = np.argsort(block, kind="stable")
-    bounds = np.flatnonzero(np.diff(block[order])) + 1
-    # one block (a unit's cut): its table is the result, not a copy
-    values = np.empty((len(day_nodes()), flat.size), dtype=np.uint16) if bounds.size else None
+    rr, cc = (a.astype(np.int32) for a in np.divmod(flat, nx))    # 8 B per cell, not 16
+    block = (rr // RADIATION_WINDOW) * np.int32(-(-nx // RADIATION_WINDOW)) + cc // RADIATION_WINDOW
+    if flat.size == 0 or block.min() == block.max():
+        # one block (a unit's cut): its table is the result, not a copy
+        groups, values = ([slice(None)] if flat.size else []), None
+    else:
+        order = np.argsort(block, kind="stable")
+        groups = np.split(order, np.flatnonzero(np.diff(block[order])) + 1)
+        values = np.empty((len(day_nodes()), flat.size), dtype=np.uint16)
+        del order
+    del block
     scale = None
     halo = window_halo_cells(grid.cell_size_m, rc.horizon_distance_m)
-    for idx in np.split(order, bounds) if flat.size else []:
-        r, c = rr[idx], cc[idx]
+    for idx in groups:
+        r, c = (rr, cc) if values is None else (rr[idx], cc[idx])
         t0, t1 = max(0, int(r.min()) - 1), min(ny, int(r.max()) + 2)       # the table's window
         c0, c1 = int(c.min()), int(c.max()) + 1
         s0, s1 = max(0, t0 - 1), min(ny, t1 + 1)                           # its slope's window
@@ -661,6 +666,9 @@ def window_radiation(grid: Grid, config: Config, flat: np.ndarray, sun) -> Radia
 
         asked = np.zeros((t1 - t0, c1 - c0), dtype=bool)
         asked[r - t0, c - c0] = True
+        del r, c
+        if values is None:
+            del rr, cc
         lon, lat = grid.lonlat((t0, t1), (c0, c1))
         table = window_table(grid.elevation[t0:t1, c0:c1], asked, slope, aspect, lat, lon, codes,
                              config.melt.transmissivity, rc.time_step_minutes, rc.horizon_sectors, sun)

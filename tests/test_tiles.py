@@ -319,7 +319,8 @@ def test_radiation_made_by_window_gives_the_numbers_of_the_table_of_the_whole_de
     n = setup.cells.size
     rng = np.random.default_rng(5)
     for pos in (np.arange(n), np.arange(3, n, 37), np.array([0]), np.array([n - 1]),
-                np.sort(rng.choice(n, 200, replace=False)), np.arange(17 * 40 + 5, 17 * 40 + 9)):
+                np.sort(rng.choice(n, 200, replace=False)), np.arange(17 * 40 + 5, 17 * 40 + 9),
+                np.zeros(0, dtype=np.int64)):
         table = setup.radiation.subset(pos)
         assert np.array_equal(table.values, ref.radiation.values[:, pos]), pos[:5]
         assert table.scale_w_m2 == ref.radiation.scale_w_m2 and np.array_equal(table.doy_nodes, ref.radiation.doy_nodes)

@@ -629,23 +629,22 @@ def window_radiation(grid: Grid, config: Config, flat: np.ndarray, sun) -> Radia
     (:func:`firnline.horizon.window_sines`). Each cell then has its whole-DEM slope, aspect,
     grid convergence and horizons, so the table is that of the whole DEM's, bit for bit."""
     from .horizon import window_halo_cells, window_sines
-    from .radiation import day_nodes, window_table
+    from .radiation import STORAGE_SCALE_W_M2, day_nodes, window_table
 
     rc = config.radiation
     ny, nx = grid.shape
     flat = np.asarray(flat, dtype=np.int64)
     rr, cc = (a.astype(np.int32) for a in np.divmod(flat, nx))    # 8 B per cell, not 16
     block = (rr // RADIATION_WINDOW) * np.int32(-(-nx // RADIATION_WINDOW)) + cc // RADIATION_WINDOW
-    if flat.size == 0 or block.min() == block.max():
+    if flat.size and block.min() == block.max():
         # one block (a unit's cut): its table is the result, not a copy
-        groups, values = ([slice(None)] if flat.size else []), None
+        groups, values = [slice(None)], None
     else:
         order = np.argsort(block, kind="stable")
-        groups = np.split(order, np.flatnonzero(np.diff(block[order])) + 1)
+        groups = np.split(order, np.flatnonzero(np.diff(block[order])) + 1) if flat.size else []
         values = np.empty((len(day_nodes()), flat.size), dtype=np.uint16)
         del order
     del block
-    scale = None
     halo = window_halo_cells(grid.cell_size_m, rc.horizon_distance_m)
     for idx in groups:
         r, c = (rr, cc) if values is None else (rr[idx], cc[idx])
@@ -676,11 +675,7 @@ def window_radiation(grid: Grid, config: Config, flat: np.ndarray, sun) -> Radia
         if values is None:
             return table
         values[:, idx] = table.values       # idx ascends within a block: the table's C order
-        scale = table.scale_w_m2
-    if scale is None:
-        from .radiation import STORAGE_SCALE_W_M2
-        scale = STORAGE_SCALE_W_M2
-    return RadiationTable(doy_nodes=day_nodes(), values=values, scale_w_m2=scale)
+    return RadiationTable(doy_nodes=day_nodes(), values=values, scale_w_m2=STORAGE_SCALE_W_M2)
 
 
 def upslope_setup(setup: Setup, positions) -> tuple[Setup, np.ndarray, np.ndarray]:

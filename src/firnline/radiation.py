@@ -95,7 +95,6 @@ horizon.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -388,7 +387,8 @@ def _convergence_rows(tile: _Tile, r0: int, r1: int) -> np.ndarray:
 
 
 def _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
-          time_step_minutes, n_sectors) -> _Tile:
+          time_step_minutes, n_sectors, sun: SunConstants | None = None) -> _Tile:
+    """The tile of a grid's inputs, with its own sun constants (:func:`sun_constants`) or ``sun``."""
     valid = np.asarray(valid, dtype=bool)
     shape = valid.shape
     if valid.ndim != 2:
@@ -419,18 +419,16 @@ def _tile(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_deg, transmiss
     else:
         lat_range = ((lat, lat) if isinstance(lat, float) else (float(lat.min()), float(lat.max())))
         centre = (shape[0] // 2, shape[1] // 2)
-    tile = _Tile(valid=valid, elevation_m=grids["elevation_m"], slope_deg=grids["slope_deg"],
+    if sun is None:
+        r, c = centre
+        h0, h1 = max(0, r - 1), min(shape[0], r + 2)
+        sun = sun_constants(lat_range, _rows(lat, h0, h1, shape[1])[:, c], _rows(lon, h0, h1, shape[1])[:, c], r - h0)
+    return _Tile(valid=valid, elevation_m=grids["elevation_m"], slope_deg=grids["slope_deg"],
                  aspect_deg=grids["aspect_deg"], lat_deg=lat, lon_deg=lon,
                  log_psi=math.log(float(transmissivity)), row_offset=row_offset,
-                 lat_range_deg=lat_range, lat_centre_deg=0.0, lon_centre_deg=0.0,
-                 convergence_centre_rad=0.0,
+                 lat_range_deg=sun.lat_range_deg, lat_centre_deg=sun.lat_centre_deg,
+                 lon_centre_deg=sun.lon_centre_deg, convergence_centre_rad=sun.convergence_centre_rad,
                  n_steps=max(1, int(round(1440.0 / float(time_step_minutes)))), n_sectors=int(n_sectors))
-    r, c = centre
-    centre_values = dict(
-        lat_centre_deg=float(_rows(lat, r, r + 1, shape[1])[0, c]),
-        lon_centre_deg=float(_rows(lon, r, r + 1, shape[1])[0, c]),
-        convergence_centre_rad=float(_convergence_rows(tile, r, r + 1)[0, CELL_BLOCK + c]))
-    return dataclasses.replace(tile, **centre_values)
 
 
 def _band_constants(tile: _Tile, r0: int, r1: int):
@@ -830,8 +828,8 @@ def table_from_terrain(elevation_m, valid, slope_deg, aspect_deg, lat_deg, lon_d
 class SunConstants:
     """What the sun paths of :func:`compute_table` take of the whole DEM (see the module docstring:
     per tile): the valid cells' latitude range, and the latitude, longitude and grid convergence
-    of the middle valid cell in C order. A window of the DEM made with them
-    (:func:`window_table`) gives the values of the whole DEM's table."""
+    of the middle valid cell in C order (both made by :func:`sun_constants`). A window of the DEM
+    made with them (:func:`window_table`) gives the values of the whole DEM's table."""
 
     lat_range_deg: tuple[float, float]
     lat_centre_deg: float
@@ -866,9 +864,7 @@ def window_table(elevation_m, cells, slope_deg, aspect_deg, lat_deg, lon_deg, co
     (:func:`firnline.horizon.window_sines`). Other parameters as :func:`compute_table`.
     """
     tile = _tile(elevation_m, cells, slope_deg, aspect_deg, lat_deg, lon_deg, transmissivity,
-                 time_step_minutes, n_sectors)
-    tile = dataclasses.replace(tile, lat_range_deg=sun.lat_range_deg, lat_centre_deg=sun.lat_centre_deg,
-                               lon_centre_deg=sun.lon_centre_deg, convergence_centre_rad=sun.convergence_centre_rad)
+                 time_step_minutes, n_sectors, sun)
     groups = horizon_band_groups(tile.valid.shape, int(tile.row_offset[-1]), tile.n_sectors, _kernel_bands(tile))
 
     def masked(r0, r1):

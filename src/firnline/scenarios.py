@@ -387,14 +387,9 @@ def glacier_view(setup: Setup) -> Setup:
     """
     if setup.glacier_mask.all():
         return setup
-    if setup.by_window:
-        from .model import upslope_setup
-        return upslope_setup(setup, np.flatnonzero(setup.glacier_mask))[0]
-    if setup.routing is not None:
-        # snow slides onto the glaciers from above: keep every cell upslope of them (exact)
-        from .snowslide import upslope
-        return setup.select(np.flatnonzero(upslope(setup.routing, setup.glacier_mask)))
-    return setup.select(np.flatnonzero(setup.glacier_mask))
+    # with sliding snow, every cell upslope of them too (snow slides onto the glaciers from above)
+    from .model import upslope_setup
+    return upslope_setup(setup, np.flatnonzero(setup.glacier_mask))[0]
 
 
 # ----------------------------------------------------------------------------
